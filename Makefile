@@ -1,0 +1,19 @@
+PYTHON ?= python3
+
+.PHONY: demo test lint install
+
+install:
+	$(PYTHON) -m pip install -q -e '.[test]'
+
+# The main job on the embedded default: no server to install.
+demo: install
+	$(PYTHON) -m streamrate demo
+
+# The whole test suite (integration tests start their own redis-server).
+test: install
+	$(PYTHON) -m ruff check streamrate tests bench
+	$(PYTHON) -m pytest
+
+lint:
+	$(PYTHON) -m ruff check streamrate tests bench
+	$(PYTHON) -m ruff format --check streamrate tests bench

@@ -1,0 +1,3 @@
+from streamrate.cli import app
+
+app(prog_name="streamrate")

@@ -1,0 +1,151 @@
+"""Turning ids and categories into array positions, online.
+
+Two mappings live here:
+
+* :class:`EntityTable` gives each entity id a dense row number the first time the
+  id is seen, and counts the matches each entity has played. Rows are never
+  reused, so a row number is stable for the life of a model.
+* :class:`FeatureHasher` maps a ``name -> value`` dict to a sparse vector of fixed
+  width by feature hashing (the "hashing trick"): a category ``map=saltflats``
+  becomes one signed unit at ``crc32(b"map=saltflats") mod width``; a number
+  ``heat=0.4`` becomes ``0.4`` (signed) at ``crc32(b"heat") mod width``. Values
+  never seen before need no vocabulary and no refit: they simply land in a slot.
+  Collisions are possible and are why the width is a setting (default 64); the
+  sign bit (the top bit of the same crc32) makes colliding features cancel on
+  average rather than add up. crc32 is used, not ``hash()``, because it is the
+  same in every process and on every machine, so a saved model reads back.
+
+Example:
+
+>>> h = FeatureHasher(width=16)
+>>> idx, val = h.encode({"map": "saltflats", "heat": 0.5})
+>>> idx.shape, val.shape
+((2,), (2,))
+"""
+
+from __future__ import annotations
+
+import zlib
+from collections.abc import Iterable, Mapping
+
+import numpy as np
+import numpy.typing as npt
+
+from streamrate.errors import StateError
+
+IntArray = npt.NDArray[np.int32]
+FloatArray = npt.NDArray[np.float64]
+
+
+class FeatureHasher:
+    """Signed feature hashing of ``name -> category | number`` into ``width`` slots."""
+
+    def __init__(self, width: int) -> None:
+        if width < 1:
+            raise ValueError("width must be at least 1")
+        self.width = width
+        self._slots: dict[str, tuple[int, float]] = {}
+
+    def slot(self, key: str) -> tuple[int, float]:
+        """Return (slot index, sign) for a hashed key; cached, as keys repeat a lot."""
+        hit = self._slots.get(key)
+        if hit is None:
+            h = zlib.crc32(key.encode("utf-8"))
+            hit = (h % self.width, -1.0 if h & 0x80000000 else 1.0)
+            if len(self._slots) < 1_000_000:
+                self._slots[key] = hit
+        return hit
+
+    def encode(self, values: Mapping[str, str | float]) -> tuple[IntArray, FloatArray]:
+        """Sparse (indices, values) of one mapping; duplicates are kept (they add)."""
+        idx = np.empty(len(values), dtype=np.int32)
+        val = np.empty(len(values), dtype=np.float64)
+        for k, (name, v) in enumerate(values.items()):
+            if isinstance(v, str):
+                i, s = self.slot(f"{name}={v}")
+                idx[k], val[k] = i, s
+            else:
+                i, s = self.slot(name)
+                idx[k], val[k] = i, s * float(v)
+        return idx, val
+
+    def dense(self, values: Mapping[str, str | float]) -> FloatArray:
+        """The same vector as a dense array of length ``width``."""
+        out = np.zeros(self.width, dtype=np.float64)
+        idx, val = self.encode(values)
+        np.add.at(out, idx, val)
+        return out
+
+
+class EntityTable:
+    """Dense, stable row numbers for entity ids, with a match count per entity."""
+
+    def __init__(self) -> None:
+        self._rows: dict[str, int] = {}
+        self._ids: list[str] = []
+        self.counts = np.zeros(16, dtype=np.int64)
+
+    def __len__(self) -> int:
+        return len(self._ids)
+
+    def __contains__(self, entity_id: object) -> bool:
+        return entity_id in self._rows
+
+    def get(self, entity_id: str) -> int:
+        """Row of a known id, or -1 for an id never seen (nothing is added)."""
+        return self._rows.get(entity_id, -1)
+
+    def row(self, entity_id: str) -> int:
+        """Row of an id, adding it if new."""
+        r = self._rows.get(entity_id)
+        if r is None:
+            r = len(self._ids)
+            self._rows[entity_id] = r
+            self._ids.append(entity_id)
+            if r >= len(self.counts):
+                self.counts = np.concatenate([self.counts, np.zeros_like(self.counts)])
+        return r
+
+    def rows(self, entity_ids: Iterable[str]) -> list[int]:
+        return [self.row(e) for e in entity_ids]
+
+    def id_of(self, row: int) -> str:
+        return self._ids[row]
+
+    @property
+    def ids(self) -> list[str]:
+        return self._ids
+
+    def seen(self, entity_id: str) -> int:
+        """How many matches this entity has been learned from (0 if unknown)."""
+        r = self._rows.get(entity_id)
+        return 0 if r is None else int(self.counts[r])
+
+    # -- persistence -----------------------------------------------------------------
+    def to_arrays(self) -> dict[str, np.ndarray]:
+        blob = "\n".join(self._ids).encode("utf-8")
+        return {
+            "entity_ids": np.frombuffer(blob, dtype=np.uint8).copy(),
+            "entity_counts": self.counts[: len(self._ids)].copy(),
+        }
+
+    @classmethod
+    def from_arrays(cls, arrays: Mapping[str, np.ndarray]) -> EntityTable:
+        try:
+            blob = bytes(np.asarray(arrays["entity_ids"], dtype=np.uint8))
+            counts = np.asarray(arrays["entity_counts"], dtype=np.int64)
+        except KeyError as exc:
+            raise StateError(f"saved state lacks the array {exc.args[0]!r}") from exc
+        ids = blob.decode("utf-8").split("\n") if blob else []
+        if len(ids) != len(counts):
+            raise StateError(
+                f"saved state is inconsistent: {len(ids)} entity ids but {len(counts)} counts"
+            )
+        table = cls()
+        table._ids = ids
+        table._rows = {e: i for i, e in enumerate(ids)}
+        if len(table._rows) != len(ids):
+            raise StateError("saved state is inconsistent: an entity id is listed twice")
+        table.counts = np.zeros(max(16, 2 * len(ids)), dtype=np.int64)
+        table.counts[: len(ids)] = counts
+        return table

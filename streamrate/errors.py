@@ -1,0 +1,40 @@
+"""The exception tree of streamrate.
+
+Every error the package raises on purpose derives from :class:`StreamrateError`::
+
+    StreamrateError
+    ├── EventError          an event or query failed validation (names the field)
+    ├── ConfigError         settings that cannot be used
+    ├── StateError          a saved model state or checkpoint cannot be loaded
+    │   └── StateVersionError   written by an incompatible format version
+    └── ServiceError        the running service cannot go on (Redis, checkpoint store)
+
+Code translates lower-level failures with ``raise ... from exc`` so that the
+cause stays visible.
+"""
+
+from __future__ import annotations
+
+
+class StreamrateError(Exception):
+    """Root of every error streamrate raises on purpose."""
+
+
+class EventError(StreamrateError, ValueError):
+    """An event, query or file line that is not valid; the message names the field."""
+
+
+class ConfigError(StreamrateError, ValueError):
+    """Settings that cannot be used."""
+
+
+class StateError(StreamrateError):
+    """A saved model state or checkpoint that cannot be read back."""
+
+
+class StateVersionError(StateError):
+    """A saved state written by a format version this code does not read."""
+
+
+class ServiceError(StreamrateError):
+    """The running service cannot continue."""

@@ -1,0 +1,150 @@
+"""What every model offers, and nothing about where events come from.
+
+A model is pure in-memory numpy state. It predicts P(first side wins) (and
+P(draw) where it models draws), learns from one finished match at a time, offers
+a mini-batch path, and saves its state as plain arrays plus JSON-able settings
+(:class:`ModelState`; :mod:`streamrate.statefile` writes it to disk without pickle).
+
+Conventions shared by all models:
+
+* ``learn(event)`` is prequential: it returns the prediction made *before* the
+  model saw the outcome, then updates. Replay scores exactly that prediction.
+* ``learn_batch(events)`` predicts every event of the batch from the state at the
+  start of the batch and then applies one combined update. For a batch of one it
+  gives the same state and prediction as ``learn``.
+* ``learn_many(events)`` is the sequential path over a list (same as calling
+  ``learn`` in a loop; models may run it in a compiled loop).
+* Constructors only store hyperparameters; learned state is created on first use
+  and its attribute names end with an underscore.
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any, ClassVar, NamedTuple
+
+import numpy as np
+import numpy.typing as npt
+
+from streamrate.encode import EntityTable
+from streamrate.errors import StateError, StateVersionError
+from streamrate.events import MatchEvent, Matchup
+
+
+class Prediction(NamedTuple):
+    """P(first side wins) and P(draw); ``p_draw`` is 0 for models without draws."""
+
+    p_win: float
+    p_draw: float = 0.0
+
+    @property
+    def expected_score(self) -> float:
+        """The first side's expected score, P(win) + P(draw) / 2: what metrics score."""
+        return self.p_win + 0.5 * self.p_draw
+
+
+class Predictions(NamedTuple):
+    """Many predictions as arrays (same meaning as :class:`Prediction`)."""
+
+    p_win: npt.NDArray[np.float64]
+    p_draw: npt.NDArray[np.float64]
+
+    @property
+    def expected_score(self) -> npt.NDArray[np.float64]:
+        return self.p_win + 0.5 * self.p_draw
+
+    def __getitem__(self, i: Any) -> Any:  # type: ignore[override]
+        if isinstance(i, int) and not isinstance(i, bool):
+            return Prediction(float(self.p_win[i]), float(self.p_draw[i]))
+        return tuple.__getitem__(self, i)
+
+    @classmethod
+    def from_list(cls, preds: Sequence[Prediction]) -> Predictions:
+        arr = np.array(preds, dtype=np.float64).reshape(-1, 2)
+        return cls(arr[:, 0].copy(), arr[:, 1].copy())
+
+
+@dataclass
+class ModelState:
+    """A model's whole state: settings (JSON-able) and arrays (numeric, no objects)."""
+
+    kind: str
+    version: int
+    params: dict[str, Any]
+    arrays: dict[str, np.ndarray] = field(default_factory=dict)
+
+
+class Model(ABC):
+    """Base class of every model. Subclasses set ``kind`` and ``state_version``."""
+
+    kind: ClassVar[str]
+    state_version: ClassVar[int] = 1
+    has_draws: ClassVar[bool] = False
+
+    entities_: EntityTable
+
+    # -- the online API -----------------------------------------------------------
+    @abstractmethod
+    def predict(self, matchup: Matchup) -> Prediction:
+        """P(first side wins) for a pairing; changes nothing (unknown ids are priors)."""
+
+    @abstractmethod
+    def learn(self, event: MatchEvent) -> Prediction:
+        """Predict, then learn from the outcome; return the prediction made first."""
+
+    def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
+        """Sequential path over several events: identical to ``learn`` in a loop."""
+        return Predictions.from_list([self.learn(e) for e in events])
+
+    def learn_batch(self, events: Sequence[MatchEvent]) -> Predictions:
+        """Mini-batch path: predict all from the batch-start state, then update once.
+
+        The default is the sequential path; models that have a true mini-batch
+        update override it.
+        """
+        return self.learn_many(events)
+
+    def seen(self, entity_id: str) -> int:
+        """How many matches an entity has been learned from (0 if never seen)."""
+        return self.entities_.seen(entity_id) if hasattr(self, "entities_") else 0
+
+    # -- persistence --------------------------------------------------------------
+    @abstractmethod
+    def get_params(self) -> dict[str, Any]:
+        """The constructor's arguments, JSON-able."""
+
+    @abstractmethod
+    def _state_arrays(self) -> dict[str, np.ndarray]:
+        """Learned state as arrays (include ``self.entities_.to_arrays()``)."""
+
+    @abstractmethod
+    def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
+        """Rebuild learned state from :meth:`_state_arrays` output."""
+
+    def to_state(self) -> ModelState:
+        return ModelState(self.kind, self.state_version, self.get_params(), self._state_arrays())
+
+    @classmethod
+    def from_state(cls, state: ModelState) -> Model:
+        if state.kind != cls.kind:
+            raise StateError(f"saved state is of model {state.kind!r}, not {cls.kind!r}")
+        if state.version != cls.state_version:
+            raise StateVersionError(
+                f"saved {state.kind!r} state has version {state.version}; "
+                f"this code reads version {cls.state_version}"
+            )
+        try:
+            model = cls(**state.params)
+        except TypeError as exc:
+            raise StateError(f"saved {state.kind!r} settings are not usable: {exc}") from exc
+        try:
+            model._load_arrays(dict(state.arrays))
+        except KeyError as exc:
+            raise StateError(f"saved {state.kind!r} state lacks array {exc.args[0]!r}") from exc
+        return model
+
+    def __repr__(self) -> str:
+        args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items())
+        return f"{type(self).__name__}({args})"

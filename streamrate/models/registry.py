@@ -1,0 +1,39 @@
+"""Built-in models by name, and building a model from a name plus settings.
+
+Modules are imported on first use so that one family's import cost (a compiled
+kernel, say) is only paid by those who use it.
+"""
+
+from __future__ import annotations
+
+import importlib
+from typing import Any
+
+from streamrate.errors import ConfigError
+from streamrate.models.base import Model, ModelState
+
+# name -> "module:Class"; the name is also the model's ``kind`` in saved states.
+BUILTIN: dict[str, str] = {}
+
+
+def model_class(kind: str) -> type[Model]:
+    try:
+        target = BUILTIN[kind]
+    except KeyError:
+        known = ", ".join(sorted(BUILTIN))
+        raise ConfigError(f"unknown model {kind!r}; built-in models: {known}") from None
+    module, _, cls = target.partition(":")
+    return getattr(importlib.import_module(module), cls)  # type: ignore[no-any-return]
+
+
+def build_model(kind: str, **settings: Any) -> Model:
+    """Build a model by name; unknown settings fail with a message naming them."""
+    cls = model_class(kind)
+    try:
+        return cls(**settings)
+    except TypeError as exc:
+        raise ConfigError(f"model {kind!r}: {exc}") from exc
+
+
+def model_from_state(state: ModelState) -> Model:
+    return model_class(state.kind).from_state(state)
