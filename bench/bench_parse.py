@@ -1,0 +1,48 @@
+"""Cost of turning one stream payload into a validated MatchEvent.
+
+Run by hand:  python bench/bench_parse.py
+
+Prints microseconds per event for the validating decoder that the service uses
+(pydantic's ``validate_json`` on :class:`streamrate.events.MatchEvent`) next to
+the cost of merely decoding the same JSON without validation (stdlib ``json``),
+measured in the same run, and the ratio between them.
+"""
+
+from __future__ import annotations
+
+import json
+import timeit
+
+from streamrate.events import MatchEvent, parse_event
+
+SOLO = (
+    b'{"match_id": "m-000123", "finished_at": "2026-03-01T18:00:00Z", "first": ["kestrel"],'
+    b' "second": ["marlow"], "score": 1, "context": {"map": "saltflats", "mode": "duel"}}'
+)
+TEAMS = (
+    b'{"match_id": "m-000124", "finished_at": "2026-03-01T18:00:00Z",'
+    b' "first": ["kestrel", "tindra", "oskel"], "second": ["marlow", "brisa", "vantor"],'
+    b' "score": 0.5, "context": {"map": "glasswood", "mode": "trio", "patch": "1.4"},'
+    b' "features": {"brisa": {"training_hours": 12.5, "style_hint": "rush"}}}'
+)
+
+
+def per_event_us(fn: object, number: int = 50_000) -> float:
+    best = min(timeit.repeat(fn, number=number, repeat=5))  # type: ignore[arg-type]
+    return best / number * 1e6
+
+
+def main() -> None:
+    validator = MatchEvent.__pydantic_validator__
+    for name, raw in (("solo", SOLO), ("trio with features", TEAMS)):
+        plain = per_event_us(lambda raw=raw: json.loads(raw))
+        fast = per_event_us(lambda raw=raw: validator.validate_json(raw))
+        full = per_event_us(lambda raw=raw: parse_event(raw))
+        print(
+            f"{name:>20}: json.loads only {plain:5.2f} us | validate_json {fast:5.2f} us "
+            f"({fast / plain:4.2f}x) | parse_event (adds size check + messages) {full:5.2f} us"
+        )
+
+
+if __name__ == "__main__":
+    main()
