@@ -85,29 +85,31 @@ class EncodedBatch:
         return self.feat_idx.ndim == 3 and self.feat_idx.shape[0] == len(self) > 0
 
 
-def _rows(sides: list[tuple[str, ...]], get: Callable[[str], int]) -> tuple[np.ndarray, np.ndarray]:
+def _rows(
+    sides: list[tuple[str, ...]], get: Callable[[str], int]
+) -> tuple[np.ndarray, np.ndarray, bool]:
+    """(rows padded with -1, sizes, whether a real member is unknown)."""
     n = len(sides)
     width = max(map(len, sides), default=1)
     if width == 1:
-        rows = np.array([get(s[0]) for s in sides], dtype=np.int32).reshape(n, 1)
-        return rows, np.ones(n, dtype=np.int32)
+        out = [get(s[0]) for s in sides]
+        unknown = -1 in out
+        return np.array(out, dtype=np.int32).reshape(n, 1), np.ones(n, dtype=np.int32), unknown
     flat: list[int] = []
     pad = [-1] * width
     sizes = []
+    unknown = False
     for s in sides:
         k = len(s)
         sizes.append(k)
-        flat.extend([get(e) for e in s])
+        members = [get(e) for e in s]
+        if -1 in members:
+            unknown = True
+        flat.extend(members)
         if k < width:
             flat.extend(pad[k:])
-    return np.array(flat, dtype=np.int32).reshape(n, width), np.array(sizes, dtype=np.int32)
-
-
-def _any_unknown(rows: np.ndarray, sizes: np.ndarray) -> bool:
-    if rows.shape[1] == 1:
-        return bool(rows.min(initial=0) < 0)
-    real = np.arange(rows.shape[1])[None, :] < sizes[:, None]
-    return bool(np.any((rows < 0) & real))
+    rows = np.array(flat, dtype=np.int32).reshape(n, width)
+    return rows, np.array(sizes, dtype=np.int32), unknown
 
 
 def _register(events: Sequence[Matchup], table: EntityTable) -> None:
@@ -186,15 +188,22 @@ def encode_events(
     n = len(events)
     firsts = [e.first for e in events]
     seconds = [e.second for e in events]
-    first, first_size = _rows(firsts, table.get)
-    second, second_size = _rows(seconds, table.get)
-    if add and (_any_unknown(first, first_size) or _any_unknown(second, second_size)):
+    first, first_size, unknown1 = _rows(firsts, table.get)
+    second, second_size, unknown2 = _rows(seconds, table.get)
+    if add and (unknown1 or unknown2):
         _register(events, table)
-        first, first_size = _rows(firsts, table.get)
-        second, second_size = _rows(seconds, table.get)
-    score = np.array([getattr(e, "score", _NAN) for e in events], dtype=np.float64)
-    times = [getattr(e, "finished_at", None) for e in events]
-    time_s = np.array([_NAN if t is None else t.timestamp() for t in times], dtype=np.float64)
+        first, first_size, _ = _rows(firsts, table.get)
+        second, second_size, _ = _rows(seconds, table.get)
+    try:  # the common case, all finished matches; a query lacks both fields
+        score = np.array([e.score for e in events], dtype=np.float64)  # type: ignore[attr-defined]
+        time_s = np.array(
+            [e.finished_at.timestamp() for e in events],  # type: ignore[attr-defined]
+            dtype=np.float64,
+        )
+    except AttributeError:
+        score = np.array([getattr(e, "score", _NAN) for e in events], dtype=np.float64)
+        times = [getattr(e, "finished_at", None) for e in events]
+        time_s = np.array([_NAN if t is None else t.timestamp() for t in times], dtype=np.float64)
     if context is not None:
         ctx_idx, ctx_val = _sparse([e.context for e in events], context)
     else:

@@ -13,7 +13,17 @@ from streamrate.errors import ConfigError
 from streamrate.models.base import Model, ModelState
 
 # name -> "module:Class"; the name is also the model's ``kind`` in saved states.
-BUILTIN: dict[str, str] = {}
+BUILTIN: dict[str, str] = {
+    "elo": "streamrate.models.elo:Elo",
+    "glicko2": "streamrate.models.glicko2:Glicko2",
+    "trueskill": "streamrate.models.trueskill:TrueSkill",
+    "head_to_head": "streamrate.models.head_to_head:HeadToHead",
+    "logistic_batch": "streamrate.models.logistic_batch:LogisticBatch",
+    "bradley_terry": "streamrate.models.matchup:BradleyTerry",
+    "blade_chest": "streamrate.models.matchup:BladeChest",
+    "blade_chest_dist": "streamrate.models.matchup:BladeChestDistance",
+    "recalibrated": "streamrate.recalibrate:Recalibrated",
+}
 
 
 def model_class(kind: str) -> type[Model]:

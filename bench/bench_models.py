@@ -1,0 +1,214 @@
+"""Speed and memory of the matchup models on pre-encoded events.
+
+Run by hand:  python bench/bench_models.py [--events 1000000] [--entities 100000]
+              [--memory-entities 1000000]
+
+Everything is timed on an :class:`~streamrate.batch.EncodedBatch` built straight
+from random rows (1v1, no context), i.e. "updates on pre-parsed events". In the
+same run it times, on the same events:
+
+* blade-chest d=16 (inner and distance form) and Bradley-Terry, sequential,
+  compiled (``learn_encoded``), and the mini-batch path (``learn_batch_encoded``);
+* Elo through the same path (``streamrate.models.elo`` if present, else a
+  compiled Elo loop written here);
+* a straightforward per-event numpy implementation of the same blade-chest d=16
+  AdaGrad update (the baseline of the speed ratio) and the package's own
+  ``backend="numpy"`` fallback, on a slice of the events.
+
+Memory: bytes per entity at d=16 with ``--memory-entities`` entities (model
+arrays + AdaGrad sums + id map), by tracemalloc.
+"""
+
+from __future__ import annotations
+
+import argparse
+import gc
+import math
+import time
+import tracemalloc
+from collections.abc import Callable
+
+import numpy as np
+
+from streamrate.batch import EncodedBatch
+from streamrate.encode import EntityTable
+from streamrate.models.matchup import BladeChest, BladeChestDistance, BradleyTerry, MatchupModel
+
+
+def make_batch(n: int, n_ent: int, seed: int = 0) -> EncodedBatch:
+    rng = np.random.default_rng(seed)
+    i = rng.integers(0, n_ent, n)
+    j = (i + rng.integers(1, n_ent, n)) % n_ent
+    strength = rng.normal(0, 1, n_ent)
+    p = 1 / (1 + np.exp(-(strength[i] - strength[j])))
+    score = (rng.random(n) < p).astype(np.float64)
+    return EncodedBatch(
+        first=i.astype(np.int32).reshape(n, 1),
+        second=j.astype(np.int32).reshape(n, 1),
+        score=score,
+        ctx_idx=np.full((n, 0), -1, dtype=np.int32),
+        ctx_val=np.zeros((n, 0)),
+        time_s=1.77e9 + np.arange(n, dtype=np.float64) * 10.0,
+        first_size=np.ones(n, dtype=np.int32),
+        second_size=np.ones(n, dtype=np.int32),
+    )
+
+
+def fill_table(table: EntityTable, n_ent: int) -> None:
+    for k in range(n_ent):
+        table.row(f"quill-{k}")
+
+
+def timed(fn: Callable[[], object], repeat: int = 3) -> float:
+    best = math.inf
+    for _ in range(repeat):
+        t = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t)
+    return best
+
+
+def numpy_baseline(b: EncodedBatch, n_ent: int, d: int = 16) -> None:
+    """Blade-chest d=16 with strength and AdaGrad, one event at a time in plain numpy."""
+    rng = np.random.default_rng(0)
+    s = np.zeros(n_ent)
+    A = 0.1 * rng.uniform(-1, 1, (n_ent, d))
+    C = 0.1 * rng.uniform(-1, 1, (n_ent, d))
+    gs, gA, gC = np.full(n_ent, 0.1), np.full((n_ent, d), 0.1), np.full((n_ent, d), 0.1)
+    lr, lr_s, l2 = 0.1, 0.4, 1e-3
+    first, second, score = b.first[:, 0], b.second[:, 0], b.score
+    for e in range(len(score)):
+        i, j = first[e], second[e]
+        theta = s[i] - s[j] + A[i] @ C[j] - A[j] @ C[i]
+        g = 1.0 / (1.0 + math.exp(-theta)) - score[e]
+        g_si, g_sj = g + l2 * s[i], -g + l2 * s[j]
+        g_ai, g_cj = g * C[j] + l2 * A[i], g * A[i] + l2 * C[j]
+        g_aj, g_ci = -g * C[i] + l2 * A[j], -g * A[j] + l2 * C[i]
+        gs[i] += g_si * g_si
+        gs[j] += g_sj * g_sj
+        s[i] -= lr_s * g_si / math.sqrt(gs[i])
+        s[j] -= lr_s * g_sj / math.sqrt(gs[j])
+        for rows, grads, P, G in (((i, j), (g_ai, g_aj), A, gA), ((j, i), (g_cj, g_ci), C, gC)):
+            for r, gr in zip(rows, grads, strict=True):
+                G[r] += gr * gr
+                P[r] -= lr * gr / np.sqrt(G[r])
+
+
+def elo_reference() -> tuple[str, Callable[[EncodedBatch, int], Callable[[], object]]]:
+    try:
+        from streamrate.models.elo import Elo
+    except ImportError:
+        Elo = None
+    if Elo is not None:
+
+        def run_pkg(b: EncodedBatch, n_ent: int) -> Callable[[], object]:
+            m = Elo()
+            fill_table(m.entities_, n_ent)
+            return lambda: m.learn_encoded(b)
+
+        return "streamrate.models.elo.Elo.learn_encoded", run_pkg
+    from numba import njit
+
+    @njit(cache=True)
+    def loop(first, second, score, ratings, out):  # type: ignore[no-untyped-def]
+        for e in range(score.shape[0]):
+            i, j = first[e, 0], second[e, 0]
+            p = 1.0 / (1.0 + 10.0 ** (-(ratings[i] - ratings[j]) / 400.0))
+            out[e] = p
+            ratings[i] += 24.0 * (score[e] - p)
+            ratings[j] -= 24.0 * (score[e] - p)
+
+    def run_own(b: EncodedBatch, n_ent: int) -> Callable[[], object]:
+        ratings = np.full(n_ent, 1500.0)
+        out = np.zeros(len(b))
+        return lambda: loop(b.first, b.second, b.score, ratings, out)
+
+    return "compiled Elo loop in this bench (no streamrate.models.elo)", run_own
+
+
+def model_runner(
+    make: Callable[[], MatchupModel], minibatch: int = 0
+) -> Callable[[EncodedBatch, int], Callable[[], object]]:
+    def runner(b: EncodedBatch, n_ent: int) -> Callable[[], object]:
+        m = make()
+        fill_table(m.entities_, n_ent)
+        if not minibatch:
+            return lambda: m.learn_encoded(b)
+        parts = [b.take(slice(k, k + minibatch)) for k in range(0, len(b), minibatch)]
+
+        def run() -> None:
+            for part in parts:
+                m.learn_batch_encoded(part)
+
+        return run
+
+    return runner
+
+
+def speed(n: int, n_ent: int, n_slow: int) -> None:
+    b = make_batch(n, n_ent)
+    small = make_batch(200, n_ent, seed=1)
+    slow = b.take(slice(0, n_slow))
+    elo_name, elo = elo_reference()
+    rows: list[tuple[str, Callable[[EncodedBatch, int], Callable[[], object]], EncodedBatch]] = [
+        ("elo (" + elo_name + ")", elo, b),
+        ("bradley_terry", model_runner(lambda: BradleyTerry()), b),
+        ("blade_chest d=16", model_runner(lambda: BladeChest(dims=16)), b),
+        ("blade_chest_dist d=16", model_runner(lambda: BladeChestDistance(dims=16)), b),
+        ("blade_chest d=16 mini-batch 1000", model_runner(lambda: BladeChest(dims=16), 1000), b),
+        ("blade_chest d=16 mini-batch 100", model_runner(lambda: BladeChest(dims=16), 100), b),
+        (
+            "blade_chest d=16 backend=numpy",
+            model_runner(lambda: BladeChest(dims=16, backend="numpy")),
+            slow,
+        ),
+        ("per-event numpy baseline d=16", lambda bb, ne: lambda: numpy_baseline(bb, ne), slow),
+    ]
+    rates: dict[str, float] = {}
+    for name, runner, batch in rows:
+        runner(small, n_ent)()  # compile / warm up outside the timing
+        fn = runner(batch, n_ent)
+        t = timed(fn, repeat=3 if len(batch) == n else 1)
+        rates[name] = len(batch) / t
+    base = rates["per-event numpy baseline d=16"]
+    elo_rate = rates["elo (" + elo_name + ")"]
+    print(f"{n:,} pre-encoded 1v1 events, {n_ent:,} entities (slow paths: {n_slow:,} events)")
+    print(f"{'path':<62}{'events/s':>12}{'x baseline':>12}{'/ elo':>8}")
+    for name, rate in rates.items():
+        print(f"{name:<62}{rate:>12,.0f}{rate / base:>12.1f}{rate / elo_rate:>8.2f}")
+
+
+def memory(n_ent: int, dims: int = 16) -> None:
+    gc.collect()
+    tracemalloc.start()
+    m = BladeChest(dims=dims)
+    fill_table(m.entities_, n_ent)
+    after_ids, _ = tracemalloc.get_traced_memory()
+    m._grow(len(m.entities_))
+    total, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    arrays = sum(
+        a.nbytes for a in (m.own_, m.acc_, m.last_s_, m.feat_idx_, m.feat_val_, m.entities_.counts)
+    )
+    print(f"\nmemory, blade_chest d={dims}, {n_ent:,} entities (tracemalloc):")
+    print(f"  id map (dict + list + strings + counts): {after_ids / n_ent:8.1f} bytes/entity")
+    own = (total - after_ids) / n_ent
+    print(f"  parameters + AdaGrad sums (float32):     {own:8.1f} bytes/entity")
+    print(f"  total:                                   {total / n_ent:8.1f} bytes/entity")
+    print(f"  (numpy arrays incl. counts: {arrays / n_ent:.1f} bytes/entity; peak while growing"
+          f" {peak / n_ent:.1f})")  # fmt: skip
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--events", type=int, default=1_000_000)
+    ap.add_argument("--entities", type=int, default=100_000)
+    ap.add_argument("--slow-events", type=int, default=20_000)
+    ap.add_argument("--memory-entities", type=int, default=1_000_000)
+    args = ap.parse_args()
+    speed(args.events, args.entities, args.slow_events)
+    memory(args.memory_entities)
+
+
+if __name__ == "__main__":
+    main()

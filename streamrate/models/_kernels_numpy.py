@@ -1,0 +1,298 @@
+"""Pure-numpy twin of :mod:`._kernels` (same names, signatures and numbers to round-off).
+
+Used when numba is unavailable or ``backend="numpy"``; one event at a time with
+vectorised numpy inside an event, so it is much slower than the compiled loops.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+THETA_CLIP = 30.0
+
+Arr = np.ndarray
+
+
+def _inputs(e: int, m: int, r: int, fi: Arr, fv: Arr, fs_idx: Arr, fs_val: Arr,
+            ctx_idx: Arr, ctx_val: Arr, cfg: Arr) -> tuple[Arr, Arr]:  # fmt: skip
+    """Columns and values of member slot ``m``'s input to the prior map."""
+    nfeat, stacked = int(cfg[7]), bool(cfg[5])
+    cols: list[Arr] = []
+    vals: list[Arr] = []
+    if nfeat > 0:
+        if fi.shape[0] > 0 and fi.shape[2] > 0 and fi[e, m, 0] >= 0:
+            idx, val = fi[e, m], fv[e, m]
+        elif r >= 0:
+            idx, val = fs_idx[r], fs_val[r].astype(np.float64)
+        else:
+            idx, val = fs_idx[:0, 0], np.zeros(0)
+        stop = np.flatnonzero(idx < 0)
+        k = int(stop[0]) if stop.size else idx.shape[0]
+        cols.append(idx[:k].astype(np.int64))
+        vals.append(val[:k].astype(np.float64))
+    if stacked:
+        keep = ctx_idx[e] >= 0
+        cols.append(ctx_idx[e][keep].astype(np.int64) + nfeat)
+        vals.append(ctx_val[e][keep])
+    if not cols:
+        return np.zeros(0, np.int64), np.zeros(0)
+    return np.concatenate(cols), np.concatenate(vals)
+
+
+def _forward(e: int, a: dict[str, Any]) -> dict[str, Any]:
+    """Everything of event ``e`` that the prediction and the gradients need."""
+    cfg, hyp = a["cfg"], a["hyp"]
+    d, so, form, tanh_on, draws = (int(x) for x in cfg[:5])
+    D = so + 2 * d
+    now = float(a["time_s"][e])
+    if math.isnan(now):
+        now = float(hyp[5])
+    W, last_t, own = a["W"], a["last_t"], a["own"]
+    k1 = a["first"].shape[1]
+    sides = []
+    for rows, n, off in ((a["first"], a["n1"][e], 0), (a["second"], a["n2"][e], k1)):
+        members = []
+        V = np.zeros(D)
+        for j in range(int(n)):
+            r = int(rows[e, j])
+            if r >= 0:
+                dec = 1.0
+                if hyp[4] > 0.0 and last_t.shape[0] > 0:
+                    lt = last_t[r]
+                    if not math.isnan(lt) and now > lt:
+                        dec = math.exp(-hyp[4] * (now - lt) / 86400.0)
+                od = own[r].astype(np.float64) * dec
+            else:
+                od = np.zeros(D)
+            cols, vals = np.zeros(0, np.int64), np.zeros(0)
+            q = np.zeros(D)
+            if W.shape[0] > 0:
+                cols, vals = _inputs(e, off + j, r, a["feat_idx"], a["feat_val"], a["fs_idx"],
+                                     a["fs_val"], a["ctx_idx"], a["ctx_val"], cfg)  # fmt: skip
+                q = W[:, cols] @ vals if cols.size else q
+            base = od + (np.tanh(q) if tanh_on else q)
+            V += base * (1.0 / n)
+            members.append((r, off + j, od, q, cols, vals))
+        sides.append((members, V, int(n)))
+    keep = a["ctx_idx"][e] >= 0
+    ci, cv = a["ctx_idx"][e][keep].astype(np.int64), a["ctx_val"][e][keep]
+    gate = np.ones(2 * d)
+    if cfg[6] and ci.size:
+        gate += a["G"][:, ci] @ cv
+    adv = 0.0
+    if hyp[6] > 0.0:
+        adv = float(a["sc"][0]) + (float(a["H"][0, ci] @ cv) if ci.size else 0.0)
+    VA, VB = sides[0][1], sides[1][1]
+    EA, EB = VA.copy(), VB.copy()
+    EA[so:] *= gate
+    EB[so:] *= gate
+    theta = adv + (EA[0] - EB[0] if so else 0.0)
+    aA, cA = EA[so : so + d], EA[so + d :]
+    aB, cB = EB[so : so + d], EB[so + d :]
+    if d:
+        if form == 0:
+            theta += float(aA @ cB - aB @ cA)
+        else:
+            theta += float(((aB - cA) ** 2 - (aA - cB) ** 2).sum())
+    theta = min(max(theta, -THETA_CLIP), THETA_CLIP)
+    if draws:
+        u = 0.5 * theta
+        au = abs(u)
+        ew, el, en = math.exp(u - au), math.exp(-u - au), math.exp(a["sc"][1] - au)
+        tot = ew + el + en
+        p = (ew / tot, en / tot, el / tot)
+    else:
+        pw = (
+            1.0 / (1.0 + math.exp(-theta))
+            if theta >= 0
+            else math.exp(theta) / (1.0 + math.exp(theta))
+        )
+        p = (pw, 0.0, 1.0 - pw)
+    return {"sides": sides, "gate": gate, "EA": EA, "EB": EB, "p": p, "now": now,
+            "ci": ci, "cv": cv}  # fmt: skip
+
+
+def _backward(e: int, a: dict[str, Any], f: dict[str, Any], g: dict[str, Any]) -> list[Any]:
+    """Add event ``e``'s shared gradients to ``g``; return per-member (r, m, od, grad)."""
+    cfg, hyp = a["cfg"], a["hyp"]
+    d, so, form, tanh_on, draws = (int(x) for x in cfg[:5])
+    D = so + 2 * d
+    pw, pd, pl = f["p"]
+    y = float(a["score"][e])
+    if draws:
+        gth = 0.5 * ((pw - pl) - (2.0 * y - 1.0))
+        g["sc"][1] += pd - (1.0 if y == 0.5 else 0.0)
+    else:
+        gth = pw - y
+    if hyp[6] > 0.0:
+        g["sc"][0] += gth
+    EA, EB = f["EA"], f["EB"]
+    dEA, dEB = np.zeros(D), np.zeros(D)
+    if so:
+        dEA[0], dEB[0] = gth, -gth
+    ia, ic = slice(so, so + d), slice(so + d, D)
+    if form == 0:
+        dEA[ia], dEB[ic] = gth * EB[ic], gth * EA[ia]
+        dEB[ia], dEA[ic] = -gth * EA[ic], -gth * EB[ia]
+    else:
+        d1, d2 = EB[ia] - EA[ic], EA[ia] - EB[ic]
+        dEB[ia], dEA[ic] = 2.0 * gth * d1, -2.0 * gth * d1
+        dEA[ia], dEB[ic] = -2.0 * gth * d2, 2.0 * gth * d2
+    VA, VB = f["sides"][0][1], f["sides"][1][1]
+    gg = dEA[so:] * VA[so:] + dEB[so:] * VB[so:]
+    dEA[so:] *= f["gate"]
+    dEB[so:] *= f["gate"]
+    ci, cv = f["ci"], f["cv"]
+    if ci.size:
+        if hyp[6] > 0.0 or cfg[6]:
+            g["touchC"].update(ci.tolist())
+        if hyp[6] > 0.0:
+            np.add.at(g["H"][0], ci, gth * cv)
+        if cfg[6]:
+            np.add.at(g["G"].T, ci, np.outer(cv, gg))
+    members = []
+    for (mem, _, n), dE in zip(f["sides"], (dEA, dEB), strict=True):
+        db = dE * (1.0 / n)
+        for r, m, od, q, cols, vals in mem:
+            gm = db + hyp[2] * od if r >= 0 else db.copy()
+            if cols.size:
+                dq = db * (1.0 - np.tanh(q) ** 2) if tanh_on else db
+                np.add.at(g["W"].T, cols, np.outer(vals, dq))
+                g["touchW"].update(cols.tolist())
+            members.append((r, m, od, gm))
+    return members
+
+
+def _grad_buffers(a: dict[str, Any]) -> dict[str, Any]:
+    return {"W": np.zeros(a["W"].shape), "G": np.zeros(a["G"].shape), "H": np.zeros(a["H"].shape),
+            "sc": np.zeros(2), "touchW": set(), "touchC": set()}  # fmt: skip
+
+
+def _apply_cols(P: Arr, A: Arr, g: Arr, cols: list[int], lr: float, l2: float) -> None:
+    if not cols:
+        return
+    c = np.array(sorted(cols), dtype=np.int64)
+    gt = g[:, c] + l2 * P[:, c]
+    A[:, c] += gt * gt
+    P[:, c] -= lr * gt / np.sqrt(A[:, c])
+
+
+def _apply_shared(a: dict[str, Any], g: dict[str, Any]) -> None:
+    cfg, hyp = a["cfg"], a["hyp"]
+    lr_s, l2_s = hyp[1], hyp[3]
+    if a["W"].shape[0] > 0:
+        _apply_cols(a["W"], a["AW"], g["W"], list(g["touchW"]), lr_s, l2_s)
+    if cfg[6]:
+        _apply_cols(a["G"], a["AG"], g["G"], list(g["touchC"]), lr_s, l2_s)
+    if hyp[6] > 0.0:
+        _apply_cols(a["H"], a["AH"], g["H"], list(g["touchC"]), hyp[7], l2_s)
+    for i in range(2):
+        gi = g["sc"][i]
+        if gi != 0.0:
+            a["asc"][i] += gi * gi
+            a["sc"][i] -= hyp[7] * gi / math.sqrt(a["asc"][i])
+
+
+def _store_member(a: dict[str, Any], r: int, now: float, od: Arr, gm: Arr) -> None:
+    acc = a["acc"][r].astype(np.float64) + gm * gm
+    a["acc"][r] = acc
+    step = np.full(gm.shape[0], a["hyp"][0])
+    step[: int(a["cfg"][1])] = a["hyp"][7]
+    a["own"][r] = od - step * gm / np.sqrt(a["acc"][r].astype(np.float64))
+    if a["last_t"].shape[0] > 0 and not math.isnan(now):
+        a["last_t"][r] = now
+
+
+def _store_features(a: dict[str, Any], r: int, e: int, m: int) -> None:
+    fs_idx, fi = a["fs_idx"], a["feat_idx"]
+    if fs_idx.shape[0] == 0 or fi.shape[0] == 0 or fi.shape[2] == 0 or fi[e, m, 0] < 0:
+        return
+    k = min(fs_idx.shape[1], fi.shape[2])
+    fs_idx[r] = -1
+    a["fs_val"][r] = 0.0
+    fs_idx[r, :k] = fi[e, m, :k]
+    a["fs_val"][r, :k] = np.where(fi[e, m, :k] >= 0, a["feat_val"][e, m, :k], 0.0)
+
+
+_NAMES = ("first", "second", "n1", "n2", "score", "ctx_idx", "ctx_val", "time_s", "feat_idx",
+          "feat_val", "own", "acc", "last_t", "fs_idx", "fs_val", "W", "AW", "G", "AG", "H",
+          "AH", "sc", "asc", "cfg", "hyp")  # fmt: skip
+
+
+def learn_seq(*args: Arr) -> None:
+    """Predict-then-learn over events in order; writes (p_win, p_draw) into ``p_out``."""
+    a = dict(zip(_NAMES, args[:-1], strict=True))
+    p_out = args[-1]
+    hyp = a["hyp"]
+    for e in range(a["first"].shape[0]):
+        f = _forward(e, a)
+        p_out[e, 0], p_out[e, 1] = f["p"][0], f["p"][1]
+        g = _grad_buffers(a)
+        for r, m, od, gm in _backward(e, a, f, g):
+            if r >= 0:
+                _store_member(a, r, float(a["time_s"][e]), od, gm)
+                _store_features(a, r, e, m)
+        _apply_shared(a, g)
+        now = float(a["time_s"][e])
+        if not math.isnan(now) and (math.isnan(hyp[5]) or now > hyp[5]):
+            hyp[5] = now
+
+
+def predict_seq(first: Arr, second: Arr, n1: Arr, n2: Arr, ctx_idx: Arr, ctx_val: Arr,
+                time_s: Arr, feat_idx: Arr, feat_val: Arr, own: Arr, last_t: Arr, fs_idx: Arr,
+                fs_val: Arr, W: Arr, G: Arr, H: Arr, sc: Arr, cfg: Arr, hyp: Arr,
+                p_out: Arr) -> None:  # fmt: skip
+    """Probabilities of every event from the current state; changes nothing."""
+    a = {"first": first, "second": second, "n1": n1, "n2": n2, "ctx_idx": ctx_idx,
+         "ctx_val": ctx_val, "time_s": time_s, "feat_idx": feat_idx, "feat_val": feat_val,
+         "own": own, "last_t": last_t, "fs_idx": fs_idx, "fs_val": fs_val, "W": W, "G": G,
+         "H": H, "sc": sc, "cfg": cfg, "hyp": hyp}  # fmt: skip
+    for e in range(first.shape[0]):
+        p = _forward(e, a)["p"]
+        p_out[e, 0], p_out[e, 1] = p[0], p[1]
+
+
+def learn_minibatch(*args: Arr) -> None:
+    """Predict every event from the batch-start state, then one combined AdaGrad step."""
+    a = dict(zip(_NAMES, args[:-4], strict=True))
+    p_out, uniq, loc1, loc2 = args[-4:]
+    hyp = a["hyp"]
+    D = a["own"].shape[1]
+    U = uniq.shape[0]
+    gown = np.zeros((U, D))
+    tmax = np.full(U, np.nan)
+    last_em: dict[int, tuple[int, int]] = {}
+    g = _grad_buffers(a)
+    k1 = a["first"].shape[1]
+    fi = a["feat_idx"]
+    for e in range(a["first"].shape[0]):
+        f = _forward(e, a)
+        p_out[e, 0], p_out[e, 1] = f["p"][0], f["p"][1]
+        now = float(a["time_s"][e])
+        for r, m, _, gm in _backward(e, a, f, g):
+            if r < 0:
+                continue
+            u = int(loc1[e, m] if m < k1 else loc2[e, m - k1])
+            gown[u] += gm
+            if not math.isnan(now) and (math.isnan(tmax[u]) or now > tmax[u]):
+                tmax[u] = now
+            if fi.shape[0] > 0 and fi.shape[2] > 0 and fi[e, m, 0] >= 0:
+                last_em[u] = (e, m)
+    for u in range(U):
+        r = int(uniq[u])
+        now = float(tmax[u])
+        dec = 1.0
+        if hyp[4] > 0.0 and a["last_t"].shape[0] > 0 and not math.isnan(now):
+            lt = a["last_t"][r]
+            if not math.isnan(lt) and now > lt:
+                dec = math.exp(-hyp[4] * (now - lt) / 86400.0)
+        _store_member(a, r, now, a["own"][r].astype(np.float64) * dec, gown[u])
+        if u in last_em:
+            _store_features(a, r, *last_em[u])
+    _apply_shared(a, g)
+    times = a["time_s"][~np.isnan(a["time_s"])]
+    if times.size and (math.isnan(hyp[5]) or times.max() > hyp[5]):
+        hyp[5] = float(times.max())
