@@ -45,7 +45,7 @@ PATCHES = ("1.4", "1.5")
 STYLE_NAMES = ("lancer", "warden", "trickster", "sapper", "drifter", "herald", "seer")
 _KNOWN = ("kestrel", "marlow", "tindra", "oskel", "brisa", "vantor")
 _HEAD = ("ka", "mo", "ti", "os", "bri", "van", "quel", "ro", "sel", "dun", "ha", "fe", "ly", "zo")
-_TAIL = ("strel", "rlow", "ndra", "kel", "sa", "tor", "wyn", "mir", "dak", "lis", "vo", "ren")
+_TAIL = ("strel", "rvek", "nzar", "kel", "quo", "tor", "wyx", "mir", "dak", "lox", "vo", "rux")
 START = datetime(2026, 3, 1, tzinfo=UTC)
 
 
