@@ -27,11 +27,13 @@ import math
 import time
 import tracemalloc
 from collections.abc import Callable
+from datetime import UTC, datetime, timedelta
 
 import numpy as np
 
 from streamrate.batch import EncodedBatch
 from streamrate.encode import EntityTable
+from streamrate.events import MatchEvent
 from streamrate.models.matchup import BladeChest, BladeChestDistance, BradleyTerry, MatchupModel
 
 
@@ -145,6 +147,59 @@ def model_runner(
     return runner
 
 
+# The encoded events carry no context, so the kernels run without it.
+PLAIN: dict[str, object] = {"context": "none"}
+
+
+def make_events(n: int, n_ent: int, seed: int = 2) -> list[MatchEvent]:
+    """Pre-parsed 1v1 events with a map and a mode, as the consumer hands them on."""
+    rng = np.random.default_rng(seed)
+    i = rng.integers(0, n_ent, n)
+    j = (i + rng.integers(1, n_ent, n)) % n_ent
+    maps = ("saltflats", "ember-quarry", "glasswood", "sunken-bell")
+    start = datetime(2026, 3, 1, tzinfo=UTC)
+    return [
+        MatchEvent(
+            match_id=f"m-{k}",
+            finished_at=start + timedelta(seconds=10 * k),
+            first=(f"quill-{i[k]}",),
+            second=(f"quill-{j[k]}",),
+            score=float(rng.random() < 0.5),
+            context={"map": maps[k % 4], "mode": "duel"},
+        )
+        for k in range(n)
+    ]
+
+
+def speed_events(n: int, n_ent: int) -> None:
+    """Events/s through ``learn_many`` on pre-parsed MatchEvent objects: encoding
+    (id lookups, context hashing) plus the compiled update, the path that replay
+    and the service take."""
+    from streamrate.models.elo import Elo
+
+    events = make_events(n, n_ent)
+    warm = make_events(200, n_ent, seed=3)
+    makers: list[tuple[str, Callable[[], object]]] = [
+        ("elo", Elo),
+        ("bradley_terry", BradleyTerry),
+        *[
+            (f"blade_chest d={d} (context none)", lambda d=d: BladeChest(dims=d, **PLAIN))
+            for d in (8, 16, 32)
+        ],  # fmt: skip
+        ("blade_chest d=16 (context stacked)", lambda: BladeChest(dims=16)),
+        ("blade_chest defaults (d=8, stacked)", BladeChest),
+    ]
+    rates: dict[str, float] = {}
+    for name, make in makers:
+        m = make()
+        m.learn_many(warm)  # type: ignore[attr-defined]
+        rates[name] = n / timed(lambda m=m: m.learn_many(events), repeat=1)  # type: ignore[attr-defined]
+    print(f"\n{n:,} pre-parsed 1v1 MatchEvent objects (map + mode context) through learn_many")
+    print(f"{'path':<62}{'events/s':>12}{'/ elo':>8}")
+    for name, rate in rates.items():
+        print(f"{name:<62}{rate:>12,.0f}{rate / rates['elo']:>8.2f}")
+
+
 def speed(n: int, n_ent: int, n_slow: int) -> None:
     b = make_batch(n, n_ent)
     small = make_batch(200, n_ent, seed=1)
@@ -153,13 +208,24 @@ def speed(n: int, n_ent: int, n_slow: int) -> None:
     rows: list[tuple[str, Callable[[EncodedBatch, int], Callable[[], object]], EncodedBatch]] = [
         ("elo (" + elo_name + ")", elo, b),
         ("bradley_terry", model_runner(lambda: BradleyTerry()), b),
-        ("blade_chest d=16", model_runner(lambda: BladeChest(dims=16)), b),
-        ("blade_chest_dist d=16", model_runner(lambda: BladeChestDistance(dims=16)), b),
-        ("blade_chest d=16 mini-batch 1000", model_runner(lambda: BladeChest(dims=16), 1000), b),
-        ("blade_chest d=16 mini-batch 100", model_runner(lambda: BladeChest(dims=16), 100), b),
+        *[
+            (f"blade_chest d={d}", model_runner(lambda d=d: BladeChest(dims=d, **PLAIN)), b)
+            for d in (8, 16, 32)
+        ],
+        ("blade_chest_dist d=16", model_runner(lambda: BladeChestDistance(dims=16, **PLAIN)), b),
+        (
+            "blade_chest d=16 mini-batch 1000",
+            model_runner(lambda: BladeChest(dims=16, **PLAIN), 1000),
+            b,
+        ),
+        (
+            "blade_chest d=16 mini-batch 100",
+            model_runner(lambda: BladeChest(dims=16, **PLAIN), 100),
+            b,
+        ),
         (
             "blade_chest d=16 backend=numpy",
-            model_runner(lambda: BladeChest(dims=16, backend="numpy")),
+            model_runner(lambda: BladeChest(dims=16, backend="numpy", **PLAIN)),
             slow,
         ),
         ("per-event numpy baseline d=16", lambda bb, ne: lambda: numpy_baseline(bb, ne), slow),
@@ -204,9 +270,11 @@ def main() -> None:
     ap.add_argument("--events", type=int, default=1_000_000)
     ap.add_argument("--entities", type=int, default=100_000)
     ap.add_argument("--slow-events", type=int, default=20_000)
+    ap.add_argument("--parsed-events", type=int, default=200_000)
     ap.add_argument("--memory-entities", type=int, default=1_000_000)
     args = ap.parse_args()
     speed(args.events, args.entities, args.slow_events)
+    speed_events(args.parsed_events, args.entities)
     memory(args.memory_entities)
 
 

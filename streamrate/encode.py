@@ -83,7 +83,7 @@ class EntityTable:
     def __init__(self) -> None:
         self._rows: dict[str, int] = {}
         self._ids: list[str] = []
-        self.counts = np.zeros(16, dtype=np.int64)
+        self.counts = np.zeros(16, dtype=np.int32)  # int32: 4 bytes per entity matters at 10^6
 
     def __len__(self) -> int:
         return len(self._ids)
@@ -133,7 +133,7 @@ class EntityTable:
     def from_arrays(cls, arrays: Mapping[str, np.ndarray]) -> EntityTable:
         try:
             blob = bytes(np.asarray(arrays["entity_ids"], dtype=np.uint8))
-            counts = np.asarray(arrays["entity_counts"], dtype=np.int64)
+            counts = np.asarray(arrays["entity_counts"], dtype=np.int32)
         except KeyError as exc:
             raise StateError(f"saved state lacks the array {exc.args[0]!r}") from exc
         ids = blob.decode("utf-8").split("\n") if blob else []
@@ -146,6 +146,6 @@ class EntityTable:
         table._rows = {e: i for i, e in enumerate(ids)}
         if len(table._rows) != len(ids):
             raise StateError("saved state is inconsistent: an entity id is listed twice")
-        table.counts = np.zeros(max(16, 2 * len(ids)), dtype=np.int64)
+        table.counts = np.zeros(max(16, 2 * len(ids)), dtype=np.int32)
         table.counts[: len(ids)] = counts
         return table
