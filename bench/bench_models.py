@@ -185,7 +185,7 @@ def speed_events(n: int, n_ent: int) -> None:
         *[
             (f"blade_chest d={d} (context none)", lambda d=d: BladeChest(dims=d, **PLAIN))
             for d in (8, 16, 32)
-        ],  # fmt: skip
+        ],
         ("blade_chest d=16 (context stacked)", lambda: BladeChest(dims=16)),
         ("blade_chest defaults (d=8, stacked)", BladeChest),
     ]
