@@ -125,35 +125,66 @@ def logit(p: npt.ArrayLike) -> FloatArray:
     return np.log(pa) - np.log1p(-pa)
 
 
+def sigmoid(z: npt.ArrayLike) -> FloatArray:
+    """Logistic function, safe for large ``|z|``."""
+    za = np.asarray(z, dtype=np.float64)
+    return np.exp(-np.logaddexp(0.0, -za))
+
+
+def _nll(z: FloatArray, y: FloatArray) -> float:
+    # -[y log s(z) + (1 - y) log(1 - s(z))] written with logaddexp: no overflow.
+    return float(np.sum(y * np.logaddexp(0.0, -z) + (1.0 - y) * np.logaddexp(0.0, z)))
+
+
 def calibration_slope_intercept(
     e: npt.ArrayLike, y: npt.ArrayLike, max_iter: int = 100, tol: float = 1e-10
 ) -> tuple[float, float]:
-    """(slope, intercept) of the logistic regression of ``y`` on ``logit(e)``.
+    """``(slope, intercept)`` of ``logit P(y) = intercept + slope * logit(e)``.
 
-    Fitted by Newton's method on the (fractional-outcome) log-likelihood. Returns
-    NaNs when the fit does not exist (all outcomes equal, or constant forecasts).
+    Newton's method with step halving from (slope 1, intercept 0), so strongly
+    over-confident forecasts (logits of 10 and more) converge instead of
+    overflowing. Draws enter as the fractional outcome 0.5. NaNs when the fit is
+    undefined: fewer than 2 events, all outcomes equal, constant forecasts, or
+    no convergence (perfect separation).
+
+    >>> rng = np.random.default_rng(0)
+    >>> z = rng.normal(0, 1.5, 20000); y = (rng.random(20000) < sigmoid(z)).astype(float)
+    >>> b, a = calibration_slope_intercept(sigmoid(3 * z), y)
+    >>> round(b, 2), abs(round(a, 1))
+    (0.33, 0.0)
     """
-    ea, ya = _arrays(e, y)
-    x = logit(ea)
-    if ea.size < 2 or np.ptp(x) == 0.0 or np.all(ya == ya[0]):
-        return float("nan"), float("nan")
+    pa = np.asarray(e, dtype=np.float64).ravel()
+    ya = np.asarray(y, dtype=np.float64).ravel()
+    nan = (float("nan"), float("nan"))
+    if pa.size < 2 or np.ptp(ya) == 0:
+        return nan
+    x = logit(pa)
+    if np.ptp(x) < 1e-12:
+        return nan
     design = np.column_stack([np.ones_like(x), x])
-    beta = np.array([0.0, 1.0])
+    theta = np.array([0.0, 1.0])
+    current = _nll(design @ theta, ya)
     for _ in range(max_iter):
-        p = 1.0 / (1.0 + np.exp(-(design @ beta)))
-        grad = design.T @ (ya - p)
-        w = p * (1.0 - p)
-        hess = design.T @ (design * w[:, None])
+        mu = sigmoid(design @ theta)
+        grad = design.T @ (mu - ya)
+        hess = design.T @ (design * (mu * (1.0 - mu))[:, None])
         try:
             step = np.linalg.solve(hess, grad)
         except np.linalg.LinAlgError:
-            return float("nan"), float("nan")
-        beta = beta + step
-        if not np.all(np.isfinite(beta)):
-            return float("nan"), float("nan")
-        if np.max(np.abs(step)) < tol:
-            break
-    return float(beta[1]), float(beta[0])
+            return nan
+        scale = 1.0
+        while scale > 1e-8:
+            cand = theta - scale * step
+            value = _nll(design @ cand, ya)
+            if value <= current + 1e-12 * (1.0 + abs(current)):
+                break
+            scale *= 0.5
+        else:
+            return nan
+        theta, current = cand, value
+        if np.max(np.abs(scale * step)) < tol * (1.0 + np.max(np.abs(theta))):
+            return (float(theta[1]), float(theta[0])) if np.all(np.abs(theta) < 1e6) else nan
+    return nan
 
 
 @dataclass(frozen=True)
