@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import json
+from pathlib import Path
+from typing import Annotated, Any
 
 import typer
 
@@ -11,6 +13,7 @@ app = typer.Typer(
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
+    rich_markup_mode=None,  # help texts show [brackets] literally
 )
 
 
@@ -20,6 +23,405 @@ def schema() -> None:
     from streamrate.events import event_schema
 
     typer.echo(json.dumps(event_schema(), indent=2))
+
+
+Opt = typer.Option
+
+
+@app.command()
+def simulate(
+    out: Annotated[Path, Opt("--out", "-o", help="Event file to write (JSON lines).")],
+    world: Annotated[
+        str, Opt(help="Preset world: plain, cyclic (3 styles + map effects), patch, teams.")
+    ] = "plain",
+    entities: Annotated[int | None, Opt(help="Number of players.")] = None,
+    matches: Annotated[int | None, Opt(help="Number of matches.")] = None,
+    team_size: Annotated[int | None, Opt(help="Players per side (1 = solo).")] = None,
+    skill_spread: Annotated[float | None, Opt(help="Std of skills (logit scale).")] = None,
+    styles: Annotated[
+        int | None, Opt(help="Cyclic styles (0 = none, 3 = rock-paper-scissors).")
+    ] = None,
+    cycle_strength: Annotated[
+        float | None, Opt(help="Logit edge of a style over the next one.")
+    ] = None,
+    map_effect: Annotated[
+        float | None, Opt(help="Logit edge a map gives its favoured style.")
+    ] = None,
+    draw_rate: Annotated[
+        float | None, Opt(help="P(draw) between equal sides (Davidson's model).")
+    ] = None,
+    arrival_fraction: Annotated[
+        float | None, Opt(help="Share of players present at the start; the rest arrive later.")
+    ] = None,
+    drift: Annotated[
+        float | None, Opt(help="Std of each skill's random walk over the whole run.")
+    ] = None,
+    patch_at: Annotated[
+        float | None, Opt(help="Balance patch at this fraction of the matches.")
+    ] = None,
+    patch_shift: Annotated[
+        float | None, Opt(help="Logit shift of style strengths by the patch.")
+    ] = None,
+    features: Annotated[
+        bool | None,
+        Opt("--features/--no-features", help="Add style_hint and training_hours features."),
+    ] = None,
+    days: Annotated[float | None, Opt(help="Time span of the matches in days.")] = None,
+    seed: Annotated[int | None, Opt(help="Random seed (same seed, same file).")] = None,
+    truth: Annotated[
+        bool,
+        Opt("--truth/--no-truth", help="Also write OUT.truth.json with true expected scores."),
+    ] = True,
+) -> None:
+    """Write an invented Quillrock world with known win probabilities, and its log-loss floor."""
+    knobs = {k: v for k, v in locals().items() if k not in ("out", "world", "truth")}
+    from streamrate.errors import StreamrateError
+    from streamrate.evaluate import TextProgress
+    from streamrate.simulate import simulate as draw_world
+    from streamrate.simulate import summary, world_spec, write_world
+
+    try:
+        spec = world_spec(world, **knobs)
+        bar = TextProgress(spec.matches, "simulate")
+        drawn = draw_world(spec, progress=bar.update)
+        bar.close()
+        side = write_world(drawn, out, truth=truth)
+    except StreamrateError as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(2) from exc
+    typer.echo(summary(drawn), err=True)
+    typer.echo(f"wrote {out}" + (f" and {side}" if side else ""), err=True)
+
+
+_MODEL_HELP = (
+    "Model to run, repeatable: [LABEL=]KIND[:KEY=VALUE,...], e.g. elo, "
+    "'blade_chest:dims=16,lr=0.05', 'wide=blade_chest:dims=32'. Values are JSON "
+    "(numbers, true/false) or plain text. The first model is the reference."
+)
+
+
+@app.command()
+def replay(
+    file: Annotated[Path, typer.Argument(help="Time-ordered event file (JSON lines).")],
+    model: Annotated[list[str] | None, Opt("--model", "-m", help=_MODEL_HELP)] = None,
+    config: Annotated[
+        list[Path] | None,
+        Opt("--config", "-c", help="TOML file with [models.LABEL] tables (kind, settings)."),
+    ] = None,
+    all_models: Annotated[
+        bool, Opt("--all-models", help="Run every built-in model with its default settings.")
+    ] = False,
+    burn_in: Annotated[
+        str | None,
+        Opt(
+            help="Score only events after this: an event count (5000) or a time "
+            "(YYYY-MM-DD = midnight UTC, or RFC 3339). All events still train."
+        ),
+    ] = None,
+    as_json: Annotated[bool, Opt("--json", help="Print one JSON object keyed by model.")] = False,
+    plot: Annotated[Path | None, Opt(help="Write a reliability diagram PNG here.")] = None,
+    allow_unordered: Annotated[
+        bool,
+        Opt(
+            "--allow-unordered",
+            help="Replay in file order even when finished_at goes backwards (else an error).",
+        ),
+    ] = False,
+) -> None:
+    """Prequential replay: each model predicts each match, then learns from it.
+
+    Log loss (nats) and Brier score are taken on the first side's expected score
+    P(win) + P(draw)/2 against its score 1 / 0.5 / 0; accuracy over decisive
+    matches; ECE on 10 equal-width bins weighted by count; calibration slope and
+    intercept from a logistic regression of the score on logit(forecast). Every
+    model after the first gets a 95% paired circular block bootstrap interval
+    (2000 resamples, seed 0) of its mean log-loss difference to the first.
+    If FILE.truth.json exists (from `streamrate simulate`), the floor is shown.
+    """
+    from streamrate.errors import StreamrateError
+    from streamrate.evaluate import format_table, run_replay
+    from streamrate.modelspec import builtin_specs, parse_model_spec, specs_from_toml, unique_specs
+
+    try:
+        specs = [parse_model_spec(m) for m in model or []]
+        for path in config or []:
+            specs.extend(specs_from_toml(path))
+        if all_models:
+            specs.extend(builtin_specs())
+        report = run_replay(
+            file,
+            unique_specs(specs),
+            burn_in=burn_in,
+            plot=plot,
+            allow_unordered=allow_unordered,
+        )
+    except StreamrateError as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(2) from exc
+    if as_json:
+        typer.echo(json.dumps(report.to_json(), indent=2))
+    else:
+        typer.echo(format_table(report))
+    if plot is not None:
+        typer.echo(f"wrote {plot}", err=True)
+
+
+def _service_settings(
+    config: Path | None, redis_url: str | None, overrides: list[str] | None
+) -> Any:
+    from streamrate.config import load_settings
+
+    sets = list(overrides or [])
+    if redis_url is not None:
+        sets.append(f"redis.url={redis_url}")
+    return load_settings(config, sets)
+
+
+ConfigOpt = Annotated[
+    Path | None,
+    typer.Option("--config", "-c", help="Settings file (TOML), e.g. configs/service.toml."),
+]
+RedisOpt = Annotated[
+    str | None,
+    typer.Option("--redis-url", help="redis:// or rediss:// URL (user:password@ allowed)."),
+]
+SetOpt = Annotated[
+    list[str] | None,
+    typer.Option("--set", help="Override a setting: dotted.key=value (repeatable)."),
+]
+SpaceOpt = Annotated[str | None, typer.Option("--space", help="Model space (default: the first).")]
+
+
+@app.command()
+def serve(config: ConfigOpt = None, redis_url: RedisOpt = None, set_: SetOpt = None) -> None:
+    """Consume the event stream, keep the model current, answer queries (until SIGTERM)."""
+    import logging
+
+    from streamrate.errors import StreamrateError
+    from streamrate.service import redis_factory, serve_forever
+
+    try:
+        settings = _service_settings(config, redis_url, set_)
+        logging.basicConfig(
+            level=settings.log_level, format="%(asctime)s %(levelname)s %(name)s: %(message)s"
+        )
+        code = serve_forever(settings, redis_factory(settings.redis))
+    except StreamrateError as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(2) from exc
+    raise typer.Exit(code)
+
+
+@app.command()
+def send(
+    file: Annotated[Path, typer.Argument(help="JSON-lines event file.", exists=True)],
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    space: SpaceOpt = None,
+    rate: Annotated[
+        float | None, typer.Option(help="Events per second (default: flat out).")
+    ] = None,
+) -> None:
+    """Add the events of FILE to a space's stream (one entry per line, field 'event')."""
+    import redis as redis_lib
+
+    from streamrate.client import event_lines, send_events
+    from streamrate.errors import StreamrateError
+    from streamrate.evaluate import TextProgress
+    from streamrate.service import redis_factory
+
+    try:
+        settings = _service_settings(config, redis_url, set_)
+        sp = settings.space(space)
+        client = redis_factory(settings.redis)()
+        total = sum(1 for _ in event_lines(file))
+        bar = TextProgress(total, f"send {sp.name}")
+        n = send_events(
+            client,
+            settings.keys(sp).events,
+            event_lines(file),
+            sp.event_field,
+            rate,
+            progress=bar.update,
+        )
+        bar.close()
+    except (StreamrateError, redis_lib.RedisError) as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(2) from exc
+    typer.echo(f"sent {n} entries to {settings.keys(sp).events}")
+
+
+@app.command()
+def ask(
+    first: Annotated[str | None, typer.Argument(help="First side: ids joined by commas.")] = None,
+    second: Annotated[str | None, typer.Argument(help="Second side: ids joined by commas.")] = None,
+    lobby: Annotated[str | None, typer.Option(help="Lobby: ids joined by commas.")] = None,
+    teams: Annotated[str, typer.Option(help="Team sizes for --lobby, e.g. 2,2.")] = "",
+    context: Annotated[
+        list[str] | None, typer.Option(help="name=category or name:=number (repeatable).")
+    ] = None,
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    space: SpaceOpt = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the raw JSON reply.")] = False,
+    schema: Annotated[
+        bool, typer.Option("--schema", help="Print the request JSON Schema.")
+    ] = False,
+    timeout_s: Annotated[float, typer.Option("--timeout", help="Seconds to wait.")] = 5.0,
+) -> None:
+    """Ask the running service: P(FIRST beats SECOND), or the most even split of a lobby."""
+    import redis as redis_lib
+
+    from streamrate.client import ask as ask_service
+    from streamrate.client import format_reply, parse_context
+    from streamrate.errors import StreamrateError
+    from streamrate.queries import request_schema
+    from streamrate.service import redis_factory
+
+    if schema:
+        typer.echo(json.dumps(request_schema(), indent=2))
+        return
+    try:
+        ctx = parse_context(context or [])
+        if lobby is not None:
+            sizes = [int(x) for x in teams.split(",") if x.strip()]
+            req: dict[str, Any] = {
+                "kind": "lobby",
+                "entities": lobby.split(","),
+                "team_sizes": sizes,
+                "context": ctx,
+            }
+        elif first and second:
+            req = {"kind": "pairing", "first": first.split(","), "second": second.split(",")}
+            req["context"] = ctx
+        else:
+            raise typer.BadParameter("give FIRST and SECOND, or --lobby with --teams")
+        settings = _service_settings(config, redis_url, set_)
+        keys = settings.keys(settings.space(space))
+        reply = ask_service(redis_factory(settings.redis)(), keys.requests, req, timeout_s)
+    except (StreamrateError, redis_lib.RedisError, ValueError) as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(2) from exc
+    typer.echo(json.dumps(reply, indent=2) if as_json else format_reply(reply))
+    if not reply.get("ok"):
+        raise typer.Exit(1)
+
+
+@app.command()
+def watch(
+    pairing: Annotated[
+        list[str] | None, typer.Argument(help="Pairings to watch: first,ids:second,ids.")
+    ] = None,
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    space: SpaceOpt = None,
+) -> None:
+    """Follow the live feed (after setting the watch list, when pairings are given)."""
+    import threading
+
+    import redis as redis_lib
+
+    from streamrate.client import ask as ask_service
+    from streamrate.client import follow
+    from streamrate.errors import StreamrateError
+    from streamrate.service import redis_factory
+
+    def show(msg: dict[str, Any]) -> None:
+        typer.echo(
+            f"{'+'.join(msg['first'])} vs {'+'.join(msg['second'])}: "
+            f"{msg['p_first_wins']:.3f}  (after {msg['match_id']}, {msg['model_version']})"
+        )
+
+    try:
+        settings = _service_settings(config, redis_url, set_)
+        keys = settings.keys(settings.space(space))
+        make = redis_factory(settings.redis)
+        if pairing:
+            pairs = []
+            for p in pairing:
+                a, sep, b = p.partition(":")
+                if not sep:
+                    raise typer.BadParameter(f"{p!r}: write first,ids:second,ids")
+                pairs.append({"first": a.split(","), "second": b.split(",")})
+            req = {"kind": "watch", "action": "set", "pairings": pairs}
+            reply = ask_service(make(), keys.requests, req)
+            if not reply.get("ok"):
+                raise typer.BadParameter(str(reply.get("error")))
+        typer.echo(f"following {keys.live} (Ctrl-C to stop)", err=True)
+        follow(make(), keys.live, show, threading.Event())
+    except KeyboardInterrupt:
+        return
+    except (StreamrateError, redis_lib.RedisError) as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(2) from exc
+
+
+@app.command()
+def demo(
+    redis_url: RedisOpt = None,
+    matches: Annotated[int, typer.Option(help="Matches the simulated world sends.")] = 6000,
+    model: Annotated[str, typer.Option(help="Model the service runs.")] = "blade_chest",
+    rate: Annotated[float, typer.Option(help="Events per second sent.")] = 1500.0,
+    seed: Annotated[int, typer.Option(help="World seed.")] = 7,
+) -> None:
+    """Everything in one process: world -> stream -> service -> queries -> live feed."""
+    from streamrate.demo import run_demo
+    from streamrate.errors import StreamrateError
+
+    try:
+        run_demo(redis_url, matches=matches, rate_per_s=rate, model=model, seed=seed)
+    except StreamrateError as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(2) from exc
+
+
+@app.command()
+def health(
+    url: Annotated[
+        str, typer.Option(help="Metrics endpoint of a running service.")
+    ] = "http://127.0.0.1:9464/metrics",
+    checkpoint: Annotated[
+        Path | None, typer.Option(help="Read this checkpoint file instead of a running service.")
+    ] = None,
+    plot: Annotated[
+        Path | None, typer.Option(help="Also write a PNG of each figure against its alert level.")
+    ] = None,
+) -> None:
+    """One-screen health report with a verdict per line (ok / watch / bad / n/a).
+
+    Exit code 0 when nothing is bad, 1 when a line is past its alert level, 2 when
+    the source cannot be read. Thresholds are those of the Prometheus alert rules.
+    """
+    from streamrate.errors import StreamrateError
+    from streamrate.health import (
+        BAD,
+        fetch_metrics,
+        format_report,
+        from_checkpoint,
+        from_metrics_text,
+        health_png,
+        worst,
+    )
+
+    try:
+        if checkpoint is not None:
+            lines = from_checkpoint(checkpoint)
+        else:
+            lines = from_metrics_text(fetch_metrics(url))
+        typer.echo(format_report(lines))
+        if plot is not None:
+            health_png(plot, lines)
+            typer.echo(f"wrote {plot}", err=True)
+    except StreamrateError as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(2) from exc
+    verdict = worst(lines)
+    typer.echo(f"overall: {verdict}", err=True)
+    if verdict == BAD:
+        raise typer.Exit(1)
 
 
 def main() -> None:  # pragma: no cover - console entry point

@@ -1,0 +1,129 @@
+"""Operational metrics of the service (Prometheus), on an injected registry.
+
+Names follow ``streamrate_<subsystem>_<name>_<unit>``; counters end in
+``_total``. Every label takes values from a closed set that is pre-initialised,
+so a series exists (at 0) before its first event and dashboards never see gaps.
+
+The HTTP endpoint is off by default; :func:`serve_metrics` starts it on the
+configured bind address and port.
+
+>>> from prometheus_client import CollectorRegistry
+>>> m = ServiceMetrics(CollectorRegistry(), spaces=["duel"])
+>>> m.events.labels(space="duel", outcome="applied").inc(3)
+>>> m.registry.get_sample_value(
+...     "streamrate_consumer_events_total", {"space": "duel", "outcome": "applied"})
+3.0
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, start_http_server
+
+EVENT_OUTCOMES = ("applied", "dead_lettered", "duplicate")
+QUERY_KINDS = ("pairing", "lobby", "watch", "invalid")
+QUERY_OUTCOMES = ("ok", "error")
+_BATCH_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5)
+_QUERY_BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1)
+
+
+class ServiceMetrics:
+    """All operational series; one instance per process, shared by every space."""
+
+    def __init__(self, registry: CollectorRegistry, spaces: Sequence[str]) -> None:
+        self.registry = registry
+        r = registry
+        self.events = Counter(
+            "streamrate_consumer_events_total",
+            "Stream entries handled by the consumer, by outcome.",
+            ["space", "outcome"],
+            registry=r,
+        )
+        self.loop_errors = Counter(
+            "streamrate_consumer_loop_errors_total",
+            "Unexpected errors caught at the consumer loop boundary.",
+            ["space"],
+            registry=r,
+        )
+        self.claimed = Counter(
+            "streamrate_consumer_claimed_entries_total",
+            "Entries taken over from another consumer after the idle time.",
+            ["space"],
+            registry=r,
+        )
+        self.reconnects = Counter(
+            "streamrate_redis_outages_total",
+            "Times the Redis connection was lost and the service began reconnecting.",
+            ["space"],
+            registry=r,
+        )
+        self.lag = Gauge(
+            "streamrate_consumer_lag_entries",
+            "Entries in the stream not yet delivered to the consumer group.",
+            ["space"],
+            registry=r,
+        )
+        self.pending = Gauge(
+            "streamrate_consumer_pending_entries",
+            "Entries delivered to the group but not yet acknowledged.",
+            ["space"],
+            registry=r,
+        )
+        self.batch_seconds = Histogram(
+            "streamrate_consumer_batch_processing_seconds",
+            "Time to validate and apply one batch read from the stream.",
+            ["space"],
+            buckets=_BATCH_BUCKETS,
+            registry=r,
+        )
+        self.checkpoint_seconds = Histogram(
+            "streamrate_checkpoint_write_seconds",
+            "Time to encode and durably store one checkpoint.",
+            ["space"],
+            buckets=_BATCH_BUCKETS,
+            registry=r,
+        )
+        self.checkpoint_time = Gauge(
+            "streamrate_checkpoint_last_success_timestamp_seconds",
+            "Unix time of the last durable checkpoint (age = time() - this).",
+            ["space"],
+            registry=r,
+        )
+        self.queries = Counter(
+            "streamrate_query_requests_total",
+            "Query requests answered, by kind and outcome.",
+            ["space", "kind", "outcome"],
+            registry=r,
+        )
+        self.query_seconds = Histogram(
+            "streamrate_query_latency_seconds",
+            "Time from receiving a request to publishing its reply.",
+            ["space", "kind"],
+            buckets=_QUERY_BUCKETS,
+            registry=r,
+        )
+        self.live_published = Counter(
+            "streamrate_livefeed_messages_total",
+            "Probability updates published on the live feed.",
+            ["space"],
+            registry=r,
+        )
+        for s in spaces:
+            for o in EVENT_OUTCOMES:
+                self.events.labels(space=s, outcome=o)
+            for metric in (self.loop_errors, self.claimed, self.reconnects, self.live_published):
+                metric.labels(space=s)
+            for g in (self.lag, self.pending, self.checkpoint_time):
+                g.labels(space=s)
+            self.batch_seconds.labels(space=s)
+            self.checkpoint_seconds.labels(space=s)
+            for k in QUERY_KINDS:
+                self.query_seconds.labels(space=s, kind=k)
+                for o in QUERY_OUTCOMES:
+                    self.queries.labels(space=s, kind=k, outcome=o)
+
+
+def serve_metrics(registry: CollectorRegistry, bind: str, port: int) -> None:
+    """Expose ``registry`` over HTTP at ``http://bind:port/metrics`` (daemon thread)."""
+    start_http_server(port, addr=bind, registry=registry)

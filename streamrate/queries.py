@@ -1,0 +1,378 @@
+"""Questions over pub/sub: the request/reply protocol, its JSON Schema, lobby splits.
+
+A client publishes one JSON object on the space's request channel
+(``{sr:duel}:q``) and listens on the ``reply_to`` channel it named; the reply
+carries the same ``id``. Kinds:
+
+* ``pairing`` - ``first``, ``second`` (entity id lists), optional ``context``:
+  reply ``p_first_wins``, ``p_draw`` (``null`` when the model has no draws),
+  ``seen`` (matches learned per entity), ``model_version`` (last applied stream id).
+* ``lobby`` - ``entities`` and ``team_sizes`` ``[a, b]`` with ``a + b`` equal to the
+  number of entities: reply the pairwise matrix ``matrix[i][j]`` = P(i beats j,
+  i listed first; 0.5 on the diagonal) and the ``split`` into teams of those sizes whose
+  predicted outcome is closest to even, with its probability.
+* ``watch`` - ``action`` ``set`` / ``add`` / ``clear`` and ``pairings``: the live feed
+  then publishes fresh odds of those pairings (see :mod:`streamrate.livefeed`).
+
+Anything else gets ``{"id": ..., "ok": false, "error": "<what is wrong>"}``; when
+the request is too broken to name a reply channel the error goes to
+``{sr:space}:q:errors``. Nothing is ever dropped silently.
+
+Lobby split: up to ``lobby_exact_max`` entities every split is scored with the
+model itself (exact). Larger lobbies use a surrogate: entity strength
+``s_i = mean_j logit(matrix[i][j])`` and team value = mean member strength. With
+equal team sizes, entities are taken in pairs by descending strength and the
+stronger of each pair joins the currently weaker team; the final gap of team
+strength sums is then at most the largest within-pair strength gap (each step
+either shrinks the gap or leaves it at most that pair's gap). Best-improvement
+swaps follow and never widen the gap. The reported probability is the model's
+own prediction for the chosen split; ``gap_bound`` states the guarantee in
+surrogate (logit) units.
+"""
+
+from __future__ import annotations
+
+import itertools
+import json
+import math
+import time
+from collections.abc import Callable, Sequence
+from typing import Annotated, Any, Literal, Protocol
+
+import numpy as np
+from pydantic import BaseModel, ConfigDict, Field, TypeAdapter, ValidationError
+
+from streamrate.batch import EncodedBatch
+from streamrate.events import ContextMap, EntityId, Matchup, Side
+from streamrate.models.base import Model, Prediction
+
+CorrelationId = Annotated[str, Field(min_length=1, max_length=128)]
+Channel = Annotated[str, Field(min_length=1, max_length=256, pattern=r"^[^\x00-\x20\x7f]+$")]
+_STRICT = ConfigDict(extra="forbid", frozen=True)
+MAX_WATCH = 256
+
+
+class Pairing(BaseModel):
+    model_config = _STRICT
+    first: Side
+    second: Side
+    context: ContextMap = Field(default_factory=dict)
+
+
+class PairingRequest(Pairing):
+    kind: Literal["pairing"]
+    id: CorrelationId
+    reply_to: Channel
+
+
+class LobbyRequest(BaseModel):
+    model_config = _STRICT
+    kind: Literal["lobby"]
+    id: CorrelationId
+    reply_to: Channel
+    entities: Annotated[list[EntityId], Field(min_length=2, max_length=4096)]
+    team_sizes: tuple[Annotated[int, Field(ge=1)], Annotated[int, Field(ge=1)]]
+    context: ContextMap = Field(default_factory=dict)
+
+
+class WatchRequest(BaseModel):
+    model_config = _STRICT
+    kind: Literal["watch"]
+    id: CorrelationId
+    reply_to: Channel
+    action: Literal["set", "add", "clear"]
+    pairings: Annotated[list[Pairing], Field(max_length=MAX_WATCH)] = Field(default_factory=list)
+
+
+Request = Annotated[PairingRequest | LobbyRequest | WatchRequest, Field(discriminator="kind")]
+_REQUEST = TypeAdapter(Request)
+
+
+def request_schema() -> dict[str, Any]:
+    """JSON Schema (2020-12) of a request (what ``streamrate ask --schema`` prints)."""
+    schema = _REQUEST.json_schema()
+    schema["$schema"] = "https://json-schema.org/draft/2020-12/schema"
+    schema["title"] = "streamrate query request"
+    return schema
+
+
+class ModelView(Protocol):
+    """What the query side needs from the consumer's live model."""
+
+    lock: Any
+    model: Model
+    version: str
+    applied: int
+
+
+def _matchup(first: Sequence[str], second: Sequence[str], context: dict[str, Any]) -> Matchup:
+    # Already validated; skip a second validation in the hot path.
+    return Matchup.model_construct(
+        first=tuple(first), second=tuple(second), context=context, features={}
+    )
+
+
+def pair_matrix(model: Model, ids: Sequence[str], context: dict[str, Any]) -> np.ndarray:
+    """``m[i, j]`` = P(ids[i], listed first, beats ids[j]); 0.5 on the diagonal.
+
+    Both orders are predicted: a model with a first-side advantage or draws gives
+    ``m[i, j] + m[j, i] != 1``.
+    """
+    n = len(ids)
+    m = np.full((n, n), 0.5)
+    if n >= 2 and hasattr(model, "encode") and hasattr(model, "predict_encoded"):
+        return _pair_matrix_encoded(model, ids, context, m)
+    predict = model.predict
+    for i in range(n):
+        a = (ids[i],)
+        for j in range(n):
+            if i != j:
+                m[i, j] = predict(_matchup(a, (ids[j],), context)).p_win
+    return m
+
+
+def _pair_matrix_encoded(
+    model: Any, ids: Sequence[str], context: dict[str, Any], m: np.ndarray
+) -> np.ndarray:
+    # Encode one pairing to learn the context slots, then broadcast the rows of
+    # every i < j pair into one batch: one vectorised prediction for the matrix.
+    one = model.encode([_matchup((ids[0],), (ids[1],), context)], add=False)
+    rows = np.array([model.entities_.get(e) for e in ids], dtype=np.int32)
+    iu, ju = np.nonzero(~np.eye(len(ids), dtype=bool))
+    k = len(iu)
+    batch = EncodedBatch(
+        first=rows[iu].reshape(k, 1),
+        second=rows[ju].reshape(k, 1),
+        score=np.full(k, np.nan),
+        ctx_idx=np.repeat(one.ctx_idx, k, axis=0),
+        ctx_val=np.repeat(one.ctx_val, k, axis=0),
+        time_s=np.full(k, np.nan),
+        first_size=np.ones(k, dtype=np.int32),
+        second_size=np.ones(k, dtype=np.int32),
+    )
+    m[iu, ju] = model.predict_encoded(batch).p_win
+    return m
+
+
+def _closeness(p: Prediction) -> float:
+    return abs(p.expected_score - 0.5)
+
+
+def exact_split(
+    ids: Sequence[str], a: int, predict: Callable[[Sequence[str], Sequence[str]], Prediction]
+) -> tuple[list[int], list[int]]:
+    """Try every split into teams of sizes ``a`` and ``len(ids) - a``; return the most even."""
+    n = len(ids)
+    everyone = range(n)
+    best: tuple[float, list[int], list[int]] | None = None
+    for team in itertools.combinations(everyone, a):
+        if 2 * a == n and 0 not in team:
+            continue  # the mirror split was already scored
+        chosen = set(team)
+        other = [i for i in everyone if i not in chosen]
+        score = _closeness(predict([ids[i] for i in team], [ids[i] for i in other]))
+        if best is None or score < best[0]:
+            best = (score, list(team), other)
+    assert best is not None
+    return best[1], best[2]
+
+
+def heuristic_split(strength: np.ndarray, a: int) -> tuple[list[int], list[int], float, float]:
+    """Surrogate split (see module docstring); returns teams, final gap and its bound.
+
+    Gaps are ``|mean(A) - mean(B)|`` in surrogate units. The bound is only claimed
+    for equal sizes; for unequal sizes it is ``inf``.
+    """
+    n = len(strength)
+    b = n - a
+    order = np.argsort(-strength, kind="stable")
+    in_a = np.zeros(n, dtype=bool)
+    bound = math.inf
+    if a == b:
+        diff = 0.0
+        gaps = []
+        for k in range(0, n, 2):
+            hi, lo = order[k], order[k + 1]
+            gaps.append(strength[hi] - strength[lo])
+            if diff <= 0:
+                in_a[hi] = True
+                diff += strength[hi] - strength[lo]
+            else:
+                in_a[lo] = True
+                diff -= strength[hi] - strength[lo]
+        bound = float(max(gaps)) / a
+    else:
+        sum_a = sum_b = 0.0
+        na = nb = 0
+        for i in order:
+            if nb >= b or (na < a and sum_a / a <= sum_b / b):
+                in_a[i] = True
+                sum_a += strength[i]
+                na += 1
+            else:
+                sum_b += strength[i]
+                nb += 1
+    scale = 1.0 / a + 1.0 / b
+    for _ in range(4 * n):
+        ia, ib = np.flatnonzero(in_a), np.flatnonzero(~in_a)
+        gap = strength[ia].mean() - strength[ib].mean()
+        moved = gap - (strength[ia][:, None] - strength[ib][None, :]) * scale
+        k = int(np.argmin(np.abs(moved)))
+        if abs(moved.flat[k]) >= abs(gap) - 1e-12:
+            break
+        i, j = divmod(k, len(ib))
+        in_a[ia[i]], in_a[ib[j]] = False, True
+    ia, ib = np.flatnonzero(in_a), np.flatnonzero(~in_a)
+    gap = abs(float(strength[ia].mean() - strength[ib].mean()))
+    return ia.tolist(), ib.tolist(), gap, bound
+
+
+def strengths(matrix: np.ndarray) -> np.ndarray:
+    """Surrogate strength per entity: mean log-odds of beating each other entity.
+
+    Both orders count (``(logit m[i, j] - logit m[j, i]) / 2``), which cancels a
+    first-side advantage.
+    """
+    n = len(matrix)
+    p = np.clip(matrix, 1e-6, 1 - 1e-6)
+    lo = np.log(p) - np.log1p(-p)
+    lo = 0.5 * (lo - lo.T)
+    np.fill_diagonal(lo, 0.0)
+    return lo.sum(axis=1) / max(n - 1, 1)
+
+
+class QueryError(ValueError):
+    """A request that cannot be answered; the message goes back to the asker."""
+
+
+def _describe(exc: ValidationError) -> str:
+    parts = []
+    for err in exc.errors(include_url=False):
+        loc = ".".join(str(p) for p in err["loc"]) or "request"
+        parts.append(f"{loc}: {err['msg'].removeprefix('Value error, ')}")
+    return "; ".join(parts[:5])
+
+
+def parse_request(raw: bytes | str, max_bytes: int) -> PairingRequest | LobbyRequest | WatchRequest:
+    """Validate a request; :class:`QueryError` names what is wrong."""
+    if len(raw) > max_bytes:
+        raise QueryError(f"request: {len(raw)} bytes is longer than the limit of {max_bytes}")
+    try:
+        req = _REQUEST.validate_json(raw)
+    except ValidationError as exc:
+        raise QueryError(_describe(exc)) from exc
+    if isinstance(req, PairingRequest):
+        try:
+            Matchup(first=req.first, second=req.second, context=req.context)
+        except ValidationError as exc:
+            raise QueryError(_describe(exc)) from exc
+    return req
+
+
+def salvage_reply_to(raw: bytes | str) -> tuple[str | None, str | None]:
+    """Best-effort (id, reply_to) of a request that failed validation."""
+    try:
+        data = json.loads(raw)
+    except (ValueError, UnicodeDecodeError):
+        return None, None
+    if not isinstance(data, dict):
+        return None, None
+    cid, reply = data.get("id"), data.get("reply_to")
+    ok_reply = isinstance(reply, str) and 0 < len(reply) <= 256 and reply.isprintable()
+    return (cid if isinstance(cid, str) else None), (reply if ok_reply else None)
+
+
+class Answerer:
+    """Turns a validated request into a reply dict, reading the live model under its lock."""
+
+    def __init__(self, view: ModelView, lobby_exact_max: int, lobby_max: int) -> None:
+        self.view = view
+        self.lobby_exact_max = lobby_exact_max
+        self.lobby_max = lobby_max
+
+    def _meta(self) -> dict[str, Any]:
+        return {
+            "model": self.view.model.kind,
+            "model_version": self.view.version,
+            "applied": self.view.applied,
+        }
+
+    def pairing(self, req: PairingRequest) -> dict[str, Any]:
+        mu = _matchup(req.first, req.second, dict(req.context))
+        with self.view.lock:
+            model = self.view.model
+            p = model.predict(mu)
+            seen = {e: model.seen(e) for e in mu.entities()}
+            meta = self._meta()
+        return {
+            "p_first_wins": p.p_win,
+            "p_draw": p.p_draw if model.has_draws else None,
+            "seen": seen,
+            **meta,
+        }
+
+    def lobby(self, req: LobbyRequest) -> dict[str, Any]:
+        ids, (a, b) = req.entities, req.team_sizes
+        if len(set(ids)) != len(ids):
+            raise QueryError("entities: an entity is listed twice")
+        if a + b != len(ids):
+            raise QueryError(f"team_sizes: {a} + {b} does not equal {len(ids)} entities")
+        if len(ids) > self.lobby_max:
+            raise QueryError(f"entities: {len(ids)} is more than the limit of {self.lobby_max}")
+        ctx = dict(req.context)
+        with self.view.lock:
+            model = self.view.model
+
+            def predict(first: Sequence[str], second: Sequence[str]) -> Prediction:
+                return model.predict(_matchup(first, second, ctx))
+
+            matrix = pair_matrix(model, ids, ctx)
+            if len(ids) <= self.lobby_exact_max:
+                ta, tb = exact_split(ids, a, predict)
+                method, gap, bound = "exact", None, 0.0
+            else:
+                ta, tb, gap, bound = heuristic_split(strengths(matrix), a)
+                method = "heuristic"
+            first, second = [ids[i] for i in ta], [ids[i] for i in tb]
+            p = predict(first, second)
+            meta = self._meta()
+            has_draws = model.has_draws
+        return {
+            "entities": ids,
+            "matrix": matrix.round(6).tolist(),
+            "split": {
+                "first": first,
+                "second": second,
+                "p_first_wins": p.p_win,
+                "p_draw": p.p_draw if has_draws else None,
+            },
+            "method": method,
+            "surrogate_gap": gap,
+            "gap_bound": None if math.isinf(bound) else bound,
+            **meta,
+        }
+
+
+def handle(
+    raw: bytes | str,
+    answerer: Answerer,
+    on_watch: Callable[[WatchRequest], dict[str, Any]],
+    max_bytes: int,
+    clock: Callable[[], float] = time.perf_counter,
+) -> tuple[str | None, dict[str, Any], str]:
+    """Answer one raw request: (reply channel or None, reply, kind for metrics)."""
+    try:
+        req = parse_request(raw, max_bytes)
+    except QueryError as exc:
+        cid, reply_to = salvage_reply_to(raw)
+        return reply_to, {"id": cid, "ok": False, "error": str(exc)}, "invalid"
+    try:
+        if isinstance(req, PairingRequest):
+            body = answerer.pairing(req)
+        elif isinstance(req, LobbyRequest):
+            body = answerer.lobby(req)
+        else:
+            body = on_watch(req)
+    except QueryError as exc:
+        return req.reply_to, {"id": req.id, "ok": False, "error": str(exc)}, req.kind
+    return req.reply_to, {"id": req.id, "ok": True, "kind": req.kind, **body}, req.kind

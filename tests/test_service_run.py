@@ -1,0 +1,131 @@
+"""The running service on fakeredis: loop-boundary errors, outages, the demo."""
+
+from __future__ import annotations
+
+import threading
+import time
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import fakeredis
+import numpy as np
+import pytest
+from prometheus_client import CollectorRegistry
+
+from streamrate.client import ask, send_events
+from streamrate.config import CheckpointSettings, RedisSettings, Settings, SpaceSettings
+from streamrate.demo import run_demo
+from streamrate.events import MatchEvent, event_to_json
+from streamrate.models.base import Prediction
+from streamrate.models.registry import build_model
+from streamrate.service import Service
+from streamrate.simulate import simulate, world_spec
+
+WORLD = simulate(world_spec("plain", matches=400, entities=20, seed=3)).events
+
+
+def _wait(cond: Callable[[], bool], what: str, timeout_s: float = 30) -> None:
+    deadline = time.monotonic() + timeout_s
+    while not cond():
+        assert time.monotonic() < deadline, f"timed out waiting for {what}"
+        time.sleep(0.01)
+
+
+def _service(tmp_path: Path, server: fakeredis.FakeServer, observers: Any = ()) -> Service:
+    space = SpaceSettings(
+        name="duel",
+        model="elo",
+        model_settings={"compiled": False},
+        batch_count=40,
+        block_ms=5,
+        checkpoint_every_events=100,
+        dedupe_window_s=1e9,
+    )
+    settings = Settings(
+        redis=RedisSettings(reconnect_min_s=0.01, reconnect_max_s=0.05),
+        checkpoint=CheckpointSettings(dir=tmp_path),
+        spaces=(space,),
+    )
+    return Service(
+        settings, lambda: fakeredis.FakeRedis(server=server), CollectorRegistry(), observers
+    )
+
+
+def _reference_ratings(events: list[MatchEvent]) -> np.ndarray:
+    m = build_model("elo", compiled=False)
+    for ev in events:
+        m.learn(ev)
+    return m.to_state().arrays["ratings"]
+
+
+def test_an_error_inside_the_loop_is_counted_and_the_state_rebuilt(tmp_path: Path) -> None:
+    calls = {"n": 0}
+
+    def flaky(event: MatchEvent, pred: Prediction, kind: str) -> None:
+        calls["n"] += 1
+        if calls["n"] == 150:
+            raise RuntimeError("observer bug")
+
+    server = fakeredis.FakeServer()
+    svc = _service(tmp_path, server, [flaky])
+    stop = threading.Event()
+    svc.start(stop)
+    try:
+        send_events(fakeredis.FakeRedis(server=server), "{sr:duel}:events",
+                    [event_to_json(e) for e in WORLD])  # fmt: skip
+        c = svc.spaces[0].consumer
+        _wait(lambda: c.live.applied == len(WORLD), "all events")
+    finally:
+        stop.set()
+        svc.join()
+    errors = svc.registry.get_sample_value(
+        "streamrate_consumer_loop_errors_total", {"space": "duel"}
+    )
+    assert errors == 1
+    np.testing.assert_allclose(
+        c.live.model.to_state().arrays["ratings"], _reference_ratings(WORLD), rtol=1e-12
+    )
+
+
+def test_an_outage_is_logged_once_and_the_service_resumes(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    server = fakeredis.FakeServer()
+    svc = _service(tmp_path, server)
+    stop = threading.Event()
+    svc.start(stop)
+    r = fakeredis.FakeRedis(server=server)
+    c = svc.spaces[0].consumer
+    try:
+        send_events(r, "{sr:duel}:events", [event_to_json(e) for e in WORLD[:200]])
+        _wait(lambda: c.live.applied == 200, "first half")
+        with caplog.at_level("WARNING", logger="streamrate.service"):
+            server.connected = False
+            time.sleep(0.3)  # several failed attempts inside one outage
+            server.connected = True
+            send_events(r, "{sr:duel}:events", [event_to_json(e) for e in WORLD[200:]])
+            _wait(lambda: c.live.applied == len(WORLD), "second half")
+        # The responder re-subscribes after the outage on its own back-off.
+        _wait(lambda: r.pubsub_numsub("{sr:duel}:q")[0][1] > 0, "the responder")
+        rep = ask(r, "{sr:duel}:q", {"kind": "pairing", "first": ["a"], "second": ["b"]})
+        assert rep["ok"]
+    finally:
+        stop.set()
+        svc.join()
+    outages = [m for m in caplog.messages if "unreachable" in m and "consumer" in m]
+    assert len(outages) == 1
+    assert svc.registry.get_sample_value("streamrate_redis_outages_total", {"space": "duel"}) == 1
+    np.testing.assert_allclose(
+        c.live.model.to_state().arrays["ratings"], _reference_ratings(WORLD), rtol=1e-12
+    )
+
+
+def test_demo_runs_end_to_end_and_scores_its_predictions() -> None:
+    lines: list[str] = []
+    summary = run_demo(matches=1500, entities=20, rate_per_s=20_000, model="elo", out=lines.append)
+    assert summary["applied"] == 1500
+    assert summary["dead_lettered"] == 4 and summary["duplicates"] == 3
+    # A model that learns beats a coin on this world (log loss of 0.5 is ln 2 = 0.693).
+    assert summary["log_loss"] < np.log(2)
+    assert any(line.startswith("[summary]") for line in lines)
