@@ -1,8 +1,11 @@
 PYTHON ?= python3
 
-.PHONY: demo test lint install
+.PHONY: demo test lint install install-test
 
 install:
+	$(PYTHON) -m pip install -q -e .
+
+install-test:
 	$(PYTHON) -m pip install -q -e '.[test]'
 
 # The main job on the embedded default: no server to install.
@@ -10,7 +13,7 @@ demo: install
 	$(PYTHON) -m streamrate demo
 
 # The whole test suite (integration tests start their own redis-server).
-test: install
+test: install-test
 	$(PYTHON) -m ruff check streamrate tests bench
 	$(PYTHON) -m pytest
 

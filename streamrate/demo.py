@@ -208,7 +208,7 @@ def run_demo(
     out(f"  calibration (ECE {summary['ece']:.4f}); predicted -> observed, per bin:")
     for p, o, n in zip(curve.mean_forecast, curve.mean_outcome, curve.count, strict=True):
         if n:
-            out(f"    {p:.2f} -> {o:.2f}  ({int(n)} matches)")
+            out(f"    {p:.3f} -> {o:.3f}  ({int(n)} matches)")
     out(f"[demo] done in {summary['seconds']:.1f} s")
     if redis_url is not None:
         client.delete(keys.events, keys.dead, keys.ckpt)

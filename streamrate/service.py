@@ -16,6 +16,7 @@ from __future__ import annotations
 import json
 import logging
 import signal
+import sys
 import threading
 import time
 from collections.abc import Callable, Sequence
@@ -38,6 +39,7 @@ from streamrate.queries import MAX_WATCH, Answerer, QueryError, WatchRequest, ha
 
 log = logging.getLogger("streamrate.service")
 REDIS_DOWN = (redis.ConnectionError, redis.TimeoutError)
+QUERY_SWITCH_INTERVAL_S = 0.0002
 ClientFactory = Callable[[], Any]
 
 
@@ -286,5 +288,10 @@ def serve_forever(settings: Settings, clients: ClientFactory) -> int:
 
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
+    # Queries and the consumer share the GIL. With Python's default switch
+    # interval (5 ms) a query arriving while a batch is being applied waits for
+    # the whole interval; a shorter one bounds that wait (bench/bench_service.py
+    # measures query latency while the consumer is busy).
+    sys.setswitchinterval(QUERY_SWITCH_INTERVAL_S)
     Service(settings, clients).run(stop)
     return 0
