@@ -359,6 +359,74 @@ def watch(
         raise typer.Exit(2) from exc
 
 
+def _ask_and_print(
+    req: dict[str, Any],
+    config: Path | None,
+    redis_url: str | None,
+    set_: list[str] | None,
+    space: str | None,
+    as_json: bool,
+    timeout_s: float,
+) -> None:
+    """Send one request the way `ask` does; print the reply; exit 1 on an error reply."""
+    import redis as redis_lib
+
+    from streamrate.client import ask as ask_service
+    from streamrate.client import format_reply
+    from streamrate.errors import StreamrateError
+    from streamrate.service import redis_factory
+
+    try:
+        settings = _service_settings(config, redis_url, set_)
+        keys = settings.keys(settings.space(space))
+        reply = ask_service(redis_factory(settings.redis)(), keys.requests, req, timeout_s)
+    except (StreamrateError, redis_lib.RedisError) as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(2) from exc
+    typer.echo(json.dumps(reply, indent=2) if as_json else format_reply(reply))
+    if not reply.get("ok"):
+        raise typer.Exit(1)
+
+
+@app.command()
+def promote(
+    name: Annotated[str, typer.Argument(help="Label of the challenger member to answer.")],
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    space: SpaceOpt = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the raw JSON reply.")] = False,
+    timeout_s: Annotated[float, typer.Option("--timeout", help="Seconds to wait.")] = 5.0,
+) -> None:
+    """Make member NAME of a space's challenger set answer queries (no restart, no state lost)."""
+    req = {"kind": "promote", "model": name}
+    _ask_and_print(req, config, redis_url, set_, space, as_json, timeout_s)
+
+
+@app.command()
+def compare(
+    reference: Annotated[
+        str | None, typer.Option(help="Member the others are compared with (default: active).")
+    ] = None,
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    space: SpaceOpt = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the raw JSON reply.")] = False,
+    timeout_s: Annotated[float, typer.Option("--timeout", help="Seconds to wait.")] = 10.0,
+) -> None:
+    """Side-by-side table of a challenger set's members over the recent events.
+
+    Log loss (nats), Brier score, ECE (10 equal-width bins) and accuracy on the
+    expected score; for every member but the reference a 95% paired circular block
+    bootstrap interval of its mean log-loss difference to the reference.
+    """
+    req: dict[str, Any] = {"kind": "compare"}
+    if reference is not None:
+        req["reference"] = reference
+    _ask_and_print(req, config, redis_url, set_, space, as_json, timeout_s)
+
+
 @app.command()
 def demo(
     redis_url: RedisOpt = None,

@@ -138,6 +138,14 @@ def format_reply(reply: dict[str, Any]) -> str:
     if not reply.get("ok"):
         return f"error: {reply.get('error')}"
     ver = f"(model {reply.get('model')} at {reply.get('model_version')})"
+    if "answered_by" in reply:  # a challenger set: name the member that answered
+        ver = f"(model {reply['model']}: {reply['answered_by']} at {reply.get('model_version')})"
+    if reply.get("kind") == "promote":
+        return f"{reply['answered_by']} answers now (was {reply['previous']}) {ver}"
+    if reply.get("kind") == "compare":
+        from streamrate.challengers import format_compare
+
+        return format_compare(reply)
     if reply.get("kind") == "pairing":
         seen = ", ".join(f"{k}: {v}" for k, v in reply["seen"].items())
         draw = "" if reply.get("p_draw") is None else f", P(draw) = {reply['p_draw']:.3f}"

@@ -35,6 +35,7 @@ from typing import Any
 
 import redis
 
+from streamrate.challengers import member_predictions
 from streamrate.checkpoint import Checkpoint, CheckpointStore, decode_checkpoint, encode_checkpoint
 from streamrate.config import SpaceKeys, SpaceSettings
 from streamrate.dedupe import SeenIds
@@ -48,7 +49,8 @@ from streamrate.models.registry import model_from_state
 log = logging.getLogger("streamrate.consumer")
 
 Observer = Callable[[MatchEvent, Prediction, str], None]
-"""Called after each applied event with (event, prediction made before learning, model kind)."""
+"""Called after each applied event with (event, prediction made before learning, model kind);
+for a challenger set also once per member with that member's prediction and label."""
 
 Entry = tuple[bytes, dict[bytes, bytes] | None]
 
@@ -68,6 +70,7 @@ class LiveModel:
     version: str = "0-0"
     applied: int = 0
     lock: threading.Lock = field(default_factory=threading.Lock)
+    changed: bool = False  # set (under lock) by a query that changes the model: a promotion
 
 
 @dataclass
@@ -251,19 +254,25 @@ class Consumer:
         """Validate and apply a batch (``late``: claimed entries, order not enforced)."""
         t0 = time.perf_counter()
         last = id_key(self.last_id)
-        fresh: list[Entry] = []
-        for sid, fields in entries:
-            if not late and id_key(sid) <= last:
-                self.to_ack.append(sid)  # re-delivered after a group reset; covered already
-                continue
-            fresh.append((sid, fields))
+        fresh: list[Entry]
+        if late or (entries and id_key(entries[0][0]) > last):
+            # A read returns entries in stream order, so when the first is new all
+            # are: no per-entry id parsing on the hot path.
+            fresh = entries
+        else:
+            fresh = []
+            for sid, fields in entries:
+                if id_key(sid) <= last:
+                    self.to_ack.append(sid)  # re-delivered after a group reset; covered already
+                    continue
+                fresh.append((sid, fields))
         if not fresh:
             return
         sorted_ = self._sort(fresh)
         self._dead_letter(sorted_.dead)
         self._apply(sorted_.valid)
         ids = [sid for sid, _ in fresh]
-        top = max((id_key(s) for s in ids), default=last)
+        top = max((id_key(s) for s in ids), default=last) if late else max(id_key(ids[-1]), last)
         if top > last:
             self.last_id = f"{top[0]}-{top[1]}"
         self.live.version = self.last_id
@@ -342,6 +351,8 @@ class Consumer:
                             messages += live_messages(live.model, hit, sid, ev.match_id)
                 live.applied += len(part)
                 live.version = part[-1][0]
+                # A challenger set: every member is scored too, under its own label.
+                members = member_predictions(live.model, len(part)) if self.observers else {}
             for ev in events:
                 self.seen.add(ev.match_id, ev.finished_at.timestamp())
             if messages:
@@ -350,23 +361,26 @@ class Consumer:
                     pipe.publish(self.keys.live, m)
                 pipe.execute()
                 self.metrics.live_published.labels(**self._lbl).inc(len(messages))
-            for ev, p in zip(events, preds, strict=True):
+            for i, (ev, p) in enumerate(zip(events, preds, strict=True)):
                 for obs in self.observers:
                     obs(ev, Prediction(p[0], p[1]), kind)
+                    for label, mp in members.items():
+                        obs(ev, mp[i], label)
 
     # -- checkpoint and acknowledge -----------------------------------------------
     def maybe_checkpoint(self) -> None:
         due_n = self.since_ckpt >= self.space.checkpoint_every_events
         due_t = self.clock() - self.last_ckpt_at >= self.space.checkpoint_every_s
-        if due_n or (due_t and (self.since_ckpt or self.to_ack)):
+        if due_n or (due_t and (self.since_ckpt or self.to_ack or self.live.changed)):
             self.checkpoint()
 
     def checkpoint(self) -> None:
         """Store model + last id + retry record durably, then ack what it covers."""
         t0 = time.perf_counter()
-        if self.since_ckpt or self.ckpt_id != self.last_id:
+        if self.since_ckpt or self.ckpt_id != self.last_id or self.live.changed:
             with self.live.lock:
                 state = self.live.model.to_state()
+                self.live.changed = False
                 applied = self.live.applied
             blob = encode_checkpoint(
                 Checkpoint(state, self.last_id, applied, self.seen, dict(self.counters))

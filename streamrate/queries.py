@@ -13,6 +13,12 @@ carries the same ``id``. Kinds:
   predicted outcome is closest to even, with its probability.
 * ``watch`` - ``action`` ``set`` / ``add`` / ``clear`` and ``pairings``: the live feed
   then publishes fresh odds of those pairings (see :mod:`streamrate.livefeed`).
+* ``promote`` - ``model``: the member of a challenger set (model ``challengers``,
+  :mod:`streamrate.challengers`) that answers from now on; reply ``previous``.
+  Pairing and lobby replies of a challenger set name the member in ``answered_by``.
+* ``compare`` - optional ``reference`` member: reply the side-by-side table of
+  the members over the recent window (``members``: per label n, log loss, Brier,
+  ECE, accuracy and the paired bootstrap interval of the log-loss difference).
 
 Anything else gets ``{"id": ..., "ok": false, "error": "<what is wrong>"}``; when
 the request is too broken to name a reply channel the error goes to
@@ -43,6 +49,8 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, TypeAdapter, ValidationError
 
 from streamrate.batch import EncodedBatch
+from streamrate.challengers import ChallengerSet, compare_window
+from streamrate.errors import ConfigError
 from streamrate.events import ContextMap, EntityId, Matchup, Side
 from streamrate.models.base import Model, Prediction
 
@@ -84,7 +92,27 @@ class WatchRequest(BaseModel):
     pairings: Annotated[list[Pairing], Field(max_length=MAX_WATCH)] = Field(default_factory=list)
 
 
-Request = Annotated[PairingRequest | LobbyRequest | WatchRequest, Field(discriminator="kind")]
+MemberLabel = Annotated[str, Field(min_length=1, max_length=48)]
+
+
+class PromoteRequest(BaseModel):
+    model_config = _STRICT
+    kind: Literal["promote"]
+    id: CorrelationId
+    reply_to: Channel
+    model: MemberLabel
+
+
+class CompareRequest(BaseModel):
+    model_config = _STRICT
+    kind: Literal["compare"]
+    id: CorrelationId
+    reply_to: Channel
+    reference: MemberLabel | None = None
+
+
+AnyRequest = PairingRequest | LobbyRequest | WatchRequest | PromoteRequest | CompareRequest
+Request = Annotated[AnyRequest, Field(discriminator="kind")]
 _REQUEST = TypeAdapter(Request)
 
 
@@ -103,6 +131,7 @@ class ModelView(Protocol):
     model: Model
     version: str
     applied: int
+    changed: bool
 
 
 def _matchup(first: Sequence[str], second: Sequence[str], context: dict[str, Any]) -> Matchup:
@@ -253,7 +282,7 @@ def _describe(exc: ValidationError) -> str:
     return "; ".join(parts[:5])
 
 
-def parse_request(raw: bytes | str, max_bytes: int) -> PairingRequest | LobbyRequest | WatchRequest:
+def parse_request(raw: bytes | str, max_bytes: int) -> AnyRequest:
     """Validate a request; :class:`QueryError` names what is wrong."""
     if len(raw) > max_bytes:
         raise QueryError(f"request: {len(raw)} bytes is longer than the limit of {max_bytes}")
@@ -291,11 +320,45 @@ class Answerer:
         self.lobby_max = lobby_max
 
     def _meta(self) -> dict[str, Any]:
-        return {
+        meta = {
             "model": self.view.model.kind,
             "model_version": self.view.version,
             "applied": self.view.applied,
         }
+        if isinstance(self.view.model, ChallengerSet):
+            meta["answered_by"] = self.view.model.active
+        return meta
+
+    def _challengers(self) -> ChallengerSet:
+        model = self.view.model
+        if not isinstance(model, ChallengerSet):
+            raise QueryError(f"this space runs model {model.kind!r}, not a challenger set")
+        return model
+
+    def promote(self, req: PromoteRequest) -> dict[str, Any]:
+        # Under the model lock: the consumer learns whole chunks under it, so the
+        # switch falls between two chunks, never inside one.
+        with self.view.lock:
+            model = self._challengers()
+            previous = model.active
+            try:
+                model.promote(req.model)
+            except ConfigError as exc:
+                raise QueryError(f"model: {exc}") from exc
+            if model.active != previous:
+                self.view.changed = True  # saved by the next checkpoint, events or not
+            meta = self._meta()
+        return {"previous": previous, **meta}
+
+    def compare(self, req: CompareRequest) -> dict[str, Any]:
+        with self.view.lock:  # only the copy is made under the lock; the bootstrap is not
+            window = self._challengers().window()
+            meta = self._meta()
+        try:
+            table = compare_window(window, req.reference)
+        except ConfigError as exc:
+            raise QueryError(f"reference: {exc}") from exc
+        return {**table, **meta}
 
     def pairing(self, req: PairingRequest) -> dict[str, Any]:
         mu = _matchup(req.first, req.second, dict(req.context))
@@ -371,6 +434,10 @@ def handle(
             body = answerer.pairing(req)
         elif isinstance(req, LobbyRequest):
             body = answerer.lobby(req)
+        elif isinstance(req, PromoteRequest):
+            body = answerer.promote(req)
+        elif isinstance(req, CompareRequest):
+            body = answerer.compare(req)
         else:
             body = on_watch(req)
     except QueryError as exc:

@@ -23,6 +23,7 @@ BUILTIN: dict[str, str] = {
     "blade_chest": "streamrate.models.matchup:BladeChest",
     "blade_chest_dist": "streamrate.models.matchup:BladeChestDistance",
     "recalibrated": "streamrate.recalibrate:Recalibrated",
+    "challengers": "streamrate.challengers:ChallengerSet",
 }
 
 

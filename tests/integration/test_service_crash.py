@@ -94,8 +94,11 @@ def test_sigkill_at_random_moments_loses_nothing_and_applies_nothing_twice(
             pytest.fail(f"serve exited early with {proc.returncode}: {log.read_text()[-2000:]}")
     sender.join()
     assert kills >= 4
+    before = _resumes(log)
     proc = _serve(cfg, log)
     try:
+        # Its signal handlers are installed before it logs that it resumes.
+        _wait_started(proc, log, before)
 
         def done() -> bool:
             ck = file_checkpoint(ckpt_dir, "duel")
