@@ -109,11 +109,15 @@ def specs_from_toml(path: Path | str) -> list[ModelSpec]:
     return out
 
 
+# A challenger set with default settings only repeats its first member.
+_NOT_ON_THEIR_OWN = frozenset({"challengers"})
+
+
 def builtin_specs() -> list[ModelSpec]:
     """Every built-in model with its default settings, labelled by kind."""
     from streamrate.models.registry import BUILTIN
 
-    return [ModelSpec(kind, kind) for kind in BUILTIN]
+    return [ModelSpec(kind, kind) for kind in BUILTIN if kind not in _NOT_ON_THEIR_OWN]
 
 
 def unique_specs(specs: Iterable[ModelSpec]) -> list[ModelSpec]:

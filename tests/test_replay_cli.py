@@ -177,3 +177,13 @@ def test_model_spec_round_trips(label: str, kind: str, params: dict[str, object]
     )
     spec = parse_model_spec(f"{label}={kind}:{body}")
     assert spec == ModelSpec(label, kind, params)
+
+
+def test_all_models_runs_every_builtin_but_the_challenger_wrapper(world_file: Path) -> None:
+    from streamrate.models.registry import BUILTIN
+
+    res = runner.invoke(app, ["replay", str(world_file), "--all-models", "--json"])
+    assert res.exit_code == 0, res.output
+    report = json.loads(res.stdout)
+    assert set(report) == set(BUILTIN) - {"challengers"}
+    assert all(report[k]["n"] == 1200 for k in report)
