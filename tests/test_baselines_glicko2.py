@@ -147,3 +147,23 @@ def test_a_player_who_beats_everyone_climbs() -> None:
         ratings.append(m.rating("kestrel")[0])
     assert all(b > a for a, b in itertools.pairwise(ratings))
     assert m.predict(match("kestrel", "marlow", 1.0)).p_win > 0.9
+
+
+def test_team_forecasts_are_not_under_confident() -> None:
+    """Members share their side's expected score in the update, as in the forecast.
+
+    On simulated 3-against-3 play, rating each member by its own mu against the
+    other side's mean gave a calibration slope of about 2.3 (forecasts far too
+    timid); sharing the side's expectation brings it near 1, like Elo.
+    """
+    from streamrate.calibration import calibration_slope_intercept, log_loss
+    from streamrate.models.elo import Elo
+    from streamrate.simulate import simulate, world_spec
+
+    world = simulate(world_spec("teams", matches=6000, seed=41)).events
+    y = np.array([e.score for e in world])
+    g2 = Glicko2().learn_many(world).expected_score
+    elo = Elo().learn_many(world).expected_score
+    slope, _ = calibration_slope_intercept(g2[2000:], y[2000:])
+    assert 0.7 < slope < 1.4
+    assert log_loss(g2[2000:], y[2000:]) < log_loss(elo[2000:], y[2000:]) + 0.01
