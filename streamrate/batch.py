@@ -86,13 +86,17 @@ class EncodedBatch:
 
 
 def _rows(
-    sides: list[tuple[str, ...]], get: Callable[[str], int]
+    sides: list[tuple[str, ...]], get: Callable[[str, int], int]
 ) -> tuple[np.ndarray, np.ndarray, bool]:
-    """(rows padded with -1, sizes, whether a real member is unknown)."""
+    """(rows padded with -1, sizes, whether a real member is unknown).
+
+    ``get(id, -1)`` is the table's dict lookup itself: this runs for every
+    entity of every event, so no Python-level wrapper sits in between.
+    """
     n = len(sides)
     width = max(map(len, sides), default=1)
     if width == 1:
-        out = [get(s[0]) for s in sides]
+        out = [get(s[0], -1) for s in sides]
         unknown = -1 in out
         return np.array(out, dtype=np.int32).reshape(n, 1), np.ones(n, dtype=np.int32), unknown
     flat: list[int] = []
@@ -102,7 +106,7 @@ def _rows(
     for s in sides:
         k = len(s)
         sizes.append(k)
-        members = [get(e) for e in s]
+        members = [get(e, -1) for e in s]
         if -1 in members:
             unknown = True
         flat.extend(members)
@@ -129,25 +133,19 @@ def _sparse(
 ) -> tuple[np.ndarray, np.ndarray]:
     n = len(maps)
     width = max(map(len, maps), default=0)
-    idx = np.full((n, width), -1, dtype=np.int32)
-    val = np.zeros((n, width), dtype=np.float64)
     if width == 0:
-        return idx, val
-    slot = hasher.slot
-    cache: dict[tuple[str, str | float], tuple[int, float]] = {}
-    for i, m in enumerate(maps):
-        for k, item in enumerate(m.items()):
-            hit = cache.get(item)
-            if hit is None:
-                name, v = item
-                if isinstance(v, str):
-                    hit = slot(f"{name}={v}")
-                else:
-                    j, s = slot(name)
-                    hit = (j, s * float(v))
-                cache[item] = hit
-            idx[i, k], val[i, k] = hit
-    return idx, val
+        return np.full((n, 0), -1, dtype=np.int32), np.zeros((n, 0), dtype=np.float64)
+    # Gather (slot, signed value) pairs in one flat list and convert once:
+    # element-wise writes into numpy arrays cost more than the hashing.
+    encoded = hasher.encoded_items
+    pad = (-1, 0.0)
+    flat: list[tuple[int, float]] = []
+    for m in maps:
+        flat.extend(encoded(tuple(m.items())))
+        if len(m) < width:
+            flat.extend([pad] * (width - len(m)))
+    pairs = np.array(flat, dtype=np.float64).reshape(n, width, 2)
+    return pairs[:, :, 0].astype(np.int32), np.ascontiguousarray(pairs[:, :, 1])
 
 
 def _features(
@@ -188,12 +186,13 @@ def encode_events(
     n = len(events)
     firsts = [e.first for e in events]
     seconds = [e.second for e in events]
-    first, first_size, unknown1 = _rows(firsts, table.get)
-    second, second_size, unknown2 = _rows(seconds, table.get)
+    get = table.lookup
+    first, first_size, unknown1 = _rows(firsts, get)
+    second, second_size, unknown2 = _rows(seconds, get)
     if add and (unknown1 or unknown2):
         _register(events, table)
-        first, first_size, _ = _rows(firsts, table.get)
-        second, second_size, _ = _rows(seconds, table.get)
+        first, first_size, _ = _rows(firsts, get)
+        second, second_size, _ = _rows(seconds, get)
     try:  # the common case, all finished matches; a query lacks both fields
         score = np.array([e.score for e in events], dtype=np.float64)  # type: ignore[attr-defined]
         time_s = np.array(

@@ -26,7 +26,7 @@ Example:
 from __future__ import annotations
 
 import zlib
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 
 import numpy as np
 import numpy.typing as npt
@@ -45,6 +45,8 @@ class FeatureHasher:
             raise ValueError("width must be at least 1")
         self.width = width
         self._slots: dict[str, tuple[int, float]] = {}
+        self._items: dict[tuple[str, str | float], tuple[int, float]] = {}
+        self._maps: dict[tuple[tuple[str, str | float], ...], list[tuple[int, float]]] = {}
 
     def slot(self, key: str) -> tuple[int, float]:
         """Return (slot index, sign) for a hashed key; cached, as keys repeat a lot."""
@@ -56,17 +58,34 @@ class FeatureHasher:
                 self._slots[key] = hit
         return hit
 
-    def encode(self, values: Mapping[str, str | float]) -> tuple[IntArray, FloatArray]:
-        """Sparse (indices, values) of one mapping; duplicates are kept (they add)."""
-        idx = np.empty(len(values), dtype=np.int32)
-        val = np.empty(len(values), dtype=np.float64)
-        for k, (name, v) in enumerate(values.items()):
-            if isinstance(v, str):
-                i, s = self.slot(f"{name}={v}")
-                idx[k], val[k] = i, s
+    def item(self, name: str, value: str | float) -> tuple[int, float]:
+        """(slot, signed value) of one ``name -> value`` pair; cached, as pairs repeat."""
+        hit = self._items.get((name, value))
+        if hit is None:
+            if isinstance(value, str):
+                hit = self.slot(f"{name}={value}")
             else:
                 i, s = self.slot(name)
-                idx[k], val[k] = i, s * float(v)
+                hit = (i, s * float(value))
+            if len(self._items) < 1_000_000:
+                self._items[(name, value)] = hit
+        return hit
+
+    def encoded_items(self, items: tuple[tuple[str, str | float], ...]) -> list[tuple[int, float]]:
+        """(slot, signed value) of each pair of a whole mapping, cached by its items:
+        the same context (map, mode, patch) comes back match after match."""
+        hit = self._maps.get(items)
+        if hit is None:
+            hit = [self.item(name, v) for name, v in items]
+            if len(self._maps) < 100_000:
+                self._maps[items] = hit
+        return hit
+
+    def encode(self, values: Mapping[str, str | float]) -> tuple[IntArray, FloatArray]:
+        """Sparse (indices, values) of one mapping; duplicates are kept (they add)."""
+        pairs = [self.item(name, v) for name, v in values.items()]
+        idx = np.array([i for i, _ in pairs], dtype=np.int32)
+        val = np.array([v for _, v in pairs], dtype=np.float64)
         return idx, val
 
     def dense(self, values: Mapping[str, str | float]) -> FloatArray:
@@ -90,6 +109,11 @@ class EntityTable:
 
     def __contains__(self, entity_id: object) -> bool:
         return entity_id in self._rows
+
+    @property
+    def lookup(self) -> Callable[[str, int], int]:
+        """The id -> row dict's own ``get`` (call it as ``lookup(id, -1)``), for hot loops."""
+        return self._rows.get
 
     def get(self, entity_id: str) -> int:
         """Row of a known id, or -1 for an id never seen (nothing is added)."""
