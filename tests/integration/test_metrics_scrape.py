@@ -70,8 +70,17 @@ def test_scraped_metrics_match_what_the_service_did(
         assert service.spaces[0].ready.wait(30)
         r = redis_server.client()
         send_events(r, EVENTS, lines)
-        live = service.spaces[0].consumer.live
-        wait_for(lambda: live.applied == len(events), 60, "every event to be applied")
+
+        def handled() -> float:
+            return sum(
+                v
+                for (name, _), v in _scrape(port).items()
+                if name == "streamrate_consumer_events_total"
+            )
+
+        # Counters move once a whole batch is handled: wait on the endpoint itself,
+        # until every stream entry (valid, junk or retry) has been counted.
+        wait_for(lambda: handled() == len(lines), 60, "every entry counted")
         wait_for(lambda: r.pubsub_numsub(Q)[0][1] > 0, 10, "the query responder")
         e = events[-1]
         ok = ask(r, Q, {"kind": "pairing", "first": list(e.first), "second": list(e.second)})
