@@ -199,6 +199,10 @@ class ChallengerSet(Model):
             self.score_[rows].copy(),
         )
 
+    def component_predictions(self, n: int) -> dict[str, Predictions]:
+        """Every member's predictions of the last ``n`` events, by label."""
+        return self.recent_member_predictions(n)
+
     def recent_member_predictions(self, n: int) -> dict[str, Predictions]:
         """Each member's predictions for the last ``n`` events learned, oldest first.
 
@@ -291,13 +295,6 @@ class ChallengerSet(Model):
                 raise StateError(f"saved challenger settings are not usable: {exc}") from exc
             raise StateError(f"saved challenger state is incomplete: {exc!r}") from exc
         return obj
-
-
-def member_predictions(model: Model, n: int) -> dict[str, Predictions]:
-    """Per-member predictions of the last ``n`` events if ``model`` is a challenger set."""
-    if isinstance(model, ChallengerSet):
-        return model.recent_member_predictions(n)
-    return {}
 
 
 def _finite(x: float) -> float | None:

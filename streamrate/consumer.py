@@ -35,7 +35,6 @@ from typing import Any
 
 import redis
 
-from streamrate.challengers import member_predictions
 from streamrate.checkpoint import Checkpoint, CheckpointStore, decode_checkpoint, encode_checkpoint
 from streamrate.config import SpaceKeys, SpaceSettings
 from streamrate.dedupe import SeenIds
@@ -351,8 +350,9 @@ class Consumer:
                             messages += live_messages(live.model, hit, sid, ev.match_id)
                 live.applied += len(part)
                 live.version = part[-1][0]
-                # A challenger set: every member is scored too, under its own label.
-                members = member_predictions(live.model, len(part)) if self.observers else {}
+                # Models inside the model (challenger members, the raw model under a
+                # recalibration) are scored too, each under its own label.
+                members = live.model.component_predictions(len(part)) if self.observers else {}
             for ev in events:
                 self.seen.add(ev.match_id, ev.finished_at.timestamp())
             if messages:

@@ -183,7 +183,9 @@ class QualityObserver:
         metrics: QualityMetrics,
         space: str,
         publish_every_s: float = 5.0,
-        recalibrators: Mapping[str, OnlineRecalibrator] | None = None,
+        recalibrators: Mapping[str, OnlineRecalibrator]
+        | Callable[[], Mapping[str, OnlineRecalibrator]]
+        | None = None,
         on_change: Callable[[str, str], None] | None = None,
         clock: Callable[[], float] = time.monotonic,
     ) -> None:
@@ -213,7 +215,10 @@ class QualityObserver:
         self._publish(self.clock())
 
     def _publish(self, now: float) -> None:
-        self.metrics.publish(self.space, self.monitor, self.recalibrators)
+        recs = self.recalibrators
+        # A callable is asked at each publication: the live model may be replaced
+        # (recovery from a checkpoint) while the observer stays.
+        self.metrics.publish(self.space, self.monitor, recs() if callable(recs) else recs)
         self._published_at = now
 
 

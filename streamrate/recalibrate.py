@@ -250,12 +250,23 @@ class Recalibrated(Model):
 
     def learn(self, event: MatchEvent) -> Prediction:
         raw = self.model_.learn(event)
+        self.last_raw_ = Predictions.from_list([raw])
         out = self.recalibrator_.apply(raw)
         self.recalibrator_.learn(raw.expected_score, event.score)
         return out
 
+    def component_predictions(self, n: int) -> dict[str, Predictions]:
+        """The base model's own (raw) predictions of the last ``n`` learned events,
+        under the label ``<base>.raw``: scoring them keeps the quality alerts on
+        the raw model while the recalibrated numbers are served."""
+        raw = getattr(self, "last_raw_", None)
+        if raw is None or len(raw.p_win) < n or n <= 0:
+            return {}
+        return {f"{self.base}.raw": Predictions(raw.p_win[-n:], raw.p_draw[-n:])}
+
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
         raw = self.model_.learn_many(events)
+        self.last_raw_ = raw
         out = []
         for i, ev in enumerate(events):
             pred = Prediction(float(raw.p_win[i]), float(raw.p_draw[i]))
@@ -267,6 +278,7 @@ class Recalibrated(Model):
         # Mini-batch semantics: every forecast of the batch uses the batch-start
         # correction, then the recalibrator learns from the whole batch.
         raw = self.model_.learn_batch(events)
+        self.last_raw_ = raw
         preds = [Prediction(float(a), float(b)) for a, b in zip(raw.p_win, raw.p_draw, strict=True)]
         out = [self.recalibrator_.apply(p) for p in preds]
         for p, ev in zip(preds, events, strict=True):
@@ -310,3 +322,13 @@ class Recalibrated(Model):
                 "n_events": int(arrays["recal_events"][0]),
             }
         )
+
+
+def recalibrators_of(model: Model) -> dict[str, OnlineRecalibrator]:
+    """The online recalibrators inside ``model`` by model label (for the gauges):
+    the model itself when it is :class:`Recalibrated`, else its challenger members
+    that are."""
+    if isinstance(model, Recalibrated):
+        return {model.kind: model.recalibrator_}
+    members: dict[str, Model] = getattr(model, "models_", {})
+    return {label: m.recalibrator_ for label, m in members.items() if isinstance(m, Recalibrated)}

@@ -20,6 +20,7 @@ import sys
 import threading
 import time
 from collections.abc import Callable, Sequence
+from functools import partial
 from typing import Any
 
 import redis
@@ -34,8 +35,9 @@ from streamrate.livefeed import WatchList
 from streamrate.metrics import ServiceMetrics, serve_metrics
 from streamrate.models.base import Model
 from streamrate.models.registry import build_model
-from streamrate.quality_metrics import QualityMetrics, quality_observers
+from streamrate.quality_metrics import QualityMetrics, QualityObserver, quality_observers
 from streamrate.queries import MAX_WATCH, Answerer, QueryError, WatchRequest, handle
+from streamrate.recalibrate import OnlineRecalibrator, recalibrators_of
 
 log = logging.getLogger("streamrate.service")
 REDIS_DOWN = (redis.ConnectionError, redis.TimeoutError)
@@ -223,6 +225,10 @@ class SpaceService:
                     client.close()
 
 
+def _live_recalibrators(consumer: Consumer) -> dict[str, OnlineRecalibrator]:
+    return recalibrators_of(consumer.live.model)
+
+
 def _noop() -> None:
     return None
 
@@ -253,6 +259,10 @@ class Service:
             )
             for s in settings.spaces
         ]
+        for sp in self.spaces:  # the recalibration gauges follow the live model
+            for obs in sp.consumer.observers:
+                if isinstance(obs, QualityObserver):
+                    obs.recalibrators = partial(_live_recalibrators, sp.consumer)
         self.threads: list[threading.Thread] = []
 
     def start(self, stop: threading.Event) -> None:

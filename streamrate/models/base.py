@@ -106,6 +106,12 @@ class Model(ABC):
         """
         return self.learn_many(events)
 
+    def component_predictions(self, n: int) -> dict[str, Predictions]:
+        """Predictions of the models inside this one for its last ``n`` learned
+        events, by label (challenger members; the raw model under a
+        recalibration), so that each is scored too. Empty for a plain model."""
+        return {}
+
     def seen(self, entity_id: str) -> int:
         """How many matches an entity has been learned from (0 if never seen)."""
         return self.entities_.seen(entity_id) if hasattr(self, "entities_") else 0
