@@ -42,7 +42,7 @@ from streamrate.errors import ConfigError, EventError
 from streamrate.events import MatchEvent, parse_event
 from streamrate.livefeed import WatchList, live_messages
 from streamrate.metrics import ServiceMetrics
-from streamrate.models.base import Model, Prediction
+from streamrate.models.base import Model, Prediction, warm_up
 from streamrate.models.registry import model_from_state
 
 log = logging.getLogger("streamrate.consumer")
@@ -136,6 +136,7 @@ class Consumer:
         self.counters["applied"] = ck.applied
 
     def _install(self, model: Model, version: str, applied: int) -> None:
+        warm_up(model)  # compile kernels before the lock, not under it
         # The query side holds this same LiveModel object: update it in place.
         with self.live.lock:
             self.live.model, self.live.version, self.live.applied = model, version, applied

@@ -154,3 +154,40 @@ class Model(ABC):
     def __repr__(self) -> str:
         args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items())
         return f"{type(self).__name__}({args})"
+
+
+def warm_up(model: Model) -> None:
+    """Run a fresh model with the same settings once through every path.
+
+    Compiled kernels are built (or loaded from their on-disk cache) on first
+    use. Doing that on a throwaway instance means the live model is never held
+    under its lock while a kernel compiles, which on a machine with an empty
+    cache takes seconds and would stall the queries waiting for that lock.
+    """
+    from datetime import UTC, datetime
+
+    fresh = type(model)(**model.get_params())
+    when = datetime(2000, 1, 1, tzinfo=UTC)
+    solo = MatchEvent(
+        match_id="warm-up-1",
+        finished_at=when,
+        first=("warm-a",),
+        second=("warm-b",),
+        score=1.0,
+        context={"warm": "up", "level": 1.0},
+    )
+    team = MatchEvent(
+        match_id="warm-up-2",
+        finished_at=when,
+        first=("warm-a", "warm-c"),
+        second=("warm-b", "warm-d"),
+        score=0.5,
+        context={"warm": "up"},
+        features={"warm-c": {"warm": "up", "level": 1.0}},
+    )
+    fresh.learn_many([solo, team])
+    fresh.learn(solo)
+    fresh.learn_batch([solo, team])
+    fresh.predict(solo)
+    fresh.predict(team)
+    fresh.predict(Matchup(first=("warm-x",), second=("warm-y",)))
