@@ -36,7 +36,7 @@ import numpy as np
 
 from streamrate import calibration as cal
 from streamrate.encode import EntityTable
-from streamrate.errors import ConfigError, StateError, StateVersionError
+from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
 from streamrate.models.base import Model, ModelState, Prediction, Predictions
 
@@ -270,13 +270,7 @@ class ChallengerSet(Model):
     def from_state(cls, state: ModelState) -> ChallengerSet:
         from streamrate.models.registry import model_from_state
 
-        if state.kind != cls.kind:
-            raise StateError(f"saved state is of model {state.kind!r}, not {cls.kind!r}")
-        if state.version != cls.state_version:
-            raise StateVersionError(
-                f"saved {state.kind!r} state has version {state.version}; "
-                f"this code reads version {cls.state_version}"
-            )
+        cls.check_state(state)
         try:
             saved = dict(state.params["members"])
             order = [str(x) for x in state.params["order"]]

@@ -133,7 +133,8 @@ class Model(ABC):
         return ModelState(self.kind, self.state_version, self.get_params(), self._state_arrays())
 
     @classmethod
-    def from_state(cls, state: ModelState) -> Model:
+    def check_state(cls, state: ModelState) -> None:
+        """Refuse a saved state of another model kind or another state version."""
         if state.kind != cls.kind:
             raise StateError(f"saved state is of model {state.kind!r}, not {cls.kind!r}")
         if state.version != cls.state_version:
@@ -141,6 +142,10 @@ class Model(ABC):
                 f"saved {state.kind!r} state has version {state.version}; "
                 f"this code reads version {cls.state_version}"
             )
+
+    @classmethod
+    def from_state(cls, state: ModelState) -> Model:
+        cls.check_state(state)
         try:
             model = cls(**state.params)
         except TypeError as exc:
@@ -154,6 +159,29 @@ class Model(ABC):
     def __repr__(self) -> str:
         args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items())
         return f"{type(self).__name__}({args})"
+
+
+def entity_arrays(table: EntityTable, **per_entity: np.ndarray) -> dict[str, np.ndarray]:
+    """The table's arrays plus one array per name, each cut to the known entities."""
+    n = len(table)
+    arrays = table.to_arrays()
+    arrays.update({name: np.asarray(a)[:n].copy() for name, a in per_entity.items()})
+    return arrays
+
+
+def load_entity_arrays(
+    kind: str, arrays: dict[str, np.ndarray], names: Sequence[str]
+) -> tuple[EntityTable, list[np.ndarray]]:
+    """The table and the named per-entity float arrays written by :func:`entity_arrays`;
+    :class:`StateError` when one does not have one value per entity."""
+    table = EntityTable.from_arrays(arrays)
+    n = len(table)
+    loaded = [np.asarray(arrays[name], dtype=np.float64) for name in names]
+    for name, a in zip(names, loaded, strict=True):
+        if a.shape != (n,):
+            raise StateError(f"{kind}: array {name!r} has shape {a.shape}, not one value for "
+                             f"each of the {n} saved entities")  # fmt: skip
+    return table, loaded
 
 
 def warm_up(model: Model) -> None:

@@ -37,9 +37,15 @@ from numba import njit
 
 from streamrate.batch import EncodedBatch, count_matches, encode_events
 from streamrate.encode import EntityTable
-from streamrate.errors import ConfigError, StateError
+from streamrate.errors import ConfigError
 from streamrate.events import MatchEvent, Matchup
-from streamrate.models.base import Model, Prediction, Predictions
+from streamrate.models.base import (
+    Model,
+    Prediction,
+    Predictions,
+    entity_arrays,
+    load_entity_arrays,
+)
 
 
 def _elo_loop(
@@ -231,15 +237,10 @@ class Elo(Model):
         }
 
     def _state_arrays(self) -> dict[str, np.ndarray]:
-        arrays = self.entities_.to_arrays()
-        arrays["ratings"] = self.ratings_[: len(self.entities_)].copy()
-        return arrays
+        return entity_arrays(self.entities_, ratings=self.ratings_)
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
-        table = EntityTable.from_arrays(arrays)
-        ratings = np.asarray(arrays["ratings"], dtype=np.float64)
-        if ratings.shape != (len(table),):
-            raise StateError(f"elo: {len(table)} entities but {ratings.shape} ratings")
+        table, (ratings,) = load_entity_arrays(self.kind, arrays, ("ratings",))
         self.entities_ = table
         self.ratings_ = np.full(max(16, 2 * len(table)), self.initial, dtype=np.float64)
         self.ratings_[: len(table)] = ratings

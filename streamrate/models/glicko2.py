@@ -42,9 +42,15 @@ import numpy as np
 
 from streamrate.batch import count_matches, encode_events
 from streamrate.encode import EntityTable
-from streamrate.errors import ConfigError, StateError
+from streamrate.errors import ConfigError
 from streamrate.events import MatchEvent, Matchup
-from streamrate.models.base import Model, Prediction, Predictions
+from streamrate.models.base import (
+    Model,
+    Prediction,
+    Predictions,
+    entity_arrays,
+    load_entity_arrays,
+)
 
 SCALE = 173.7178
 """Ratio between the displayed rating scale and the internal Glicko-2 scale."""
@@ -300,20 +306,13 @@ class Glicko2(Model):
         }
 
     def _state_arrays(self) -> dict[str, np.ndarray]:
-        n = len(self.entities_)
-        arrays = self.entities_.to_arrays()
-        arrays["mu"] = self.mu_[:n].copy()
-        arrays["phi"] = self.phi_[:n].copy()
-        arrays["sigma"] = self.sigma_[:n].copy()
-        arrays["last_s"] = self.last_s_[:n].copy()
-        return arrays
+        return entity_arrays(
+            self.entities_, mu=self.mu_, phi=self.phi_, sigma=self.sigma_, last_s=self.last_s_
+        )
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
-        table = EntityTable.from_arrays(arrays)
+        table, loaded = load_entity_arrays(self.kind, arrays, ("mu", "phi", "sigma", "last_s"))
         n = len(table)
-        loaded = [np.asarray(arrays[k], dtype=np.float64) for k in ("mu", "phi", "sigma", "last_s")]
-        if any(a.shape != (n,) for a in loaded):
-            raise StateError(f"glicko2: arrays do not match the {n} saved entities")
         self.entities_ = table
         self._alloc(max(16, 2 * n))
         for dst, src in zip((self.mu_, self.phi_, self.sigma_, self.last_s_), loaded, strict=True):

@@ -47,9 +47,15 @@ from scipy.special import log_ndtr, ndtr, ndtri
 
 from streamrate.batch import count_matches, encode_events
 from streamrate.encode import EntityTable
-from streamrate.errors import ConfigError, StateError
+from streamrate.errors import ConfigError
 from streamrate.events import MatchEvent, Matchup
-from streamrate.models.base import Model, Prediction, Predictions
+from streamrate.models.base import (
+    Model,
+    Prediction,
+    Predictions,
+    entity_arrays,
+    load_entity_arrays,
+)
 
 _LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 
@@ -264,19 +270,11 @@ class TrueSkill(Model):
         }
 
     def _state_arrays(self) -> dict[str, np.ndarray]:
-        n = len(self.entities_)
-        arrays = self.entities_.to_arrays()
-        arrays["mu"] = self.mu_[:n].copy()
-        arrays["var"] = self.var_[:n].copy()
-        return arrays
+        return entity_arrays(self.entities_, mu=self.mu_, var=self.var_)
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
-        table = EntityTable.from_arrays(arrays)
+        table, (mu, var) = load_entity_arrays(self.kind, arrays, ("mu", "var"))
         n = len(table)
-        mu = np.asarray(arrays["mu"], dtype=np.float64)
-        var = np.asarray(arrays["var"], dtype=np.float64)
-        if mu.shape != (n,) or var.shape != (n,):
-            raise StateError(f"trueskill: arrays do not match the {n} saved entities")
         self.entities_ = table
         self._alloc(max(16, 2 * n))
         self.mu_[:n], self.var_[:n] = mu, var
