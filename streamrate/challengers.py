@@ -331,16 +331,7 @@ def compare_window(
         }
         if label != ref and y.size:
             d = evaluate.paired_block_bootstrap(losses[label], losses[ref], **boot)
-            row["log_loss_diff_ci"] = {
-                "versus": ref,
-                "mean": d.mean,
-                "low": d.low,
-                "high": d.high,
-                "level": d.level,
-                "resamples": d.resamples,
-                "block_events": d.block,
-                "method": "paired circular block bootstrap, percentile",
-            }
+            row["log_loss_diff_ci"] = d.to_json(ref)
         rows[label] = row
     return {"active": window.active, "reference": ref, "events": int(y.size), "members": rows}
 

@@ -168,6 +168,19 @@ class DiffInterval:
     resamples: int
     block: int
 
+    def to_json(self, versus: str) -> dict[str, Any]:
+        """The interval as reports and replies carry it."""
+        return {
+            "versus": versus,
+            "mean": self.mean,
+            "low": self.low,
+            "high": self.high,
+            "level": self.level,
+            "resamples": self.resamples,
+            "block_events": self.block,
+            "method": "paired circular block bootstrap, percentile",
+        }
+
 
 def paired_block_bootstrap(
     loss: np.ndarray,
@@ -304,16 +317,7 @@ def build_report(
             d = paired_block_bootstrap(
                 cal.pointwise_log_loss(e, y), ref_loss, resamples=resamples, seed=seed
             )
-            row["log_loss_diff_ci"] = {
-                "versus": ref_label,
-                "mean": d.mean,
-                "low": d.low,
-                "high": d.high,
-                "level": d.level,
-                "resamples": d.resamples,
-                "block_events": d.block,
-                "method": "paired circular block bootstrap, percentile",
-            }
+            row["log_loss_diff_ci"] = d.to_json(ref_label)
         models[spec.label] = row
     return Report(
         models,
