@@ -306,7 +306,7 @@ def test_seeds_make_starts_deterministic() -> None:
 
 
 def test_draw_model_learns_the_draw_rate() -> None:
-    # Davidson's draw model (Davidson 1970, JASA 'On extending the Bradley-Terry model to
+    # Davidson's draw model (JASA 1970, 'On extending the Bradley-Terry model to
     # accommodate ties in paired comparison experiments'): between equals
     # P(draw) = nu / (2 + nu); with 30% draws between equals it should approach 0.3.
     rng = np.random.default_rng(4)

@@ -13,7 +13,7 @@ size does not scale the logit). For sides A (first) and B::
 
 ``h0 + h . z`` is the learned first-side advantage (``z`` is the hashed context).
 Without draws ``P(win) = sigmoid(theta)`` and a draw is learned as half a win.
-With ``draws=True`` Davidson's draw model is used (Davidson 1970, JASA 'On
+With ``draws=True`` Davidson's draw model is used (JASA 1970, 'On
 extending the Bradley-Terry model to accommodate ties in paired comparison
 experiments'): with ``nu = exp(eta)`` learned, ``P(win) : P(draw) : P(loss) =
 e^(theta/2) : nu : e^(-theta/2)``.
