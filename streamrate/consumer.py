@@ -42,7 +42,7 @@ from streamrate.errors import ConfigError, EventError
 from streamrate.events import MatchEvent, parse_event
 from streamrate.livefeed import WatchList, live_messages
 from streamrate.metrics import ServiceMetrics
-from streamrate.models.base import Model, Prediction, warm_up
+from streamrate.models.base import Model, Prediction, Predictions, warm_up
 from streamrate.models.registry import model_from_state
 
 log = logging.getLogger("streamrate.consumer")
@@ -114,6 +114,12 @@ class Consumer:
         self.cursor = "0-0"  # explicit id = re-read own pending after it; ">" = new entries
         self.counters = {"applied": 0, "dead_lettered": 0, "duplicate": 0}
         self._lbl = {"space": space.name}
+        # After a failure in the loop: up to this stream id, events are applied one
+        # at a time, so that one the model cannot learn from is found and set aside
+        # (``poison``: stream id -> reason; such entries go to the dead letters).
+        self.careful_until = "0-0"
+        self.poison: dict[str, str] = {}
+        self._batch_top = "0-0"
 
     # -- start-up ---------------------------------------------------------------
     def load_checkpoint(self) -> None:
@@ -268,6 +274,8 @@ class Consumer:
                 fresh.append((sid, fields))
         if not fresh:
             return
+        top_sid = max((sid for sid, _ in fresh), key=id_key) if late else fresh[-1][0]
+        self._batch_top = top_sid.decode() if isinstance(top_sid, bytes) else top_sid
         sorted_ = self._sort(fresh)
         self._dead_letter(sorted_.dead)
         self._apply(sorted_.valid)
@@ -296,6 +304,9 @@ class Consumer:
             sid = sid_b.decode()
             if fields is None:
                 out.dead.append((sid, {}, "entry was deleted from the stream before it was read"))
+                continue
+            if sid in self.poison:
+                out.dead.append((sid, fields, self.poison[sid]))
                 continue
             raw = fields.get(fname)
             if raw is None:
@@ -329,31 +340,57 @@ class Consumer:
             elif isinstance(res, Exception):
                 raise res
 
+    def _learn(
+        self, part: list[tuple[str, MatchEvent]], messages: list[str]
+    ) -> tuple[list[tuple[float, float]], dict[str, Predictions]]:
+        """Predict-then-learn one chunk under the model lock; live messages appended."""
+        live = self.live
+        events = [ev for _, ev in part]
+        with live.lock:
+            if not self.watch.touches(e for ev in events for e in ev.entities()):
+                got = live.model.learn_many(events)
+                preds = list(zip(got.p_win.tolist(), got.p_draw.tolist(), strict=True))
+            else:
+                preds = []
+                for sid, ev in part:
+                    one = live.model.learn(ev)
+                    preds.append((one.p_win, one.p_draw))
+                    hit = self.watch.affected(ev.entities())
+                    if hit:
+                        messages += live_messages(live.model, hit, sid, ev.match_id)
+            live.applied += len(part)
+            live.version = part[-1][0]
+            # Models inside the model (challenger members, the raw model under a
+            # recalibration) are scored too, each under its own label.
+            members = live.model.component_predictions(len(part)) if self.observers else {}
+        return preds, members
+
+    def failed(self) -> None:
+        """The loop failed while handling a batch. Until past that batch, apply one
+        event at a time: if the model itself cannot learn from an event, that event
+        is found, set aside as a dead letter, and the stream goes on."""
+        if id_key(self._batch_top) > id_key(self.careful_until):
+            self.careful_until = self._batch_top
+
+    @property
+    def careful(self) -> bool:
+        return id_key(self.last_id) < id_key(self.careful_until)
+
     def _apply(self, valid: list[tuple[str, MatchEvent]]) -> None:
-        live, kind = self.live, self.live.model.kind
-        chunk = self.space.lock_chunk
+        kind = self.live.model.kind
+        chunk = 1 if self.careful else self.space.lock_chunk
         for start in range(0, len(valid), chunk):
             part = valid[start : start + chunk]
             events = [ev for _, ev in part]
             messages: list[str] = []
-            preds: list[tuple[float, float]]
-            with live.lock:
-                if not self.watch.touches(e for ev in events for e in ev.entities()):
-                    got = live.model.learn_many(events)
-                    preds = list(zip(got.p_win.tolist(), got.p_draw.tolist(), strict=True))
-                else:
-                    preds = []
-                    for sid, ev in part:
-                        one = live.model.learn(ev)
-                        preds.append((one.p_win, one.p_draw))
-                        hit = self.watch.affected(ev.entities())
-                        if hit:
-                            messages += live_messages(live.model, hit, sid, ev.match_id)
-                live.applied += len(part)
-                live.version = part[-1][0]
-                # Models inside the model (challenger members, the raw model under a
-                # recalibration) are scored too, each under its own label.
-                members = live.model.component_predictions(len(part)) if self.observers else {}
+            try:
+                preds, members = self._learn(part, messages)
+            except Exception as exc:
+                if len(part) == 1:  # careful mode: this is the event the model rejects
+                    self.poison[part[0][0]] = (
+                        f"the model could not learn from this event: {type(exc).__name__}: {exc}"
+                    )[:500]
+                raise
             for ev in events:
                 self.seen.add(ev.match_id, ev.finished_at.timestamp())
             if messages:

@@ -146,6 +146,7 @@ class SpaceService:
             except Exception:  # loop boundary: log, count, rebuild from the checkpoint
                 log.exception("space %s: error in the consumer loop", self.space.name)
                 self.metrics.loop_errors.labels(**lbl).inc()
+                c.failed()
                 must_recover = True
                 stop.wait(rs.reconnect_min_s)
         if must_recover:

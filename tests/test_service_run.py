@@ -17,9 +17,11 @@ from streamrate.client import ask, send_events
 from streamrate.config import CheckpointSettings, RedisSettings, Settings, SpaceSettings
 from streamrate.demo import run_demo
 from streamrate.events import MatchEvent, event_to_json
+from streamrate.metrics import ServiceMetrics
 from streamrate.models.base import Prediction
+from streamrate.models.elo import Elo
 from streamrate.models.registry import build_model
-from streamrate.service import Service
+from streamrate.service import Service, SpaceService
 from streamrate.simulate import simulate, world_spec
 
 WORLD = simulate(world_spec("plain", matches=400, entities=20, seed=3)).events
@@ -129,3 +131,74 @@ def test_demo_runs_end_to_end_and_scores_its_predictions() -> None:
     # A model that learns beats a coin on this world (log loss of 0.5 is ln 2 = 0.693).
     assert summary["log_loss"] < np.log(2)
     assert any(line.startswith("[summary]") for line in lines)
+
+
+class _ChokesOn(Elo):
+    """An Elo that raises on one match id: a stand-in for an event that passes
+    validation but that the model cannot learn from."""
+
+    bad_id = "q-000250"
+
+    def _check(self, events: Any) -> None:
+        if any(e.match_id == self.bad_id for e in events):
+            raise FloatingPointError("cannot learn from this one")
+
+    def learn(self, event: MatchEvent) -> Prediction:
+        self._check([event])
+        return super().learn(event)
+
+    def learn_many(self, events: Any) -> Any:
+        self._check(events)
+        return super().learn_many(events)
+
+
+def test_an_event_the_model_cannot_learn_is_set_aside_and_the_stream_goes_on(
+    tmp_path: Path,
+) -> None:
+    space = SpaceSettings(
+        name="duel",
+        model="elo",
+        model_settings={"compiled": False},
+        batch_count=40,
+        block_ms=5,
+        checkpoint_every_events=100_000,  # no checkpoint: recovery rebuilds from scratch
+        checkpoint_every_s=1e6,
+    )
+    settings = Settings(
+        redis=RedisSettings(reconnect_min_s=0.01, reconnect_max_s=0.05),
+        checkpoint=CheckpointSettings(dir=tmp_path),
+        spaces=(space,),
+    )
+    server = fakeredis.FakeServer()
+    registry = CollectorRegistry()
+    metrics = ServiceMetrics(registry, ["duel"])
+    sp = SpaceService(
+        settings,
+        space,
+        lambda: fakeredis.FakeRedis(server=server),
+        metrics,
+        model_builder=lambda: _ChokesOn(compiled=False),
+    )
+    assert any(e.match_id == _ChokesOn.bad_id for e in WORLD)
+    stop = threading.Event()
+    worker = threading.Thread(target=sp.consume, args=(stop,))
+    worker.start()
+    try:
+        send_events(fakeredis.FakeRedis(server=server), "{sr:duel}:events",
+                    [event_to_json(e) for e in WORLD])  # fmt: skip
+        c = sp.consumer
+        _wait(lambda: c.live.applied == len(WORLD) - 1 and not c.careful, "the rest")
+    finally:
+        stop.set()
+        worker.join()
+    dead = fakeredis.FakeRedis(server=server).xrange("{sr:duel}:dead")
+    assert len(dead) == 1
+    fields = dead[0][1]
+    assert b"could not learn" in fields[b"dead.reason"]
+    assert _ChokesOn.bad_id.encode() in fields[b"event"]
+    errors = registry.get_sample_value("streamrate_consumer_loop_errors_total", {"space": "duel"})
+    assert errors == 2  # once in a whole batch, once when applied alone
+    rest = [e for e in WORLD if e.match_id != _ChokesOn.bad_id]
+    np.testing.assert_allclose(
+        c.live.model.to_state().arrays["ratings"], _reference_ratings(rest), rtol=1e-12
+    )
