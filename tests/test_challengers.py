@@ -16,6 +16,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from prometheus_client import CollectorRegistry
+from service_fakes import fake_settings
 from sklearn.metrics import brier_score_loss
 from sklearn.metrics import log_loss as sk_log_loss
 
@@ -24,10 +25,7 @@ from streamrate import evaluate
 from streamrate.challengers import ChallengerSet, compare_window, format_compare
 from streamrate.client import format_reply, send_events
 from streamrate.config import (
-    CheckpointSettings,
     QualitySettings,
-    RedisSettings,
-    Settings,
     SpaceSettings,
 )
 from streamrate.consumer import LiveModel
@@ -339,11 +337,7 @@ def test_service_scores_every_member_under_its_own_label(tmp_path: Path) -> None
         block_ms=5,
         quality=QualitySettings(recent_events=100, reference_events=200, publish_every_s=0.0),
     )
-    settings = Settings(
-        redis=RedisSettings(reconnect_min_s=0.01, reconnect_max_s=0.05),
-        checkpoint=CheckpointSettings(dir=tmp_path),
-        spaces=(space,),
-    )
+    settings = fake_settings(tmp_path, space)
     server = fakeredis.FakeServer()
     registry = CollectorRegistry()
     svc = Service(settings, lambda: fakeredis.FakeRedis(server=server), registry)

@@ -10,14 +10,12 @@ import fakeredis
 import numpy as np
 import pytest
 from prometheus_client import CollectorRegistry
+from service_fakes import fake_settings
 
 from streamrate.calibration import expected_calibration_error, log_loss
 from streamrate.client import send_events
 from streamrate.config import (
-    CheckpointSettings,
     QualitySettings,
-    RedisSettings,
-    Settings,
     SpaceSettings,
 )
 from streamrate.events import MatchEvent, event_to_json
@@ -49,11 +47,7 @@ def test_running_service_publishes_quality_of_what_it_predicted(tmp_path: Path) 
             publish_every_s=0.0,
         ),
     )
-    settings = Settings(
-        redis=RedisSettings(reconnect_min_s=0.01, reconnect_max_s=0.05),
-        checkpoint=CheckpointSettings(dir=tmp_path),
-        spaces=(space,),
-    )
+    settings = fake_settings(tmp_path, space)
     server = fakeredis.FakeServer()
     registry = CollectorRegistry()
     svc = Service(settings, lambda: fakeredis.FakeRedis(server=server), registry, [collect])
@@ -106,11 +100,7 @@ def test_recalibrated_model_is_scored_raw_and_served_and_its_correction_publishe
         block_ms=5,
         quality=QualitySettings(recent_events=100, reference_events=200, publish_every_s=0.0),
     )
-    settings = Settings(
-        redis=RedisSettings(reconnect_min_s=0.01, reconnect_max_s=0.05),
-        checkpoint=CheckpointSettings(dir=tmp_path),
-        spaces=(space,),
-    )
+    settings = fake_settings(tmp_path, space)
     server = fakeredis.FakeServer()
     registry = CollectorRegistry()
     svc = Service(settings, lambda: fakeredis.FakeRedis(server=server), registry)

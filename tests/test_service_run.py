@@ -12,9 +12,10 @@ import fakeredis
 import numpy as np
 import pytest
 from prometheus_client import CollectorRegistry
+from service_fakes import fake_settings
 
 from streamrate.client import ask, send_events
-from streamrate.config import CheckpointSettings, RedisSettings, Settings, SpaceSettings
+from streamrate.config import SpaceSettings
 from streamrate.demo import run_demo
 from streamrate.events import MatchEvent, event_to_json
 from streamrate.metrics import ServiceMetrics
@@ -44,11 +45,7 @@ def _service(tmp_path: Path, server: fakeredis.FakeServer, observers: Any = ()) 
         checkpoint_every_events=100,
         dedupe_window_s=1e9,
     )
-    settings = Settings(
-        redis=RedisSettings(reconnect_min_s=0.01, reconnect_max_s=0.05),
-        checkpoint=CheckpointSettings(dir=tmp_path),
-        spaces=(space,),
-    )
+    settings = fake_settings(tmp_path, space)
     return Service(
         settings, lambda: fakeredis.FakeRedis(server=server), CollectorRegistry(), observers
     )
@@ -164,11 +161,7 @@ def test_an_event_the_model_cannot_learn_is_set_aside_and_the_stream_goes_on(
         checkpoint_every_events=100_000,  # no checkpoint: recovery rebuilds from scratch
         checkpoint_every_s=1e6,
     )
-    settings = Settings(
-        redis=RedisSettings(reconnect_min_s=0.01, reconnect_max_s=0.05),
-        checkpoint=CheckpointSettings(dir=tmp_path),
-        spaces=(space,),
-    )
+    settings = fake_settings(tmp_path, space)
     server = fakeredis.FakeServer()
     registry = CollectorRegistry()
     metrics = ServiceMetrics(registry, ["duel"])
