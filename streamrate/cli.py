@@ -197,15 +197,16 @@ def serve(config: ConfigOpt = None, redis_url: RedisOpt = None, set_: SetOpt = N
     """Consume the event stream, keep the model current, answer queries (until SIGTERM)."""
     import logging
 
+    from streamrate.connect import service_clients
     from streamrate.errors import StreamrateError
-    from streamrate.service import redis_factory, serve_forever
+    from streamrate.service import serve_forever
 
     try:
         settings = _service_settings(config, redis_url, set_)
         logging.basicConfig(
             level=settings.log_level, format="%(asctime)s %(levelname)s %(name)s: %(message)s"
         )
-        code = serve_forever(settings, redis_factory(settings.redis))
+        code = serve_forever(settings, service_clients(settings.redis))
     except StreamrateError as exc:
         typer.echo(f"error: {exc}", err=True)
         raise typer.Exit(2) from exc
@@ -227,14 +228,16 @@ def send(
     import redis as redis_lib
 
     from streamrate.client import event_lines, send_events
+    from streamrate.connect import RedisClients, explain
     from streamrate.errors import StreamrateError
     from streamrate.evaluate import TextProgress
-    from streamrate.service import redis_factory
 
+    clients: RedisClients | None = None
     try:
         settings = _service_settings(config, redis_url, set_)
         sp = settings.space(space)
-        client = redis_factory(settings.redis)()
+        clients = RedisClients(settings.redis)
+        client = clients()
         total = sum(1 for _ in event_lines(file))
         bar = TextProgress(total, f"send {sp.name}")
         n = send_events(
@@ -247,7 +250,7 @@ def send(
         )
         bar.close()
     except (StreamrateError, redis_lib.RedisError) as exc:
-        typer.echo(f"error: {exc}", err=True)
+        typer.echo(f"error: {explain(exc, clients)}", err=True)
         raise typer.Exit(2) from exc
     typer.echo(f"sent {n} entries to {settings.keys(sp).events}")
 
@@ -276,13 +279,14 @@ def ask(
 
     from streamrate.client import ask as ask_service
     from streamrate.client import format_reply, parse_context
+    from streamrate.connect import RedisClients, explain
     from streamrate.errors import StreamrateError
     from streamrate.queries import request_schema
-    from streamrate.service import redis_factory
 
     if schema:
         typer.echo(json.dumps(request_schema(), indent=2))
         return
+    clients: RedisClients | None = None
     try:
         ctx = parse_context(context or [])
         if lobby is not None:
@@ -300,9 +304,10 @@ def ask(
             raise typer.BadParameter("give FIRST and SECOND, or --lobby with --teams")
         settings = _service_settings(config, redis_url, set_)
         keys = settings.keys(settings.space(space))
-        reply = ask_service(redis_factory(settings.redis)(), keys.requests, req, timeout_s)
+        clients = RedisClients(settings.redis)
+        reply = ask_service(clients(), keys.requests, req, timeout_s)
     except (StreamrateError, redis_lib.RedisError, ValueError) as exc:
-        typer.echo(f"error: {exc}", err=True)
+        typer.echo(f"error: {explain(exc, clients)}", err=True)
         raise typer.Exit(2) from exc
     typer.echo(json.dumps(reply, indent=2) if as_json else format_reply(reply))
     if not reply.get("ok"):
@@ -326,8 +331,8 @@ def watch(
 
     from streamrate.client import ask as ask_service
     from streamrate.client import follow
+    from streamrate.connect import RedisClients, explain
     from streamrate.errors import StreamrateError
-    from streamrate.service import redis_factory
 
     def show(msg: dict[str, Any]) -> None:
         typer.echo(
@@ -335,10 +340,11 @@ def watch(
             f"{msg['p_first_wins']:.3f}  (after {msg['match_id']}, {msg['model_version']})"
         )
 
+    make: RedisClients | None = None
     try:
         settings = _service_settings(config, redis_url, set_)
         keys = settings.keys(settings.space(space))
-        make = redis_factory(settings.redis)
+        make = RedisClients(settings.redis)
         if pairing:
             pairs = []
             for p in pairing:
@@ -355,7 +361,7 @@ def watch(
     except KeyboardInterrupt:
         return
     except (StreamrateError, redis_lib.RedisError) as exc:
-        typer.echo(f"error: {exc}", err=True)
+        typer.echo(f"error: {explain(exc, make)}", err=True)
         raise typer.Exit(2) from exc
 
 
@@ -373,15 +379,17 @@ def _ask_and_print(
 
     from streamrate.client import ask as ask_service
     from streamrate.client import format_reply
+    from streamrate.connect import RedisClients, explain
     from streamrate.errors import StreamrateError
-    from streamrate.service import redis_factory
 
+    clients: RedisClients | None = None
     try:
         settings = _service_settings(config, redis_url, set_)
         keys = settings.keys(settings.space(space))
-        reply = ask_service(redis_factory(settings.redis)(), keys.requests, req, timeout_s)
+        clients = RedisClients(settings.redis)
+        reply = ask_service(clients(), keys.requests, req, timeout_s)
     except (StreamrateError, redis_lib.RedisError) as exc:
-        typer.echo(f"error: {exc}", err=True)
+        typer.echo(f"error: {explain(exc, clients)}", err=True)
         raise typer.Exit(2) from exc
     typer.echo(json.dumps(reply, indent=2) if as_json else format_reply(reply))
     if not reply.get("ok"):

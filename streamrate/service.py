@@ -28,8 +28,9 @@ from prometheus_client import CollectorRegistry
 
 from streamrate.checkpoint import CheckpointStore, FileCheckpointStore, RedisCheckpointStore
 from streamrate.config import RedisSettings, Settings, SpaceSettings
+from streamrate.connect import RedisClients
 from streamrate.consumer import Consumer, Observer
-from streamrate.errors import EventError, ServiceError
+from streamrate.errors import EventError
 from streamrate.events import Matchup
 from streamrate.livefeed import WatchList
 from streamrate.metrics import ServiceMetrics, serve_metrics
@@ -46,20 +47,11 @@ ClientFactory = Callable[[], Any]
 
 
 def redis_factory(settings: RedisSettings) -> ClientFactory:
-    """A function giving a new client per call (each thread owns its connections)."""
-    if settings.url is None:
-        raise ServiceError("no Redis URL given (use --redis-url or redis.url in the settings)")
-    url = settings.url
+    """A function giving a new client per call (each thread owns its connections).
 
-    def make() -> redis.Redis:
-        return redis.Redis.from_url(
-            url,
-            socket_timeout=settings.socket_timeout_s,
-            socket_connect_timeout=settings.connect_timeout_s,
-            retry_on_timeout=False,
-        )
-
-    return make
+    See :class:`streamrate.connect.RedisClients` (password sources, TLS).
+    """
+    return RedisClients(settings)
 
 
 class Outage:
