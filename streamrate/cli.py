@@ -183,7 +183,11 @@ ConfigOpt = Annotated[
 ]
 RedisOpt = Annotated[
     str | None,
-    typer.Option("--redis-url", help="redis:// or rediss:// URL (user:password@ allowed)."),
+    typer.Option(
+        "--redis-url",
+        help="redis:// or rediss:// URL. A password here shows in the process list: "
+        "prefer redis.password_env or redis.password_file.",
+    ),
 ]
 SetOpt = Annotated[
     list[str] | None,

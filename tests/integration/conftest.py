@@ -256,7 +256,9 @@ class SecureRedisServer(RedisServer):
     def client(self, role: str = "admin", **kwargs: Any) -> redis.Redis:
         """A client logged in as ``role`` (default: the admin)."""
         kw: dict[str, Any] = {"socket_timeout": 5, **self.tls_kwargs(), **kwargs}
-        return redis.Redis(port=self.port, username=role, password=self.password(role), **kw)
+        return redis.Redis(
+            host="127.0.0.1", port=self.port, username=role, password=self.password(role), **kw
+        )
 
 
 @pytest.fixture
