@@ -24,6 +24,7 @@ from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, star
 EVENT_OUTCOMES = ("applied", "dead_lettered", "duplicate")
 QUERY_KINDS = ("pairing", "lobby", "watch", "invalid")
 QUERY_OUTCOMES = ("ok", "error")
+OUTAGE_ROLES = ("consumer", "queries")
 _BATCH_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5)
 _QUERY_BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1)
 
@@ -54,8 +55,9 @@ class ServiceMetrics:
         )
         self.reconnects = Counter(
             "streamrate_redis_outages_total",
-            "Times the Redis connection was lost and the service began reconnecting.",
-            ["space"],
+            "Times a Redis connection was lost and the service began reconnecting, "
+            "by the thread that lost it (the consumer or the query responder).",
+            ["space", "role"],
             registry=r,
         )
         self.lag = Gauge(
@@ -112,8 +114,10 @@ class ServiceMetrics:
         for s in spaces:
             for o in EVENT_OUTCOMES:
                 self.events.labels(space=s, outcome=o)
-            for metric in (self.loop_errors, self.claimed, self.reconnects, self.live_published):
+            for metric in (self.loop_errors, self.claimed, self.live_published):
                 metric.labels(space=s)
+            for role in OUTAGE_ROLES:
+                self.reconnects.labels(space=s, role=role)
             for g in (self.lag, self.pending, self.checkpoint_time):
                 g.labels(space=s)
             self.batch_seconds.labels(space=s)

@@ -119,7 +119,7 @@ class SpaceService:
             f"consumer {self.space.name}",
             rs.reconnect_min_s,
             rs.reconnect_max_s,
-            self.metrics.reconnects.labels(**lbl).inc,
+            self.metrics.reconnects.labels(**lbl, role="consumer").inc,
         )
         c = self.consumer
         must_recover = True
@@ -190,7 +190,12 @@ class SpaceService:
 
     def respond(self, stop: threading.Event) -> None:
         rs = self.settings.redis
-        outage = Outage(f"queries {self.space.name}", rs.reconnect_min_s, rs.reconnect_max_s, _noop)
+        outage = Outage(
+            f"queries {self.space.name}",
+            rs.reconnect_min_s,
+            rs.reconnect_max_s,
+            self.metrics.reconnects.labels(space=self.space.name, role="queries").inc,
+        )
         while not stop.is_set():
             client = None
             try:

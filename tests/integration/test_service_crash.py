@@ -174,5 +174,7 @@ def test_redis_restart_under_running_service_loses_nothing(
     ck = decode_checkpoint(redis_server.client().get("{sr:duel}:ckpt"), 10**6, 1e12)
     assert ck.applied == len(events)
     assert_same_state(ck, reference(events))
-    outages = service.registry.get_sample_value("streamrate_redis_outages_total", {"space": "duel"})
+    outages = service.registry.get_sample_value(
+        "streamrate_redis_outages_total", {"space": "duel", "role": "consumer"}
+    )
     assert outages is not None and outages >= 1
