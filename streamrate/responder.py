@@ -247,6 +247,7 @@ class Responder:
         self._nonce = uuid.uuid4().hex
         self._probe_sent: float | None = None
         self._last_probe = 0.0
+        self._renewed = False
 
     # -- watch requests -------------------------------------------------------------
     def on_watch(self, req: WatchRequest) -> dict[str, Any]:
@@ -382,8 +383,8 @@ class Responder:
         name = self.space.name
         meter = _Meter(self.budget)
         client = self.clients()
+        pubsub = client.pubsub(ignore_subscribe_messages=True)
         try:
-            pubsub = client.pubsub(ignore_subscribe_messages=True)
             pubsub.subscribe(self.keys.requests)
             pubsub.get_message(timeout=1.0)  # the subscribe confirmation
             outage.ok()
@@ -393,7 +394,13 @@ class Responder:
             # again); this callback makes each such renewal seen and counted.
             pubsub.connection.register_connect_callback(self._on_reconnect)
             while not stop.is_set():
-                msg = pubsub.get_message(timeout=0.1)
+                self._renewed = False
+                try:
+                    msg = pubsub.get_message(timeout=0.1)
+                except REDIS_DOWN:
+                    if not self._renewed:  # not yet counted by the callback
+                        self._on_reconnect(None)
+                    return  # subscribe again (an outage if Redis is really gone)
                 if msg is not None and msg.get("type") == "message":
                     self.intake(msg["data"])
                 if not self._probe(client):
@@ -408,11 +415,12 @@ class Responder:
                     )
                     return
                 meter.charge(stop)
-            pubsub.close()
         finally:
+            pubsub.close()
             client.close()
 
     def _on_reconnect(self, _connection: Any) -> None:
+        self._renewed = True
         self.metrics.query_resubscribes.labels(
             space=self.space.name, reason="connection_lost"
         ).inc()
@@ -421,7 +429,7 @@ class Responder:
             "lost",
             logging.WARNING,
             "space %s: the request subscription's connection was closed"
-            " (for example on output-buffer overflow); subscribed again",
+            " (for example on output-buffer overflow); subscribing again",
             self.space.name,
         )
 
