@@ -245,6 +245,15 @@ def parse_context(items: Iterable[str]) -> dict[str, Any]:
     return out
 
 
+def never_seen(reply: dict[str, Any]) -> list[str]:
+    """Entities of a pairing reply the model has never seen (answered with a newcomer's
+    estimate)."""
+    seen = reply.get("seen")
+    if not isinstance(seen, dict):
+        return []
+    return [e for e, n in seen.items() if n == 0]
+
+
 def format_reply(reply: dict[str, Any]) -> str:
     """A short human reading of a reply (the JSON is available with --json)."""
     if not reply.get("ok"):
@@ -261,11 +270,21 @@ def format_reply(reply: dict[str, Any]) -> str:
     if reply.get("kind") == "pairing":
         seen = ", ".join(f"{k}: {v}" for k, v in reply["seen"].items())
         draw = "" if reply.get("p_draw") is None else f", P(draw) = {reply['p_draw']:.3f}"
-        return f"P(first wins) = {reply['p_first_wins']:.3f}{draw}  seen: {seen}  {ver}"
+        lines = [f"P(first wins) = {reply['p_first_wins']:.3f}{draw}  seen: {seen}  {ver}"]
+        lines += [f"never seen: {e} (newcomer estimate)" for e in never_seen(reply)]
+        return "\n".join(lines)
     if reply.get("kind") == "lobby":
         s = reply["split"]
+        if reply["method"] == "exact":
+            how = "exact: every split was scored with the model"
+        else:
+            bound = reply.get("gap_bound")
+            how = "heuristic: teams balanced by each player's mean strength, then scored"
+            if bound is not None:
+                how += f" (strength gap {reply['surrogate_gap']:.3f}, at most {bound:.3f})"
         return (
             f"{' + '.join(s['first'])}  vs  {' + '.join(s['second'])}: "
-            f"P(first wins) = {s['p_first_wins']:.3f} [{reply['method']}] {ver}"
+            f"P(first wins) = {s['p_first_wins']:.3f} [{reply['method']}] {ver}\n"
+            f"[{reply['method']}] = {how}"
         )
     return json.dumps(reply)

@@ -180,3 +180,25 @@ def test_watch_list_drives_the_live_feed(running: tuple[Service, RedisServer]) -
     assert [m["seq"] for m in got] == list(range(1, len(got) + 1))
     assert ask(r, Q, {"kind": "watch", "action": "clear", "watcher": "t1"})["watching"] == 0
     assert service.spaces[0].watch.affected([a, b]) == []
+
+
+def test_ask_says_never_seen_and_strict_makes_it_an_error(
+    running: tuple[Service, RedisServer],
+) -> None:
+    from typer.testing import CliRunner
+
+    from streamrate.cli import app
+
+    service, server = running
+    send_events(server.client(), "{sr:duel}:events", [event_to_json(e) for e in WORLD])
+    wait_for(lambda: service.spaces[0].consumer.live.applied == len(WORLD), 30, "all applied")
+    known = WORLD[0].first[0]
+    url = ["--redis-url", server.url]
+    res = CliRunner().invoke(app, ["ask", known, "ghost", *url])
+    assert res.exit_code == 0, res.output
+    assert "never seen: ghost (newcomer estimate)" in res.stdout
+    assert f"never seen: {known}" not in res.stdout
+    strict = CliRunner().invoke(app, ["ask", known, "ghost", "--strict", *url])
+    assert strict.exit_code == 2 and "error: never seen: ghost" in strict.stderr
+    even = CliRunner().invoke(app, ["ask", "--lobby", ",".join(_entities()[:4]), *url])
+    assert even.exit_code == 0 and "[exact] = exact" in even.stdout, even.output
