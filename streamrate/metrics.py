@@ -140,14 +140,21 @@ class ServiceMetrics:
             ["space", "reason"],
             registry=r,
         )
+        self.query_outages = Counter(
+            "streamrate_query_redis_outages_total",
+            "Times a query-side connection (subscriber or replies) lost Redis and began"
+            " reconnecting (the consumer's outages: streamrate_redis_outages_total).",
+            ["space"],
+            registry=r,
+        )
         self.query_queue = Gauge(
-            "streamrate_query_queue_requests",
+            "streamrate_query_queued_entries",
             "Requests waiting between the subscriber and the answering thread.",
             ["space"],
             registry=r,
         )
         self.watchers = Gauge(
-            "streamrate_livefeed_watchers",
+            "streamrate_livefeed_watcher_entries",
             "Watchers with a live watch list.",
             ["space"],
             registry=r,
@@ -162,6 +169,7 @@ class ServiceMetrics:
             for reason in QUERY_RESUBSCRIBE_REASONS:
                 self.query_resubscribes.labels(space=s, reason=reason)
             self.query_queue.labels(space=s)
+            self.query_outages.labels(space=s)
             self.watchers.labels(space=s)
             for o in EVENT_OUTCOMES:
                 self.events.labels(space=s, outcome=o)

@@ -168,10 +168,10 @@ class SpaceService:
     # -- query threads (streamrate.responder) -------------------------------------------
     def respond(self, stop: threading.Event) -> None:
         rs = self.settings.redis
-        reconnects = self.metrics.reconnects.labels(space=self.space.name)
+        reconnects = self.metrics.query_outages.labels(space=self.space.name)
 
         def outage_of(role: str) -> Outage:
-            # The query side's outages count too, next to the consumer's.
+            # The query side's outages are counted apart from the consumer's.
             return Outage(
                 f"{role} {self.space.name}", rs.reconnect_min_s, rs.reconnect_max_s, reconnects.inc
             )
