@@ -259,12 +259,45 @@ def send(
     typer.echo(f"sent {n} entries to {settings.keys(sp).events}")
 
 
+def _side(text: str) -> list[str]:
+    return [x.strip() for x in text.split(",") if x.strip()]
+
+
+def _pairing_problem(first: list[str], second: list[str], ctx: dict[str, Any]) -> str | None:
+    """What is wrong with a pairing, in one line; None when it is fine."""
+    from pydantic import ValidationError
+
+    from streamrate.events import Matchup
+
+    both = sorted(set(first) & set(second))
+    if both:
+        return f"an entity cannot be on both sides: {', '.join(both)}"
+    if not first or not second:
+        return "each side needs at least one id"
+    try:
+        Matchup(first=first, second=second, context=ctx)
+    except ValidationError as exc:
+        return "; ".join(
+            f"{'.'.join(str(p) for p in e['loc']) or 'pairing'}: "
+            f"{e['msg'].removeprefix('Value error, ')}"
+            for e in exc.errors(include_url=False)[:3]
+        )
+    return None
+
+
+def _fail(message: str) -> typer.Exit:
+    typer.echo(f"error: {message}", err=True)
+    return typer.Exit(2)
+
+
 @app.command()
 def ask(
     first: Annotated[str | None, typer.Argument(help="First side: ids joined by commas.")] = None,
     second: Annotated[str | None, typer.Argument(help="Second side: ids joined by commas.")] = None,
     lobby: Annotated[str | None, typer.Option(help="Lobby: ids joined by commas.")] = None,
-    teams: Annotated[str, typer.Option(help="Team sizes for --lobby, e.g. 2,2.")] = "",
+    teams: Annotated[
+        str, typer.Option(help="Team sizes for --lobby, e.g. 2,2 (default: an even split).")
+    ] = "",
     context: Annotated[
         list[str] | None, typer.Option(help="name=category or name:=number (repeatable).")
     ] = None,
@@ -273,16 +306,23 @@ def ask(
     set_: SetOpt = None,
     space: SpaceOpt = None,
     as_json: Annotated[bool, typer.Option("--json", help="Print the raw JSON reply.")] = False,
+    strict: Annotated[
+        bool, typer.Option("--strict", help="An id the model has never seen is an error.")
+    ] = False,
     schema: Annotated[
         bool, typer.Option("--schema", help="Print the request JSON Schema.")
     ] = False,
     timeout_s: Annotated[float, typer.Option("--timeout", help="Seconds to wait.")] = 5.0,
 ) -> None:
-    """Ask the running service: P(FIRST beats SECOND), or the most even split of a lobby."""
+    """Ask the running service: P(FIRST beats SECOND), or the most even split of a lobby.
+
+    Exit codes: 0 answered, 1 the service replied with an error, 2 bad input, no
+    service or no reply (and, with --strict, an id the model has never seen).
+    """
     import redis as redis_lib
 
     from streamrate.client import ask as ask_service
-    from streamrate.client import format_reply, parse_context
+    from streamrate.client import format_reply, never_seen, parse_context
     from streamrate.connect import RedisClients, explain
     from streamrate.errors import StreamrateError
     from streamrate.queries import request_schema
@@ -294,18 +334,37 @@ def ask(
     try:
         ctx = parse_context(context or [])
         if lobby is not None:
-            sizes = [int(x) for x in teams.split(",") if x.strip()]
+            ids = _side(lobby)
+            try:
+                sizes = [int(x) for x in teams.split(",") if x.strip()]
+            except ValueError:
+                raise _fail(f"--teams {teams!r}: write two sizes, e.g. 2,2") from None
+            if not sizes:
+                if len(ids) % 2:
+                    raise _fail(
+                        f"a lobby of {len(ids)} cannot be split evenly: give --teams, "
+                        f"e.g. --teams {len(ids) // 2},{len(ids) - len(ids) // 2}"
+                    )
+                sizes = [len(ids) // 2, len(ids) // 2]
+            if len(sizes) != 2 or min(sizes) < 1 or sum(sizes) != len(ids):
+                raise _fail(
+                    f"--teams {teams}: two sizes of at least 1 adding up to the "
+                    f"{len(ids)} ids of the lobby"
+                )
             req: dict[str, Any] = {
                 "kind": "lobby",
-                "entities": lobby.split(","),
+                "entities": ids,
                 "team_sizes": sizes,
                 "context": ctx,
             }
         elif first and second:
-            req = {"kind": "pairing", "first": first.split(","), "second": second.split(",")}
-            req["context"] = ctx
+            a, b = _side(first), _side(second)
+            problem = _pairing_problem(a, b, ctx)
+            if problem is not None:
+                raise _fail(problem)
+            req = {"kind": "pairing", "first": a, "second": b, "context": ctx}
         else:
-            raise typer.BadParameter("give FIRST and SECOND, or --lobby with --teams")
+            raise _fail("give FIRST and SECOND (ids joined by commas), or --lobby")
         settings = _service_settings(config, redis_url, set_)
         keys = settings.keys(settings.space(space))
         clients = RedisClients(settings.redis)
@@ -316,25 +375,34 @@ def ask(
     typer.echo(json.dumps(reply, indent=2) if as_json else format_reply(reply))
     if not reply.get("ok"):
         raise typer.Exit(1)
+    unknown = never_seen(reply)
+    if strict and unknown:
+        raise _fail(f"never seen: {', '.join(unknown)} (--strict)")
 
 
 @app.command()
 def watch(
     pairing: Annotated[
-        list[str] | None, typer.Argument(help="Pairings to watch: first,ids:second,ids.")
-    ] = None,
+        list[str], typer.Argument(help="Pairings to watch: first,ids:second,ids (one or more).")
+    ],
     config: ConfigOpt = None,
     redis_url: RedisOpt = None,
     set_: SetOpt = None,
     space: SpaceOpt = None,
+    ttl_s: Annotated[
+        float, typer.Option("--ttl", help="Seconds the service keeps the watch unless renewed.")
+    ] = 60.0,
 ) -> None:
-    """Follow the live feed (after setting the watch list, when pairings are given)."""
+    """Follow fresh odds of PAIRING(s) as matches are applied, until Ctrl-C.
+
+    The watch belongs to this command alone (its own watcher id and channel); it
+    is renewed while the command runs and cleared when it ends.
+    """
     import threading
 
     import redis as redis_lib
 
-    from streamrate.client import ask as ask_service
-    from streamrate.client import follow
+    from streamrate.client import watch as watch_service
     from streamrate.connect import RedisClients, explain
     from streamrate.errors import StreamrateError
 
@@ -346,22 +414,36 @@ def watch(
 
     make: RedisClients | None = None
     try:
+        pairs = []
+        for p in pairing:
+            a, sep, b = p.partition(":")
+            if not sep:
+                raise _fail(f"{p!r}: write first,ids:second,ids")
+            first, second = _side(a), _side(b)
+            problem = _pairing_problem(first, second, {})
+            if problem is not None:
+                raise _fail(f"{p}: {problem}")
+            pairs.append({"first": first, "second": second})
         settings = _service_settings(config, redis_url, set_)
         keys = settings.keys(settings.space(space))
         make = RedisClients(settings.redis)
-        if pairing:
-            pairs = []
-            for p in pairing:
-                a, sep, b = p.partition(":")
-                if not sep:
-                    raise typer.BadParameter(f"{p!r}: write first,ids:second,ids")
-                pairs.append({"first": a.split(","), "second": b.split(",")})
-            req = {"kind": "watch", "action": "set", "pairings": pairs}
-            reply = ask_service(make(), keys.requests, req)
-            if not reply.get("ok"):
-                raise typer.BadParameter(str(reply.get("error")))
-        typer.echo(f"following {keys.live} (Ctrl-C to stop)", err=True)
-        follow(make(), keys.live, show, threading.Event())
+        ready = threading.Event()
+        stop = threading.Event()
+
+        def started() -> None:
+            ready.wait()
+            typer.echo(f"watching {len(pairs)} pairing(s) (Ctrl-C to stop)", err=True)
+
+        threading.Thread(target=started, daemon=True).start()
+        watch_service(
+            make(),
+            keys.requests,
+            pairs,
+            show,
+            stop,
+            ttl_s=ttl_s,
+            ready=ready,
+        )
     except KeyboardInterrupt:
         return
     except (StreamrateError, redis_lib.RedisError) as exc:

@@ -13,7 +13,9 @@ slots)::
     {sr:duel}:dead     dead letters: original fields + source id + reason
     {sr:duel}:ckpt     the checkpoint (Redis checkpoint store only)
     {sr:duel}:q        query requests (pub/sub channel)
-    {sr:duel}:live     the live feed (pub/sub channel)
+    {sr:duel}:live:<watcher>  the live feed of one watcher (pub/sub channel)
+    {sr:duel}:live     the live feed of watch requests that name no watcher
+    {sr:duel}:q:reply:<...>   replies (a request's ``reply_to`` must start so)
     {sr:duel}:q:errors error replies to requests that named no usable reply channel
 
 >>> s = Settings(spaces=(SpaceSettings(name="duel"),))
@@ -198,10 +200,30 @@ class MetricsSettings(BaseModel):
 
 
 class QuerySettings(BaseModel):
+    """Limits of the query side: size and cost of one request, the admission queue
+    between the subscriber and the answering thread, the live feed's watchers."""
+
     model_config = _FROZEN
     lobby_exact_max: int = Field(10, ge=2, le=16)
     lobby_max: int = Field(256, ge=2)
     max_request_bytes: int = Field(65_536, ge=256)
+    # Work of one request in pair predictions (a lobby of n: n*(n-1), plus the
+    # splits scored when n <= lobby_exact_max); above it the request is refused.
+    max_request_cost: int = Field(70_000, ge=1)
+    # A large lobby's matrix is computed in slices of this many predictions,
+    # releasing the model lock between slices.
+    pairs_per_lock: int = Field(2048, ge=1)
+    queue_max: int = Field(512, ge=1)
+    queue_per_client: int = Field(64, ge=1)
+    # A request that waited longer than this gets "busy" instead of a late answer;
+    # a subscription whose backlog is older than this is dropped and renewed.
+    max_wait_s: float = Field(2.0, gt=0)
+    # CPU time the query side may use per second of wall time (the rest is the
+    # consumer's), in seconds of one core.
+    cpu_share: float = Field(0.35, gt=0, le=1)
+    probe_every_s: float = Field(0.5, gt=0)
+    watch_ttl_s: float = Field(60.0, gt=0)
+    max_watchers: int = Field(1024, ge=1)
 
 
 @dataclass(frozen=True)
@@ -215,6 +237,11 @@ class SpaceKeys:
     requests: str
     live: str
     errors: str
+    reply_prefix: str = ""
+
+    def live_of(self, watcher: str) -> str:
+        """The live-feed channel of one watcher (the bare ``live`` for the unnamed one)."""
+        return f"{self.live}:{watcher}" if watcher else self.live
 
 
 class Settings(BaseModel):
@@ -248,6 +275,7 @@ class Settings(BaseModel):
             requests=f"{tag}:q",
             live=f"{tag}:live",
             errors=f"{tag}:q:errors",
+            reply_prefix=f"{tag}:q:reply:",
         )
 
     def space(self, name: str | None = None) -> SpaceSettings:

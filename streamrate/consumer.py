@@ -40,7 +40,7 @@ from streamrate.config import SpaceKeys, SpaceSettings
 from streamrate.dedupe import SeenIds
 from streamrate.errors import ConfigError, EventError
 from streamrate.events import MatchEvent, parse_event
-from streamrate.livefeed import WatchList, live_messages
+from streamrate.livefeed import WatchRegistry, live_messages
 from streamrate.metrics import ServiceMetrics
 from streamrate.models.base import Model, Prediction, Predictions, warm_up
 from streamrate.models.registry import model_from_state
@@ -90,7 +90,7 @@ class Consumer:
         store: CheckpointStore,
         metrics: ServiceMetrics,
         build_model: Callable[[], Model],
-        watch: WatchList | None = None,
+        watch: WatchRegistry | None = None,
         observers: Sequence[Observer] = (),
         clock: Callable[[], float] = time.monotonic,
     ) -> None:
@@ -100,7 +100,7 @@ class Consumer:
         self.store = store
         self.metrics = metrics
         self.build_model = build_model
-        self.watch = watch if watch is not None else WatchList(limit=0)
+        self.watch = watch if watch is not None else WatchRegistry(0, 0)
         self.observers: list[Observer] = list(observers)
         self.clock = clock
         self.live = LiveModel(build_model())
@@ -341,7 +341,7 @@ class Consumer:
                 raise res
 
     def _learn(
-        self, part: list[tuple[str, MatchEvent]], messages: list[str]
+        self, part: list[tuple[str, MatchEvent]], messages: list[tuple[str, str]]
     ) -> tuple[list[tuple[float, float]], dict[str, Predictions]]:
         """Predict-then-learn one chunk under the model lock; live messages appended."""
         live = self.live
@@ -357,7 +357,14 @@ class Consumer:
                     preds.append((one.p_win, one.p_draw))
                     hit = self.watch.affected(ev.entities())
                     if hit:
-                        messages += live_messages(live.model, hit, sid, ev.match_id)
+                        messages += live_messages(
+                            live.model,
+                            hit,
+                            sid,
+                            ev.match_id,
+                            self.keys.live_of,
+                            self.watch.next_seq,
+                        )
             live.applied += len(part)
             live.version = part[-1][0]
             # Models inside the model (challenger members, the raw model under a
@@ -382,7 +389,7 @@ class Consumer:
         for start in range(0, len(valid), chunk):
             part = valid[start : start + chunk]
             events = [ev for _, ev in part]
-            messages: list[str] = []
+            messages: list[tuple[str, str]] = []
             try:
                 preds, members = self._learn(part, messages)
             except Exception as exc:
@@ -395,8 +402,8 @@ class Consumer:
                 self.seen.add(ev.match_id, ev.finished_at.timestamp())
             if messages:
                 pipe = self.r.pipeline(transaction=False)
-                for m in messages:
-                    pipe.publish(self.keys.live, m)
+                for channel, m in messages:
+                    pipe.publish(channel, m)
                 pipe.execute()
                 self.metrics.live_published.labels(**self._lbl).inc(len(messages))
             for i, (ev, p) in enumerate(zip(events, preds, strict=True)):

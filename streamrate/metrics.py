@@ -25,6 +25,10 @@ EVENT_OUTCOMES = ("applied", "dead_lettered", "duplicate")
 QUERY_KINDS = ("pairing", "lobby", "watch", "invalid")
 QUERY_OUTCOMES = ("ok", "error")
 OUTAGE_ROLES = ("consumer", "queries")
+QUERY_SHED_REASONS = ("queue_full", "client_queue_full", "expensive", "too_old")
+QUERY_FAILED_STAGES = ("answer", "publish")
+QUERY_LOOPS = ("subscriber", "answerer")
+QUERY_RESUBSCRIBE_REASONS = ("connection_lost", "backlog")
 _BATCH_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5)
 _QUERY_BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1)
 
@@ -111,7 +115,64 @@ class ServiceMetrics:
             ["space"],
             registry=r,
         )
+        self.query_shed = Counter(
+            "streamrate_query_shed_total",
+            "Requests refused with a busy reply (or dropped when none could be sent), by reason.",
+            ["space", "reason"],
+            registry=r,
+        )
+        self.query_failed = Counter(
+            "streamrate_query_failed_total",
+            "Requests that failed inside the service: an unexpected error while answering,"
+            " or a reply that could not be published (for example a Redis permission error).",
+            ["space", "stage"],
+            registry=r,
+        )
+        self.query_restarts = Counter(
+            "streamrate_query_loop_restarts_total",
+            "Times a query loop died of an unexpected error and was started again.",
+            ["space", "loop"],
+            registry=r,
+        )
+        self.query_resubscribes = Counter(
+            "streamrate_query_resubscribes_total",
+            "Times the request subscription was renewed: its connection was lost"
+            " (Redis drops a subscriber whose output buffer overflows), or its backlog"
+            " was older than the longest useful wait.",
+            ["space", "reason"],
+            registry=r,
+        )
+        self.query_outages = Counter(
+            "streamrate_query_redis_outages_total",
+            "Times a query-side connection (subscriber or replies) lost Redis and began"
+            " reconnecting (the consumer's outages: streamrate_redis_outages_total).",
+            ["space"],
+            registry=r,
+        )
+        self.query_queue = Gauge(
+            "streamrate_query_queued_entries",
+            "Requests waiting between the subscriber and the answering thread.",
+            ["space"],
+            registry=r,
+        )
+        self.watchers = Gauge(
+            "streamrate_livefeed_watcher_entries",
+            "Watchers with a live watch list.",
+            ["space"],
+            registry=r,
+        )
         for s in spaces:
+            for reason in QUERY_SHED_REASONS:
+                self.query_shed.labels(space=s, reason=reason)
+            for stage in QUERY_FAILED_STAGES:
+                self.query_failed.labels(space=s, stage=stage)
+            for loop in QUERY_LOOPS:
+                self.query_restarts.labels(space=s, loop=loop)
+            for reason in QUERY_RESUBSCRIBE_REASONS:
+                self.query_resubscribes.labels(space=s, reason=reason)
+            self.query_queue.labels(space=s)
+            self.query_outages.labels(space=s)
+            self.watchers.labels(space=s)
             for o in EVENT_OUTCOMES:
                 self.events.labels(space=s, outcome=o)
             for metric in (self.loop_errors, self.claimed, self.live_published):

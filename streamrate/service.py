@@ -13,7 +13,6 @@ consumer then re-reads its own pending entries after its last handled id.
 
 from __future__ import annotations
 
-import json
 import logging
 import signal
 import sys
@@ -30,15 +29,14 @@ from streamrate.checkpoint import CheckpointStore, FileCheckpointStore, RedisChe
 from streamrate.config import RedisSettings, Settings, SpaceSettings
 from streamrate.connect import RedisClients
 from streamrate.consumer import Consumer, Observer
-from streamrate.errors import EventError
-from streamrate.events import Matchup
-from streamrate.livefeed import WatchList
+from streamrate.livefeed import WatchRegistry
 from streamrate.metrics import ServiceMetrics, serve_metrics
 from streamrate.models.base import Model
 from streamrate.models.registry import build_model
 from streamrate.quality_metrics import QualityMetrics, QualityObserver, quality_observers
-from streamrate.queries import MAX_WATCH, Answerer, QueryError, WatchRequest, handle
+from streamrate.queries import MAX_WATCH
 from streamrate.recalibrate import OnlineRecalibrator, recalibrators_of
+from streamrate.responder import Responder
 
 log = logging.getLogger("streamrate.service")
 REDIS_DOWN = (redis.ConnectionError, redis.TimeoutError)
@@ -95,7 +93,7 @@ class SpaceService:
     ) -> None:
         self.settings, self.space, self.clients, self.metrics = settings, space, clients, metrics
         self.keys = settings.keys(space)
-        self.watch = WatchList(limit=4 * MAX_WATCH)
+        self.watch = WatchRegistry(MAX_WATCH, settings.queries.max_watchers)
         client = clients()
         store: CheckpointStore
         if settings.checkpoint.store == "redis":
@@ -107,9 +105,12 @@ class SpaceService:
             client, space, self.keys, store, metrics, builder, self.watch, observers, clock
         )
         self.ready = threading.Event()  # the consumer has recovered and is reading
-        self.listening = threading.Event()  # the query responder is subscribed
         self.q = settings.queries
-        self.answerer = Answerer(self.consumer.live, self.q.lobby_exact_max, self.q.lobby_max)
+        self.responder = Responder(
+            settings, space, self.keys, clients, metrics, self.consumer.live, self.watch
+        )
+        self.listening = self.responder.listening  # the query responder is subscribed
+        self.answerer = self.responder.answerer
 
     # -- consumer thread --------------------------------------------------------
     def consume(self, stop: threading.Event) -> None:
@@ -155,80 +156,22 @@ class SpaceService:
                     return
                 outage.failed(exc, threading.Event())
 
-    # -- query thread -------------------------------------------------------------
-    def on_watch(self, req: WatchRequest) -> dict[str, Any]:
-        specs = []
-        for i, p in enumerate(req.pairings):
-            try:
-                Matchup(first=p.first, second=p.second, context=p.context)
-            except ValueError as exc:
-                raise QueryError(f"pairings.{i}: {exc}") from exc
-            specs.append((p.first, p.second, dict(p.context)))
-        if req.action == "set":
-            n = self.watch.set(specs)
-        elif req.action == "add":
-            n = self.watch.add(specs)
-        else:
-            n = self.watch.clear()
-        return {"watching": n, "live_channel": self.keys.live}
-
-    def answer(self, raw: bytes) -> tuple[str, str]:
-        """Reply channel and JSON reply for one raw request (never raises)."""
-        t0 = time.perf_counter()
-        try:
-            reply_to, body, kind = handle(
-                raw, self.answerer, self.on_watch, self.q.max_request_bytes
-            )
-        except (EventError, QueryError, ValueError) as exc:
-            reply_to, body, kind = None, {"id": None, "ok": False, "error": str(exc)}, "invalid"
-        outcome = "ok" if body.get("ok") else "error"
-        self.metrics.queries.labels(space=self.space.name, kind=kind, outcome=outcome).inc()
-        self.metrics.query_seconds.labels(space=self.space.name, kind=kind).observe(
-            time.perf_counter() - t0
-        )
-        return reply_to or self.keys.errors, json.dumps(body)
-
+    # -- query threads (streamrate.responder) -------------------------------------------
     def respond(self, stop: threading.Event) -> None:
         rs = self.settings.redis
-        outage = Outage(
-            f"queries {self.space.name}",
-            rs.reconnect_min_s,
-            rs.reconnect_max_s,
-            self.metrics.reconnects.labels(space=self.space.name, role="queries").inc,
-        )
-        while not stop.is_set():
-            client = None
-            try:
-                client = self.clients()
-                pubsub = client.pubsub(ignore_subscribe_messages=True)
-                pubsub.subscribe(self.keys.requests)
-                pubsub.get_message(timeout=1.0)  # the subscribe confirmation
-                outage.ok()
-                self.listening.set()
-                while not stop.is_set():
-                    msg = pubsub.get_message(timeout=0.2)
-                    if msg is None or msg.get("type") != "message":
-                        continue
-                    try:
-                        channel, reply = self.answer(msg["data"])
-                    except Exception:  # loop boundary: a reply must not kill the responder
-                        log.exception("space %s: error answering a query", self.space.name)
-                        continue
-                    client.publish(channel, reply)
-                pubsub.close()
-            except REDIS_DOWN as exc:
-                outage.failed(exc, stop)
-            finally:
-                if client is not None:
-                    client.close()
+        reconnects = self.metrics.reconnects.labels(space=self.space.name, role="queries")
+
+        def outage_of(role: str) -> Outage:
+            # Counted under role="queries", apart from the consumer's outages.
+            return Outage(
+                f"{role} {self.space.name}", rs.reconnect_min_s, rs.reconnect_max_s, reconnects.inc
+            )
+
+        self.responder.run(stop, outage_of)
 
 
 def _live_recalibrators(consumer: Consumer) -> dict[str, OnlineRecalibrator]:
     return recalibrators_of(consumer.live.model)
-
-
-def _noop() -> None:
-    return None
 
 
 class Service:
