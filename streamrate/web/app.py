@@ -200,7 +200,10 @@ class WatchStream:
         if not await write(first.encode()):
             return
         await web.feed.ensure(sub.keys)
-        if not await write(b"".join(web.hub.backlog(sub.keys, since, history)) + web.beat()):
+        backlog = web.hub.backlog(sub.keys, since, history)
+        while not sub.queue.empty():  # queued since attach: already in the backlog
+            sub.queue.get_nowait()
+        if not await write(b"".join(backlog) + web.beat()):
             return
         while not sub.overflowed:
             try:

@@ -33,7 +33,7 @@ from streamrate.web.hub import Hub, PairKey, Update, pairing_key
 
 log = logging.getLogger("streamrate.web")
 REDIS_DOWN = (redis.ConnectionError, redis.TimeoutError, OSError)
-REFRESH_EVERY_PROBES = 12  # re-ask every pairing now and then: a restart between probes
+REFRESH_EVERY_S = 60.0  # re-ask every pairing now and then: a service restart between probes
 
 
 class FeedDown(ServiceError):
@@ -138,7 +138,7 @@ class Feed:
         self._synced: set[PairKey] = set()
         self._sync_lock = asyncio.Lock()
         self._wake = asyncio.Event()
-        self._probes = 0
+        self._refresh_at = clock() + REFRESH_EVERY_S
 
     def _set_status(self, status: str, detail: str) -> None:
         if (status, detail) != (self.status, self.detail):
@@ -203,7 +203,10 @@ class Feed:
             *(self.request({"kind": "pairing", **pairing_body(k)}) for k in keys)
         )
         for key, rep in zip(keys, replies, strict=True):
-            if rep.get("ok"):
+            cur = self.hub.current(key)
+            if rep.get("ok") and (cur is None or cur.p_first_wins != rep["p_first_wins"]):
+                # Only news is published: an equal value would only repeat what the live
+                # messages said, and could overtake one still on its way.
                 self.hub.publish(
                     Update(
                         key,
@@ -261,8 +264,8 @@ class Feed:
                 fut.set_result(msg)
             return
         if self.protocol.missed(msg):
-            self._wake.set()  # lost messages: ask everything again at the next probe
-            self._probes = -1
+            self._refresh_at = 0.0  # lost messages: ask everything again at the next probe
+            self._wake.set()
         try:
             key = pairing_key(msg["first"], msg["second"], msg.get("context") or {})
             update = Update(
@@ -313,9 +316,14 @@ class Feed:
                 continue
             try:
                 await self.sync_watch()
-                self._probes += 1
-                if self.status != "ok" or self._probes % REFRESH_EVERY_PROBES == 0:
-                    await self.ask(self.hub.pairings())
+                keys = self.hub.pairings()
+                outage = self.status not in ("ok", "starting")
+                if outage or self.clock() >= self._refresh_at:
+                    self._refresh_at = self.clock() + REFRESH_EVERY_S
+                else:
+                    keys = [k for k in keys if self.hub.current(k) is None]
+                if keys:
+                    await self.ask(keys)
                 self._set_status("ok", "live")
             except FeedDown as exc:
                 self._set_status(exc.status, str(exc))

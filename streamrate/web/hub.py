@@ -214,6 +214,13 @@ class Hub:
             sub.overflowed = True
             self.dropped += 1
 
+    def close_all(self) -> None:
+        """End every subscriber's stream (shutdown): browsers reconnect elsewhere or later."""
+        for sub in list(self.subscribers):
+            sub.overflowed = True
+            if not sub.queue.full():
+                sub.queue.put_nowait(b"")
+
     def broadcast(self, frame: bytes) -> None:
         """A frame for every subscriber (feed status)."""
         for sub in list(self.subscribers):

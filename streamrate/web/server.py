@@ -7,6 +7,7 @@
 from __future__ import annotations
 
 import asyncio
+import socket
 import threading
 import time
 
@@ -16,6 +17,18 @@ from streamrate.config import Settings, WebSettings
 from streamrate.errors import ServiceError
 from streamrate.web.app import Web, build_app
 from streamrate.web.hub import PairKey
+
+
+class _Server(uvicorn.Server):
+    """uvicorn's server, ending the event streams first so that shutdown does not wait."""
+
+    def __init__(self, config: uvicorn.Config, web: Web) -> None:
+        super().__init__(config)
+        self.web = web
+
+    async def shutdown(self, sockets: list[socket.socket] | None = None) -> None:
+        self.web.hub.close_all()
+        await super().shutdown(sockets)
 
 
 class WebServer:
@@ -43,7 +56,7 @@ class WebServer:
             timeout_graceful_shutdown=1,
             server_header=False,
         )
-        self.server = uvicorn.Server(self.config)
+        self.server = _Server(self.config, self.state)
         self._thread: threading.Thread | None = None
 
     def run(self) -> None:
