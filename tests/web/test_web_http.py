@@ -7,9 +7,8 @@ import urllib.error
 
 import pytest
 
-from tests.integration.helpers import wait_for
-
 from streamrate.web.hub import version_order
+from tests.integration.helpers import wait_for
 
 from .conftest import Stack, busiest_pair, world
 from .sse import SSEReader
@@ -119,7 +118,9 @@ def test_limits_read_only_and_no_cors_by_default(redis_server, tmp_path) -> None
 
 def test_a_token_is_required_when_set(redis_server, tmp_path) -> None:  # type: ignore[no-untyped-def]
     token = "t" * 24
-    stack = Stack(redis_server, tmp_path, metrics=False, token=token, cors_origins=("http://x.test",))
+    stack = Stack(
+        redis_server, tmp_path, metrics=False, token=token, cors_origins=("http://x.test",)
+    )
     try:
         stack.start_service()
         stack.start_web()
