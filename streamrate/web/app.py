@@ -20,6 +20,7 @@ a page show a stale state.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import hmac
 import json
 import re
@@ -176,7 +177,10 @@ class WatchStream:
                 t.cancel()
             await asyncio.gather(*pending, return_exceptions=True)
             if pump.done() and not pump.cancelled() and pump.exception() is None:
-                await send({"type": "http.response.body", "body": b"", "more_body": False})
+                end = {"type": "http.response.body", "body": b"", "more_body": False}
+                # a browser that stopped reading blocks this write too: bounded as well
+                with contextlib.suppress(TimeoutError):
+                    await asyncio.wait_for(send(end), web.settings.send_timeout_s)
         except OSError:
             pass  # the browser went away mid-write
         finally:
