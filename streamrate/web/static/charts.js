@@ -33,7 +33,7 @@ const Charts = (() => {
   function timeLine(svg, points, o) {
     clear(svg);
     const [w, h] = size(svg);
-    const pad = { l: 30, r: 8, t: 6, b: 16 };
+    const pad = { l: 38, r: 8, t: 6, b: 16 };
     const x = (t) => pad.l + ((t - o.t0) / Math.max(1, o.t1 - o.t0)) * (w - pad.l - pad.r);
     const y = (v) => pad.t + (1 - (v - o.y0) / (o.y1 - o.y0)) * (h - pad.t - pad.b);
     for (const g of o.grid || []) {
