@@ -303,7 +303,7 @@ class Feed:
                 delay = min(delay * 2, 2.0)
             finally:
                 if pubsub is not None:
-                    with contextlib.suppress(REDIS_DOWN):
+                    with contextlib.suppress(*REDIS_DOWN):
                         await pubsub.aclose()
 
     async def probe(self, stop: asyncio.Event) -> None:

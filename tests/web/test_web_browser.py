@@ -51,7 +51,7 @@ def browser() -> Iterator[Any]:
 
 
 def _attr(page: Any, sel: str, name: str) -> str | None:
-    return page.evaluate(f"document.querySelector({sel!r}).dataset.{name} ?? null")
+    return page.evaluate(f"document.querySelector({sel!r})?.dataset.{name} ?? null")
 
 
 def _wait_attr(page: Any, sel: str, name: str, value: str, timeout_s: float = 20) -> None:
