@@ -586,5 +586,76 @@ def health(
         raise typer.Exit(1)
 
 
+@app.command()
+def web(
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    space: SpaceOpt = None,
+    bind: Annotated[str, typer.Option(help="Address to listen on (loopback by default).")] = (
+        "127.0.0.1"
+    ),
+    port: Annotated[int, typer.Option(help="TCP port.")] = 8750,
+    token: Annotated[
+        str | None,
+        typer.Option(
+            envvar="STREAMRATE_WEB_TOKEN",
+            help="Bearer token every request must carry (header, or ?token= in a page URL); "
+            "required off loopback.",
+        ),
+    ] = None,
+    cors_origin: Annotated[
+        list[str] | None, typer.Option(help="Origin allowed to read the API (repeatable).")
+    ] = None,
+    metrics_url: Annotated[
+        str | None,
+        typer.Option(help="The service's metrics page (default: from the settings' [metrics])."),
+    ] = None,
+    watch: Annotated[
+        list[str] | None,
+        typer.Option(help="Pairing kept watched for the board: first,ids:second,ids (repeatable)."),
+    ] = None,
+    context: Annotated[
+        list[str] | None,
+        typer.Option(help="Context of the --watch pairings: name=category or name:=number."),
+    ] = None,
+    max_clients: Annotated[int, typer.Option(help="Most browser connections at once.")] = 1000,
+) -> None:
+    """Serve the broadcast overlay, the live board and their SSE feed over HTTP (read-only)."""
+    from pydantic import ValidationError
+
+    from streamrate.client import parse_context
+    from streamrate.config import WebSettings, metrics_url_of
+    from streamrate.errors import StreamrateError
+    from streamrate.web.app import parse_pairing
+    from streamrate.web.server import WebServer
+
+    try:
+        settings = _service_settings(config, redis_url, set_)
+        ctx = parse_context(context or [])
+        pinned = [parse_pairing(w, ctx) for w in watch or []]
+        web_settings = WebSettings(
+            bind=bind,
+            port=port,
+            token=token,
+            cors_origins=tuple(cors_origin or ()),
+            metrics_url=metrics_url or metrics_url_of(settings.metrics),
+            max_clients=max_clients,
+        )
+        server = WebServer(web_settings, settings, space, pinned)
+    except ValidationError as exc:
+        first = exc.errors(include_url=False)[0]
+        where = ".".join(str(p) for p in first["loc"])
+        typer.echo(f"error: {where + ': ' if where else ''}{first['msg']}", err=True)
+        raise typer.Exit(2) from exc
+    except (StreamrateError, ValueError) as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(2) from exc
+    shown = "localhost" if bind in ("127.0.0.1", "::1") else bind
+    typer.echo(f"board:   http://{shown}:{port}/board", err=True)
+    typer.echo(f"overlay: http://{shown}:{port}/overlay?p=FIRST:SECOND", err=True)
+    server.run()
+
+
 def main() -> None:  # pragma: no cover - console entry point
     app()

@@ -339,3 +339,57 @@ def load_settings(path: Path | str | None = None, overrides: list[str] | None = 
             for e in exc.errors(include_url=False)
         )
         raise ConfigError(msgs) from exc
+
+
+_LOOPBACK = ("127.0.0.1", "::1", "localhost")
+
+
+class WebSettings(BaseModel):
+    """``streamrate web``: the HTTP bridge from a space's live feed to browsers.
+
+    The bridge watches under its own ``watcher`` id with ``ttl_s`` (renewed by
+    every probe) and reads ``{sr:space}:live:<watcher>``.
+
+    >>> WebSettings().bind
+    '127.0.0.1'
+    >>> WebSettings(bind="0.0.0.0", token="x" * 32).token is not None
+    True
+    """
+
+    model_config = _FROZEN
+    bind: str = "127.0.0.1"
+    port: int = Field(8750, ge=0, le=65535)
+    token: str | None = Field(None, min_length=16, max_length=256)
+    cors_origins: tuple[str, ...] = ()
+    metrics_url: str | None = None
+    watch_ttl_s: float = Field(60.0, gt=0, le=60)
+    probe_every_s: float = Field(5.0, gt=0)
+    ask_timeout_s: float = Field(3.0, gt=0)
+    heartbeat_s: float = Field(10.0, gt=0)
+    max_clients: int = Field(1000, ge=1, le=100_000)
+    max_pairings_per_client: int = Field(16, ge=1, le=256)
+    max_pairings: int = Field(256, ge=1, le=256)
+    client_queue: int = Field(256, ge=4, le=100_000)
+    send_timeout_s: float = Field(10.0, gt=0)
+    history_per_pairing: int = Field(720, ge=1, le=100_000)
+    linger_s: float = Field(60.0, ge=0)
+    quality_every_s: float = Field(5.0, gt=0)
+    quality_history: int = Field(720, ge=1, le=100_000)
+
+    @model_validator(mode="after")
+    def _token_off_loopback(self) -> WebSettings:
+        if self.bind not in _LOOPBACK and self.token is None:
+            raise ValueError(
+                f"a bearer token is required to bind to a non-loopback address ({self.bind})"
+            )
+        return self
+
+
+def metrics_url_of(settings: MetricsSettings) -> str | None:
+    """Where the service's metrics page is, from its settings (None when off)."""
+    if not settings.enabled:
+        return None
+    host = "127.0.0.1" if settings.bind in ("0.0.0.0", "::", "") else settings.bind
+    if ":" in host:
+        host = f"[{host}]"
+    return f"http://{host}:{settings.port}/metrics"

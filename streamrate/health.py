@@ -90,6 +90,11 @@ def _samples(text: str) -> Samples:
     return out
 
 
+def metric_samples(text: str) -> Samples:
+    """Samples of a metrics page by name: ``{name: [(labels, value), ...]}``."""
+    return _samples(text)
+
+
 def _by_space(samples: Samples, name: str, **match: str) -> dict[str, float]:
     total: dict[str, float] = defaultdict(float)
     for labels, value in samples.get(name, []):
