@@ -16,9 +16,8 @@ Example:
 from __future__ import annotations
 
 import hashlib
-import json
 import math
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Annotated, Any
@@ -33,6 +32,7 @@ from pydantic import (
     StrictFloat,
     StrictInt,
     StringConstraints,
+    TypeAdapter,
     ValidationError,
     field_validator,
     model_validator,
@@ -82,6 +82,37 @@ Category = Annotated[
     str,
     StringConstraints(min_length=1, max_length=MAX_CATEGORY_CHARS, pattern=_ID_PATTERN),
 ]
+
+_one_id_char = TypeAdapter(Annotated[str, StringConstraints(pattern=_ID_PATTERN)])
+
+
+def bad_ids(ids: Iterable[str]) -> str | None:
+    """What is wrong with a list of ids read back from storage, or None when all is well.
+
+    Same rule as the event format (checked by the same validator, one distinct
+    character at a time), 1 to :data:`MAX_ID_CHARS` characters, no id twice.
+
+    >>> bad_ids(["kestrel", "marlow"]) is None, bad_ids(["kes trel"])
+    (True, "id character ' ' (U+0020) is not a letter, mark, digit, punctuation or symbol")
+    """
+    seen: set[str] = set()
+    for i in ids:
+        if not 0 < len(i) <= MAX_ID_CHARS:
+            return f"id {i[:MAX_ID_CHARS]!r} is not 1 to {MAX_ID_CHARS} characters long"
+        if i in seen:
+            return f"id {i!r} is listed twice"
+        seen.add(i)
+    chars = set().union(*seen) if seen else set()
+    for ch in chars:
+        try:
+            _one_id_char.validate_python(ch)
+        except ValidationError:
+            return (
+                f"id character {ch!r} (U+{ord(ch):04X}) is not a letter, mark, digit, "
+                "punctuation or symbol"
+            )
+    return None
+
 
 RFC3339 = (
     r"^[0-9]{4}-[0-9]{2}-[0-9]{2}[Tt][0-9]{2}:[0-9]{2}:[0-9]{2}(\.[0-9]{1,9})?"
@@ -313,10 +344,13 @@ def time_problem(event: MatchEvent, received_ms: int, future_limit_s: float) -> 
 
 
 def event_digest(event: MatchEvent) -> bytes:
-    """8-byte BLAKE2b of the event's canonical JSON: what "the same content" means.
+    """8-byte BLAKE2b of the event's canonical text: what "the same content" means.
 
-    Canonical: keys sorted, no spaces, ``finished_at`` in UTC, numbers as floats.
-    So key order, spacing, ``1`` against ``1.0`` and the offset's spelling do not
+    Canonical: fields in a fixed order, context and feature names sorted,
+    ``finished_at`` as its instant (any offset spelling), numbers as floats, each
+    value tagged string or number. Parts are joined with control characters,
+    which no id, name or category may contain, so the text is unambiguous. Key
+    order, spacing, ``1`` against ``1.0`` and ``Z`` against ``+00:00`` do not
     make two events differ; any other change does.
 
     >>> a = parse_event(b'{"match_id": "m-1", "finished_at": "2026-03-01T19:00:00+01:00",'
@@ -326,23 +360,28 @@ def event_digest(event: MatchEvent) -> bytes:
     >>> event_digest(a) == event_digest(b), len(event_digest(a))
     (True, 8)
     """
-    doc: dict[str, Any] = {
-        "match_id": event.match_id,
-        "finished_at": event.finished_at.astimezone(UTC).isoformat(),
-        "first": event.first,
-        "second": event.second,
-        "score": event.score,
-    }
+    parts = [
+        event.match_id,
+        repr(event.finished_at.timestamp()),
+        "\x1f".join(event.first),
+        "\x1f".join(event.second),
+        repr(event.score),
+    ]
     if event.context:
-        doc["context"] = _canonical_values(event.context)
+        parts.append(_canonical_values(event.context))
     if event.features:
-        doc["features"] = {k: _canonical_values(v) for k, v in event.features.items()}
-    text = json.dumps(doc, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
+        parts.append(
+            "\x1c".join(f"{k}\x1b{_canonical_values(v)}" for k, v in sorted(event.features.items()))
+        )
+    text = "\x1e".join(parts)
     return hashlib.blake2b(text.encode("utf-8"), digest_size=8).digest()
 
 
-def _canonical_values(values: dict[str, Any]) -> dict[str, Any]:
-    return {k: v if isinstance(v, str) else float(v) for k, v in values.items()}
+def _canonical_values(values: dict[str, Any]) -> str:
+    return "\x1f".join(
+        f"{k}\x1ds{v}" if isinstance(v, str) else f"{k}\x1dn{float(v)!r}"
+        for k, v in sorted(values.items())
+    )
 
 
 def time_key(event: MatchEvent) -> datetime:
