@@ -357,16 +357,18 @@ class Consumer:
         if not dead:
             return
         cap = self.space.dead_max_payload_bytes
-        trim = {"maxlen": self.space.dead_max_entries, "approximate": True}
+        keep = self.space.dead_max_entries  # XADD MAXLEN ~ keep
         pipe = self.r.pipeline(transaction=False)
         for sid, fields, reason in dead:
-            pipe.xadd(self.keys.dead, dead_fields(fields, sid, reason, cap), id=sid, **trim)
+            letter = dead_fields(fields, sid, reason, cap)
+            pipe.xadd(self.keys.dead, letter, id=sid, maxlen=keep, approximate=True)  # type: ignore[arg-type]
         results = pipe.execute(raise_on_error=False)
         for (sid, fields, reason), res in zip(dead, results, strict=True):
             if isinstance(res, redis.ResponseError):
                 # Id not above the newest dead letter: written before (replay) or out of order.
                 if not self.r.xrange(self.keys.dead, min=sid, max=sid):
-                    self.r.xadd(self.keys.dead, dead_fields(fields, sid, reason, cap), **trim)
+                    letter = dead_fields(fields, sid, reason, cap)
+                    self.r.xadd(self.keys.dead, letter, maxlen=keep, approximate=True)  # type: ignore[arg-type]
             elif isinstance(res, Exception):
                 raise res
 

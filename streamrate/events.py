@@ -83,7 +83,7 @@ Category = Annotated[
     StringConstraints(min_length=1, max_length=MAX_CATEGORY_CHARS, pattern=_ID_PATTERN),
 ]
 
-_one_id_char = TypeAdapter(Annotated[str, StringConstraints(pattern=_ID_PATTERN)])
+_one_id_char: TypeAdapter[str] = TypeAdapter(Annotated[str, StringConstraints(pattern=_ID_PATTERN)])
 
 
 def bad_ids(ids: Iterable[str]) -> str | None:

@@ -181,7 +181,7 @@ def _read_npy(fh: IO[bytes], size: int) -> np.ndarray:
             f"header declares {count} x {dtype.itemsize} bytes, the member holds {payload}"
         )
     arr = np.empty(count, dtype=dtype)
-    view = memoryview(arr).cast("B")
+    view = arr.data.cast("B")
     got = 0
     while got < payload:
         n = fh.readinto(view[got : min(payload, got + _CHUNK_BYTES)])  # type: ignore[attr-defined]
