@@ -34,6 +34,7 @@ from pydantic import (
     StringConstraints,
     TypeAdapter,
     ValidationError,
+    WithJsonSchema,
     field_validator,
     model_validator,
 )
@@ -68,9 +69,26 @@ come from the Unicode tables of the validator (pydantic-core's regex engine).
 """
 _ID_PATTERN = f"^{ID_CHARS}+$"
 
+SCHEMA_ID_PATTERN = (
+    r"^[^\x00-\x20\x7f-\xa0\xad\u061c\u1680\u180e\u2000-\u200f\u2028-\u202f"
+    r"\u205f-\u206f\u3000\ue000-\uf8ff\ufeff\ufff9-\ufffb]+$"
+)
+r"""The id rule as published in JSON Schemas: general regex engines (Python's ``re``,
+ECMA-262 without the ``u`` flag) lack ``\p{..}`` classes, so the schema lists the
+separators, controls, invisible and private-use characters it refuses instead. It
+is the looser of the two; the service applies :data:`ID_CHARS` exactly."""
+
+
+def _id_schema(max_chars: int) -> WithJsonSchema:
+    return WithJsonSchema(
+        {"type": "string", "minLength": 1, "maxLength": max_chars, "pattern": SCHEMA_ID_PATTERN}
+    )
+
+
 EntityId = Annotated[
     str,
     StringConstraints(min_length=1, max_length=MAX_ID_CHARS, pattern=_ID_PATTERN),
+    _id_schema(MAX_ID_CHARS),
 ]
 FieldName = Annotated[
     str,
@@ -81,6 +99,7 @@ FieldName = Annotated[
 Category = Annotated[
     str,
     StringConstraints(min_length=1, max_length=MAX_CATEGORY_CHARS, pattern=_ID_PATTERN),
+    _id_schema(MAX_CATEGORY_CHARS),
 ]
 
 _one_id_char: TypeAdapter[str] = TypeAdapter(Annotated[str, StringConstraints(pattern=_ID_PATTERN)])

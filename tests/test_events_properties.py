@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 import unicodedata
 from datetime import UTC, datetime, timedelta
 from typing import Any
@@ -14,6 +15,7 @@ from hypothesis import strategies as st
 from streamrate.errors import EventError
 from streamrate.events import (
     MAX_SIDE_SIZE,
+    SCHEMA_ID_PATTERN,
     MatchEvent,
     event_digest,
     event_to_json,
@@ -253,3 +255,15 @@ def test_the_digest_changes_with_the_content_and_not_with_the_spelling(
     else:
         other["context"] = {**data["context"], "zz_extra": "x"}
     assert event_digest(parse_event(json.dumps(other))) != event_digest(ev)
+
+
+@given(st.text(any_char, min_size=1, max_size=20))
+def test_the_published_schema_pattern_is_looser_than_the_service_and_refuses_the_named(
+    text: str,
+) -> None:
+    # Schema consumers use general regex engines (Python's re here, Draft 2020-12).
+    if _allowed(text):
+        assert re.match(SCHEMA_ID_PATTERN, text)
+    for ch in NAMED_REFUSED:
+        if unicodedata.category(ch) != "Cn":
+            assert not re.match(SCHEMA_ID_PATTERN, text + ch)
