@@ -79,7 +79,7 @@ SIZE_LIMITS: dict[str, int] = {
 class CheckpointBlob(bytes):
     """Checkpoint bytes that know where they came from (for error messages)."""
 
-    source: str = "checkpoint"
+    source: str = ""
 
     @classmethod
     def named(cls, data: bytes, source: str) -> CheckpointBlob:
@@ -123,11 +123,12 @@ def decode_checkpoint(
     ``source`` names the checkpoint in messages (default: the blob's own
     :attr:`CheckpointBlob.source`, as the stores return it).
     """
-    name = source or getattr(data, "source", None) or "checkpoint"
+    name = source or getattr(data, "source", None)
     try:
         return _decode(data, keep, window_s)
     except StateError as exc:
-        raise CheckpointError(f"checkpoint {name} refused: {exc}") from exc
+        where = f"checkpoint {name}" if name else "checkpoint"
+        raise CheckpointError(f"{where} refused: {exc}") from exc
 
 
 def _decode(data: bytes, keep: int, window_s: float) -> Checkpoint:

@@ -190,3 +190,26 @@ def test_a_version_1_checkpoint_still_loads_and_its_ids_count_as_retries() -> No
     _push(r, [_event(1, _recent(), score=0.0), _event(3, _recent())])
     _drain(c)
     assert c.counters == {"applied": 3, "dead_lettered": 0, "duplicate": 1}
+
+
+@settings(max_examples=20)
+@given(
+    st.lists(
+        st.datetimes(min_value=datetime(2000, 1, 1), max_value=datetime(9999, 12, 30)).map(
+            lambda d: d.replace(tzinfo=UTC)
+        ),
+        min_size=1,
+        max_size=30,
+    )
+)
+def test_no_finish_time_switches_the_retry_record_off(times: list[datetime]) -> None:
+    # Every finish time accepted (limit opened wide): retries are still all recognised.
+    r = fakeredis.FakeRedis()
+    space = SPACE.model_copy(update={"future_limit_s": 1e12})
+    c = _consumer(r, RedisCheckpointStore(r, KEYS.ckpt), space)
+    c.recover()
+    originals = [_event(i, t) for i, t in enumerate(times)]
+    _push(r, originals)
+    _push(r, originals)
+    _drain(c)
+    assert c.counters == {"applied": len(times), "dead_lettered": 0, "duplicate": len(times)}
