@@ -521,6 +521,71 @@ def compare(
     _ask_and_print(req, config, redis_url, set_, space, as_json, timeout_s)
 
 
+@app.command("dead-letters")
+def dead_letters(
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    space: SpaceOpt = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print JSON lines.")] = False,
+    limit: Annotated[int, typer.Option(help="Show at most this many, newest first.", min=1)] = 20,
+    resend: Annotated[
+        list[str] | None,
+        typer.Option(help="Re-send this dead letter (its id) to the event stream (repeatable)."),
+    ] = None,
+    resend_all: Annotated[
+        bool, typer.Option("--resend-all", help="Re-send every dead letter kept whole.")
+    ] = False,
+) -> None:
+    """List a space's dead letters with their reasons, or re-send chosen ones after a fix.
+
+    A re-sent entry gets a new stream id and leaves the dead letters; one whose
+    payload was kept truncated is never re-sent. If it is still refused, the
+    service sets it aside again.
+    """
+    import redis as redis_lib
+
+    from streamrate.deadletters import list_dead
+    from streamrate.deadletters import resend as resend_letters
+    from streamrate.errors import StreamrateError
+    from streamrate.service import redis_factory
+
+    try:
+        settings = _service_settings(config, redis_url, set_)
+        sp = settings.space(space)
+        keys = settings.keys(sp)
+        client = redis_factory(settings.redis)()
+        if resend or resend_all:
+            report = resend_letters(client, keys.dead, keys.events, None if resend_all else resend)
+            if as_json:
+                typer.echo(json.dumps(report.__dict__))
+            else:
+                for old, new in report.resent.items():
+                    typer.echo(f"{old} -> {new}")
+                for sid in report.truncated:
+                    typer.echo(f"{sid}: kept truncated, not re-sent", err=True)
+                for sid in report.missing:
+                    typer.echo(f"{sid}: no such dead letter", err=True)
+                typer.echo(f"re-sent {len(report.resent)} entries to {keys.events}")
+            if report.missing:
+                raise typer.Exit(1)
+            return
+        letters = list_dead(client, keys.dead, limit)
+        total = client.xlen(keys.dead)
+    except (StreamrateError, redis_lib.RedisError) as exc:
+        typer.echo(f"error: {exc}", err=True)
+        raise typer.Exit(2) from exc
+    fname = sp.event_field.encode()
+    for letter in letters:
+        if as_json:
+            typer.echo(json.dumps(letter.to_json(fname)))
+        else:
+            mark = " [truncated]" if letter.truncated else ""
+            typer.echo(f"{letter.id}  {letter.reason}{mark}\n    {letter.excerpt(fname)}")
+    if not as_json:
+        typer.echo(f"{len(letters)} of {total} dead letters in {keys.dead}", err=True)
+
+
 @app.command()
 def demo(
     redis_url: RedisOpt = None,

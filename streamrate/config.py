@@ -179,6 +179,13 @@ class SpaceSettings(BaseModel):
     dedupe_window_s: float = Field(7 * 86400.0, ge=0)
     retention_s: float | None = Field(None, gt=0)
     lock_chunk: int = Field(64, ge=1)
+    # An event may finish at most this long after its entry reached the stream
+    # (the stream id's clock); later, or before 2000, it is a dead letter.
+    future_limit_s: float = Field(86_400.0, ge=0)
+    # Dead letters: the stream is trimmed to about this many entries (XADD MAXLEN ~),
+    # and a field value longer than this is kept truncated, with its length and digest.
+    dead_max_entries: int = Field(100_000, ge=1)
+    dead_max_payload_bytes: int = Field(4096, ge=64, le=1 << 20)
     quality: QualitySettings = Field(default_factory=QualitySettings)
 
 

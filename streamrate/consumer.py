@@ -37,9 +37,10 @@ import redis
 
 from streamrate.checkpoint import Checkpoint, CheckpointStore, decode_checkpoint, encode_checkpoint
 from streamrate.config import SpaceKeys, SpaceSettings
+from streamrate.deadletters import dead_fields
 from streamrate.dedupe import SeenIds
 from streamrate.errors import ConfigError, EventError
-from streamrate.events import MatchEvent, parse_event
+from streamrate.events import MatchEvent, event_digest, parse_event, time_problem
 from streamrate.livefeed import WatchRegistry, live_messages
 from streamrate.metrics import ServiceMetrics
 from streamrate.models.base import Model, Prediction, Predictions, warm_up
@@ -120,6 +121,7 @@ class Consumer:
         self.careful_until = "0-0"
         self.poison: dict[str, str] = {}
         self._batch_top = "0-0"
+        self._digests: dict[str, bytes] = {}  # stream id -> content digest, valid events
 
     # -- start-up ---------------------------------------------------------------
     def load_checkpoint(self) -> None:
@@ -297,9 +299,18 @@ class Consumer:
         self.metrics.batch_seconds.labels(**self._lbl).observe(time.perf_counter() - t0)
 
     def _sort(self, entries: list[Entry]) -> _Sorted:
+        """Valid events, dead letters (with reasons) and retries, in stream order.
+
+        Time is the stream's: an event finishing more than ``future_limit_s`` after
+        its entry was received (the stream id's clock), or before 2000, is a dead
+        letter. A match id already applied (or earlier in this batch) is a retry
+        when its content digest is the same, and a dead letter (conflict) when not.
+        """
         out = _Sorted()
-        batch_ids: set[str] = set()
+        batch: dict[str, bytes] = {}
+        self._digests = {}
         fname = self.space.event_field.encode()
+        limit_s = self.space.future_limit_s
         for sid_b, fields in entries:
             sid = sid_b.decode()
             if fields is None:
@@ -318,25 +329,46 @@ class Consumer:
             except EventError as exc:
                 out.dead.append((sid, fields, str(exc)))
                 continue
-            if ev.match_id in self.seen or ev.match_id in batch_ids:
-                out.dupes.append(sid)
+            problem = time_problem(ev, id_key(sid)[0], limit_s)
+            if problem is not None:
+                out.dead.append((sid, fields, problem))
                 continue
-            batch_ids.add(ev.match_id)
+            digest = event_digest(ev)
+            mid = ev.match_id
+            if mid in batch or mid in self.seen:
+                known = batch[mid] if mid in batch else self.seen.digest(mid)
+                if known is None or known == digest:  # None: content not recorded (old record)
+                    out.dupes.append(sid)
+                else:
+                    out.dead.append((sid, fields, _conflict(mid)))
+                continue
+            batch[mid] = digest
+            self._digests[sid] = digest
             out.valid.append((sid, ev))
         return out
+
+    def _remember(self, part: list[tuple[str, MatchEvent]]) -> None:
+        """Add applied events to the retry record: stream-id time and content digest."""
+        for sid, ev in part:
+            digest = self._digests.pop(sid, None)
+            self.seen.add(ev.match_id, id_key(sid)[0] / 1000, digest or event_digest(ev))
 
     def _dead_letter(self, dead: list[tuple[str, dict[bytes, bytes], str]]) -> None:
         if not dead:
             return
+        cap = self.space.dead_max_payload_bytes
+        keep = self.space.dead_max_entries  # XADD MAXLEN ~ keep
         pipe = self.r.pipeline(transaction=False)
         for sid, fields, reason in dead:
-            pipe.xadd(self.keys.dead, _dead_fields(fields, sid, reason), id=sid)
+            letter = dead_fields(fields, sid, reason, cap)
+            pipe.xadd(self.keys.dead, letter, id=sid, maxlen=keep, approximate=True)  # type: ignore[arg-type]
         results = pipe.execute(raise_on_error=False)
         for (sid, fields, reason), res in zip(dead, results, strict=True):
             if isinstance(res, redis.ResponseError):
                 # Id not above the newest dead letter: written before (replay) or out of order.
                 if not self.r.xrange(self.keys.dead, min=sid, max=sid):
-                    self.r.xadd(self.keys.dead, _dead_fields(fields, sid, reason))
+                    letter = dead_fields(fields, sid, reason, cap)
+                    self.r.xadd(self.keys.dead, letter, maxlen=keep, approximate=True)  # type: ignore[arg-type]
             elif isinstance(res, Exception):
                 raise res
 
@@ -398,8 +430,7 @@ class Consumer:
                         f"the model could not learn from this event: {type(exc).__name__}: {exc}"
                     )[:500]
                 raise
-            for ev in events:
-                self.seen.add(ev.match_id, ev.finished_at.timestamp())
+            self._remember(part)
             if messages:
                 pipe = self.r.pipeline(transaction=False)
                 for channel, m in messages:
@@ -494,8 +525,8 @@ def _entries(resp: Any) -> list[Entry]:
     return [(sid, fields) for sid, fields in resp[0][1]]
 
 
-def _dead_fields(fields: dict[bytes, bytes], sid: str, reason: str) -> dict[bytes, bytes]:
-    out = {k: v for k, v in fields.items() if not k.startswith(b"dead.")}
-    out[b"dead.source_id"] = sid.encode()
-    out[b"dead.reason"] = reason.encode()
-    return out
+def _conflict(match_id: str) -> str:
+    return (
+        f"match_id: {match_id!r} was applied before with other content "
+        "(a reused id, not a retry; the first event stands)"
+    )
