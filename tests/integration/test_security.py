@@ -143,7 +143,7 @@ def test_the_service_runs_as_the_shipped_least_privilege_users(
         threading.Thread(target=lambda s=watcher.stdout: seen.extend(s), daemon=True).start()
         errs: list[str] = []
         threading.Thread(target=lambda s=watcher.stderr: errs.extend(s), daemon=True).start()
-        wait_for(lambda: any("following" in e for e in errs), 60, "the watcher to subscribe")
+        wait_for(lambda: any("watching" in e for e in errs), 60, "the watcher to subscribe")
         extra = json.loads(event_to_json(events[-1]))
         extra.update(match_id="acl-extra-1", first=[a], second=[b])
         more = tmp_path / "more.jsonl"
