@@ -86,6 +86,10 @@ class SpaceSettings(BaseModel):
     dedupe_window_s: float = Field(7 * 86400.0, ge=0)
     retention_s: float | None = Field(None, gt=0)
     lock_chunk: int = Field(64, ge=1)
+    # Where a space with no checkpoint starts: "first" (the first retained entry),
+    # "now" (entries added from now on) or a stream id (that entry and later ones).
+    # Ignored once a checkpoint exists: it holds the position.
+    start_from: str = Field("first", pattern=r"^(first|now|[0-9]{1,20}(-[0-9]{1,20})?)$")
     quality: QualitySettings = Field(default_factory=QualitySettings)
 
 

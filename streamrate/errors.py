@@ -8,6 +8,7 @@ Every error the package raises on purpose derives from :class:`StreamrateError`:
     ├── StateError          a saved model state or checkpoint cannot be loaded
     │   └── StateVersionError   written by an incompatible format version
     └── ServiceError        the running service cannot go on (Redis, checkpoint store)
+        └── CheckpointRefusedError  the checkpoint is unreadable or not of these settings
 
 Code translates lower-level failures with ``raise ... from exc`` so that the
 cause stays visible.
@@ -38,3 +39,8 @@ class StateVersionError(StateError):
 
 class ServiceError(StreamrateError):
     """The running service cannot continue."""
+
+
+class CheckpointRefusedError(ServiceError):
+    """The space's checkpoint cannot be read or was written for other model settings:
+    the service does not start (the message names the checkpoint and the ways out)."""

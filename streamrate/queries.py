@@ -40,6 +40,7 @@ from __future__ import annotations
 
 import itertools
 import json
+import logging
 import math
 import time
 from collections.abc import Callable, Sequence
@@ -54,6 +55,7 @@ from streamrate.errors import ConfigError
 from streamrate.events import ContextMap, EntityId, Matchup, Side
 from streamrate.models.base import Model, Prediction
 
+log = logging.getLogger("streamrate.queries")
 CorrelationId = Annotated[str, Field(min_length=1, max_length=128)]
 Channel = Annotated[str, Field(min_length=1, max_length=256, pattern=r"^[^\x00-\x20\x7f]+$")]
 _STRICT = ConfigDict(extra="forbid", frozen=True)
@@ -132,6 +134,9 @@ class ModelView(Protocol):
     version: str
     applied: int
     changed: bool
+    status: str  # "loading" | "ready" | "stalled" (see streamrate.consumer.LiveModel)
+    detail: str
+    behind: int | None
 
 
 def _matchup(first: Sequence[str], second: Sequence[str], context: dict[str, Any]) -> Matchup:
@@ -274,6 +279,15 @@ class QueryError(ValueError):
     """A request that cannot be answered; the message goes back to the asker."""
 
 
+class NotReadyError(QueryError):
+    """The model is not loaded yet or the consumer cannot apply events; the reply
+    carries ``status`` (``loading`` or ``stalled``)."""
+
+    def __init__(self, status: str, detail: str) -> None:
+        super().__init__(f"not ready: {status}: {detail}")
+        self.status = status
+
+
 def _describe(exc: ValidationError) -> str:
     parts = []
     for err in exc.errors(include_url=False):
@@ -319,11 +333,19 @@ class Answerer:
         self.lobby_exact_max = lobby_exact_max
         self.lobby_max = lobby_max
 
+    def _ready(self) -> None:
+        """Every model question passes here: no answer from a model that is not
+        loaded, or that the consumer cannot keep current."""
+        status = self.view.status
+        if status != "ready":
+            raise NotReadyError(status, self.view.detail)
+
     def _meta(self) -> dict[str, Any]:
         meta = {
             "model": self.view.model.kind,
             "model_version": self.view.version,
             "applied": self.view.applied,
+            "behind": self.view.behind,
         }
         if isinstance(self.view.model, ChallengerSet):
             meta["answered_by"] = self.view.model.active
@@ -336,6 +358,7 @@ class Answerer:
         return model
 
     def promote(self, req: PromoteRequest) -> dict[str, Any]:
+        self._ready()
         # Under the model lock: the consumer learns whole chunks under it, so the
         # switch falls between two chunks, never inside one.
         with self.view.lock:
@@ -347,10 +370,12 @@ class Answerer:
                 raise QueryError(f"model: {exc}") from exc
             if model.active != previous:
                 self.view.changed = True  # saved by the next checkpoint, events or not
+                log.info("promotion: %s answers now (was %s)", model.active, previous)
             meta = self._meta()
         return {"previous": previous, **meta}
 
     def compare(self, req: CompareRequest) -> dict[str, Any]:
+        self._ready()
         with self.view.lock:  # only the copy is made under the lock; the bootstrap is not
             window = self._challengers().window()
             meta = self._meta()
@@ -361,6 +386,7 @@ class Answerer:
         return {**table, **meta}
 
     def pairing(self, req: PairingRequest) -> dict[str, Any]:
+        self._ready()
         mu = _matchup(req.first, req.second, dict(req.context))
         with self.view.lock:
             model = self.view.model
@@ -375,6 +401,7 @@ class Answerer:
         }
 
     def lobby(self, req: LobbyRequest) -> dict[str, Any]:
+        self._ready()
         ids, (a, b) = req.entities, req.team_sizes
         if len(set(ids)) != len(ids):
             raise QueryError("entities: an entity is listed twice")
@@ -441,5 +468,8 @@ def handle(
         else:
             body = on_watch(req)
     except QueryError as exc:
-        return req.reply_to, {"id": req.id, "ok": False, "error": str(exc)}, req.kind
+        failed = {"id": req.id, "ok": False, "error": str(exc)}
+        if isinstance(exc, NotReadyError):
+            failed["status"] = exc.status
+        return req.reply_to, failed, req.kind
     return req.reply_to, {"id": req.id, "ok": True, "kind": req.kind, **body}, req.kind
