@@ -149,6 +149,7 @@ class Consumer:
         self.poison: dict[str, str] = {}
         self._batch_top = "0-0"
         self.behind_at = -math.inf
+        self.loaded = False  # a checkpoint (or the empty start) has been installed
         self.progress_at = clock()
         self.progress_applied = 0
         self.mark("loading", "the checkpoint is not loaded yet")
@@ -193,6 +194,7 @@ class Consumer:
             self._install(self.build_model(), "0-0", 0)
             self.seen = SeenIds(self.space.dedupe_keep_ids, self.space.dedupe_window_s)
             self.last_id = self.ckpt_id = "0-0"
+            self.loaded = True
             return False
         try:
             ck = decode_checkpoint(data, self.space.dedupe_keep_ids, self.space.dedupe_window_s)
@@ -222,6 +224,7 @@ class Consumer:
         self.last_id = self.ckpt_id = ck.last_id
         self.counters.update({k: v for k, v in ck.counters.items() if k in self.counters})
         self.counters["applied"] = ck.applied
+        self.loaded = True
         return True
 
     def _install(self, model: Model, version: str, applied: int) -> None:
@@ -242,12 +245,16 @@ class Consumer:
         self.to_ack, self.since_ckpt = [], 0
         start = self.ckpt_id if had_checkpoint else self._start_id()
         try:
-            self.r.xgroup_create(self.keys.events, self.space.group, id=start, mkstream=True)
+            # From the first entry, the group has read none: the lag is then known.
+            read = 0 if start == "0-0" else None
+            self.r.xgroup_create(
+                self.keys.events, self.space.group, id=start, mkstream=True, entries_read=read
+            )
         except redis.ResponseError as exc:
             if "BUSYGROUP" not in str(exc):
                 raise
             if not had_checkpoint:
-                self.r.xgroup_setid(self.keys.events, self.space.group, start)
+                self.r.xgroup_setid(self.keys.events, self.space.group, start, entries_read=read)
         if not had_checkpoint and start != "0-0":
             # Entries up to the start are not for this space: make the start durable.
             self.last_id = self.live.version = start

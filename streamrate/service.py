@@ -222,16 +222,14 @@ class SpaceService:
                 return
             except REDIS_DOWN as exc:
                 connected.set(0)
-                loaded = c.live.status != "loading"
-                c.mark("stalled" if loaded else "loading", f"Redis is unreachable ({exc})")
+                c.mark("stalled" if c.loaded else "loading", f"Redis is unreachable ({exc})")
                 outage.failed(exc, stop)
             except Exception as exc:  # loop boundary: log, count, rebuild from the checkpoint
                 self.metrics.loop_errors.labels(**lbl).inc()
                 n = errors.failed(exc)
                 streak.set(n)
-                loaded = c.live.status != "loading"
                 c.mark(
-                    "stalled" if loaded else "loading",
+                    "stalled" if c.loaded else "loading",
                     f"the consumer cannot apply events: {type(exc).__name__}: {exc} "
                     f"({n} errors in a row)",
                 )
