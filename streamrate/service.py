@@ -204,6 +204,8 @@ class SpaceService:
                 if must_recover:
                     c.recover(stop)
                     must_recover = False
+                    if not errors.streak:  # after errors: ready once a turn goes well
+                        c.mark("ready", "applying events")
                     self.ready.set()
                 elif outage.since is not None:
                     c.resync()  # a read reply may have been lost with the connection
