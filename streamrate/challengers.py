@@ -151,7 +151,8 @@ class ChallengerSet(Model):
         return self.active_model.predict(matchup)
 
     def learn(self, event: MatchEvent) -> Prediction:
-        return self.learn_scored([event]).served[0]  # type: ignore[no-any-return]
+        got = self.learn_scored([event]).served
+        return Prediction(float(got.p_win[0]), float(got.p_draw[0]))
 
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
         return self.learn_scored(events).served

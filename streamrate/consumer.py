@@ -548,7 +548,7 @@ class Consumer:
                 for obs in self.observers:
                     obs(ev, Prediction(p[0], p[1]), kind)
                     for label, mp in members.items():
-                        obs(ev, mp[i], label)
+                        obs(ev, Prediction(float(mp.p_win[i]), float(mp.p_draw[i])), label)
 
     # -- checkpoint and acknowledge -----------------------------------------------
     def maybe_checkpoint(self) -> None:

@@ -134,9 +134,16 @@ class ModelView(Protocol):
     version: str
     applied: int
     changed: bool
-    status: str  # "loading" | "ready" | "stalled" (see streamrate.consumer.LiveModel)
-    detail: str
-    behind: int | None
+
+    @property
+    def status(self) -> str:
+        """``loading`` / ``ready`` / ``stalled`` (see :class:`streamrate.consumer.LiveModel`)."""
+
+    @property
+    def detail(self) -> str: ...
+
+    @property
+    def behind(self) -> int | None: ...
 
 
 def _matchup(first: Sequence[str], second: Sequence[str], context: dict[str, Any]) -> Matchup:

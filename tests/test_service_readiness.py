@@ -394,3 +394,28 @@ def test_raw_and_served_series_get_every_event_on_both_paths(tmp_path: Path, wat
     _push(fakeredis.FakeRedis(server=server), WORLD)
     _drain(c)
     assert counts == {"recalibrated": len(WORLD), "elo.raw": len(WORLD)}
+
+
+# -- what the log says ------------------------------------------------------------------------
+def test_progress_and_promotions_are_logged(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    from streamrate.challengers import ChallengerSet
+    from streamrate.consumer import LiveModel
+    from streamrate.queries import Answerer, PromoteRequest
+
+    now = [0.0]
+    r = fakeredis.FakeRedis()
+    c = _consumer(r, tmp_path, clock=lambda: now[0])
+    c.recover()
+    _push(r, WORLD[:40])
+    _drain(c)
+    with caplog.at_level(logging.INFO):
+        now[0] = 31.0
+        c.tick()
+        cs = ChallengerSet({"quick": {"kind": "elo", "k": 32.0}, "calm": {"kind": "elo"}})
+        Answerer(LiveModel(cs), 10, 256).promote(
+            PromoteRequest(kind="promote", id="p", reply_to="r", model="calm")
+        )
+    assert any("40 events applied (+40 in 31 s)" in m for m in caplog.messages), caplog.messages
+    assert any("calm answers now (was quick)" in m for m in caplog.messages)
