@@ -156,8 +156,8 @@ def _consumer_lines(s: Samples) -> list[Line]:
     for labels, value in s.get("streamrate_consumer_state", []):
         if value == 1:
             states[labels.get("space", "")] = labels.get("state", "")
-    streak = _by_space(s, "streamrate_consumer_loop_error_streak")
-    connected = _by_space(s, "streamrate_redis_connected")
+    streak = _by_space(s, "streamrate_consumer_consecutive_loop_errors")
+    connected = _by_space(s, "streamrate_redis_up")
     for space in sorted(set(states) | set(streak) | set(connected)):
         if space in states:
             state = states[space]

@@ -69,13 +69,13 @@ class ServiceMetrics:
             registry=r,
         )
         self.error_streak = Gauge(
-            "streamrate_consumer_loop_error_streak",
+            "streamrate_consumer_consecutive_loop_errors",
             "Loop errors since the consumer last applied a batch without error (0 when healthy).",
             ["space"],
             registry=r,
         )
         self.redis_connected = Gauge(
-            "streamrate_redis_connected",
+            "streamrate_redis_up",
             "1 while the consumer's Redis connection works, 0 during an outage.",
             ["space"],
             registry=r,
