@@ -244,17 +244,7 @@ class Consumer:
         had_checkpoint = self.load_checkpoint()
         self.to_ack, self.since_ckpt = [], 0
         start = self.ckpt_id if had_checkpoint else self._start_id()
-        try:
-            # From the first entry, the group has read none: the lag is then known.
-            read = 0 if start == "0-0" else None
-            self.r.xgroup_create(
-                self.keys.events, self.space.group, id=start, mkstream=True, entries_read=read
-            )
-        except redis.ResponseError as exc:
-            if "BUSYGROUP" not in str(exc):
-                raise
-            if not had_checkpoint:
-                self.r.xgroup_setid(self.keys.events, self.space.group, start, entries_read=read)
+        self._place_group(start, move=not had_checkpoint)
         if not had_checkpoint and start != "0-0":
             # Entries up to the start are not for this space: make the start durable.
             self.last_id = self.live.version = start
@@ -284,6 +274,30 @@ class Consumer:
                 behind,
             )
         self.progress_applied = self.live.applied
+
+    def _place_group(self, start: str, move: bool) -> None:
+        """Create the group at ``start``; when it exists and ``move``, set it there."""
+        # From the first entry the group has read none: telling Redis so (7.0+)
+        # lets it count the lag; older servers refuse the option, then go without.
+        read = 0 if start == "0-0" else None
+        ev, group = self.keys.events, self.space.group
+        try:
+            try:
+                self.r.xgroup_create(ev, group, id=start, mkstream=True, entries_read=read)
+            except redis.ResponseError as exc:
+                if read is None or "BUSYGROUP" in str(exc):
+                    raise
+                self.r.xgroup_create(ev, group, id=start, mkstream=True)
+        except redis.ResponseError as exc:
+            if "BUSYGROUP" not in str(exc):
+                raise
+            if move:
+                try:
+                    self.r.xgroup_setid(ev, group, start, entries_read=read)
+                except redis.ResponseError:
+                    if read is None:
+                        raise
+                    self.r.xgroup_setid(ev, group, start)
 
     def _start_id(self) -> str:
         """The id after which a space with no checkpoint starts reading."""
