@@ -18,6 +18,11 @@ last handled id (``XREADGROUP`` with an explicit id) before reading new ones
 Dead letters are written with the source entry's id as their own id, so a
 replay does not write them twice.
 
+Start-up: the checkpoint is loaded (queries get "not ready" meanwhile, see
+:class:`LiveModel`); one that is unreadable or written for other model settings
+stops the start (:class:`~streamrate.errors.CheckpointRefusedError`). With no
+checkpoint the group is set to ``start_from`` (default: the first retained entry).
+
 One consumer is active per space. Entries left pending by another consumer name
 are taken over with ``XAUTOCLAIM`` once idle for ``claim_idle_ms``: at start
 before anything new is read (stream order kept), later as they turn up (then
@@ -175,6 +180,7 @@ class Consumer:
             aside = f"rename the key aside (RENAME {self.store.key} {self.store.key}.old)"
         else:
             aside = "move the file aside"
+        what = " ".join(what.split())  # one line, whatever the cause's message holds
         return CheckpointRefusedError(
             f"{where} {what}. Either point space {self.space.name!r} at another checkpoint "
             f"(checkpoint.dir, the prefix or the space name), or {aside} to start afresh "
@@ -198,7 +204,7 @@ class Consumer:
             return False
         try:
             ck = decode_checkpoint(data, self.space.dedupe_keep_ids, self.space.dedupe_window_s)
-        except StreamrateError as exc:
+        except (StreamrateError, ValueError, KeyError, TypeError) as exc:
             raise self._refuse(f"is not a checkpoint this version reads ({exc})") from exc
         asked = self.build_model().to_state()
         if ck.state.kind != asked.kind:
