@@ -419,3 +419,18 @@ def test_progress_and_promotions_are_logged(
         )
     assert any("40 events applied (+40 in 31 s)" in m for m in caplog.messages), caplog.messages
     assert any("calm answers now (was quick)" in m for m in caplog.messages)
+
+
+def test_the_shipped_configs_never_share_a_stream_or_a_checkpoint() -> None:
+    # Following the README top to bottom serves configs/service.toml, then
+    # configs/challengers.toml against the same Redis and working directory.
+    from streamrate.config import load_settings
+
+    root = Path(__file__).resolve().parent.parent / "configs"
+    seen: dict[str, str] = {}
+    for name in ("service.toml", "challengers.toml"):
+        s = load_settings(root / name)
+        for sp in s.spaces:
+            for where in (s.keys(sp).events, str(Path(s.checkpoint.dir) / sp.name)):
+                assert where not in seen, f"{name} shares {where} with {seen[where]}"
+                seen[where] = name
