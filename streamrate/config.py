@@ -186,6 +186,10 @@ class SpaceSettings(BaseModel):
     # and a field value longer than this is kept truncated, with its length and digest.
     dead_max_entries: int = Field(100_000, ge=1)
     dead_max_payload_bytes: int = Field(4096, ge=64, le=1 << 20)
+    # Where a space with no checkpoint starts: "first" (the first retained entry),
+    # "now" (entries added from now on) or a stream id (that entry and later ones).
+    # Ignored once a checkpoint exists: it holds the position.
+    start_from: str = Field("first", pattern=r"^(first|now|[0-9]{1,20}(-[0-9]{1,20})?)$")
     quality: QualitySettings = Field(default_factory=QualitySettings)
 
 

@@ -9,6 +9,7 @@ Every error the package raises on purpose derives from :class:`StreamrateError`:
     │   ├── StateVersionError   written by an incompatible format version
     │   └── CheckpointError     a checkpoint refused as input (names the file and the problem)
     └── ServiceError        the running service cannot go on (Redis, checkpoint store)
+        └── CheckpointRefusedError  the checkpoint is unreadable or not of these settings
 
 Code translates lower-level failures with ``raise ... from exc`` so that the
 cause stays visible.
@@ -46,3 +47,6 @@ class CheckpointError(StateError):
 
     The message names the checkpoint (file path or Redis key) and the problem.
     """
+class CheckpointRefusedError(ServiceError):
+    """The space's checkpoint cannot be read or was written for other model settings:
+    the service does not start (the message names the checkpoint and the ways out)."""

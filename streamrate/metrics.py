@@ -29,6 +29,10 @@ QUERY_SHED_REASONS = ("queue_full", "client_queue_full", "expensive", "too_old")
 QUERY_FAILED_STAGES = ("answer", "publish")
 QUERY_LOOPS = ("subscriber", "answerer")
 QUERY_RESUBSCRIBE_REASONS = ("connection_lost", "backlog")
+CONSUMER_STATES = ("loading", "ready", "stalled")
+"""``loading``: the checkpoint is not loaded yet; ``ready``: applying events and
+answering; ``stalled``: the consumer cannot apply events (loop errors, Redis
+unreachable). Queries get a "not ready" error reply unless ``ready``."""
 _BATCH_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5)
 _QUERY_BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1)
 
@@ -62,6 +66,24 @@ class ServiceMetrics:
             "Times a Redis connection was lost and the service began reconnecting, "
             "by the thread that lost it (the consumer or the query responder).",
             ["space", "role"],
+            registry=r,
+        )
+        self.state = Gauge(
+            "streamrate_consumer_state",
+            "1 for the consumer's current state (loading, ready, stalled), 0 for the others.",
+            ["space", "state"],
+            registry=r,
+        )
+        self.error_streak = Gauge(
+            "streamrate_consumer_consecutive_loop_errors",
+            "Loop errors since the consumer last applied a batch without error (0 when healthy).",
+            ["space"],
+            registry=r,
+        )
+        self.redis_connected = Gauge(
+            "streamrate_redis_up",
+            "1 while the consumer's Redis connection works, 0 during an outage.",
+            ["space"],
             registry=r,
         )
         self.lag = Gauge(
@@ -179,8 +201,11 @@ class ServiceMetrics:
                 metric.labels(space=s)
             for role in OUTAGE_ROLES:
                 self.reconnects.labels(space=s, role=role)
-            for g in (self.lag, self.pending, self.checkpoint_time):
+            for g in (self.lag, self.pending, self.checkpoint_time, self.error_streak):
                 g.labels(space=s)
+            self.redis_connected.labels(space=s).set(1)
+            for st in CONSUMER_STATES:
+                self.state.labels(space=s, state=st).set(1 if st == "loading" else 0)
             self.batch_seconds.labels(space=s)
             self.checkpoint_seconds.labels(space=s)
             for k in QUERY_KINDS:

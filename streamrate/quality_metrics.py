@@ -174,7 +174,8 @@ class QualityObserver:
     Scores each applied event (O(1)), counts change-detector firings at once and
     republishes the gauges when ``publish_every_s`` seconds of ``clock`` have
     passed since the last time (reading the windows costs O(window), so they are
-    read at about the pace Prometheus scrapes, not per event).
+    read at about the pace Prometheus scrapes, not per event); :meth:`tick` does
+    the same on a timer while no events arrive.
     """
 
     def __init__(
@@ -199,6 +200,7 @@ class QualityObserver:
         self.on_change = on_change
         self.clock = clock
         self._published_at = clock()
+        self._unpublished = 0  # events scored since the gauges were last set
 
     def __call__(self, event: MatchEvent, prediction: Prediction, model_name: str) -> None:
         fired = self.monitor.add(model_name, prediction.expected_score, event.score, event.context)
@@ -206,8 +208,16 @@ class QualityObserver:
             self.metrics.change_fired(self.space, model_name, direction)
             if self.on_change is not None:
                 self.on_change(model_name, direction)
+        self._unpublished += 1
+        self.tick()
+
+    def tick(self) -> None:
+        """Publish when ``publish_every_s`` has passed since the last time and events
+        came in since. The consumer calls this from its loop whether events arrive
+        or not, so the gauges are never older than about ``publish_every_s`` (a
+        burst is shown in full once the stream goes quiet, not at the next event)."""
         now = self.clock()
-        if now - self._published_at >= self.publish_every_s:
+        if self._unpublished and now - self._published_at >= self.publish_every_s:
             self._publish(now)
 
     def publish(self) -> None:
@@ -220,6 +230,7 @@ class QualityObserver:
         # (recovery from a checkpoint) while the observer stays.
         self.metrics.publish(self.space, self.monitor, recs() if callable(recs) else recs)
         self._published_at = now
+        self._unpublished = 0
 
 
 def quality_observers(

@@ -44,6 +44,7 @@ surrogate (logit) units.
 from __future__ import annotations
 
 import itertools
+import logging
 import math
 import re
 from collections.abc import Callable, Sequence
@@ -60,6 +61,7 @@ from streamrate.events import ContextMap, EntityId, Matchup, Side
 from streamrate.models.base import Model, Prediction
 
 WatcherId = Annotated[str, Field(pattern=r"^[A-Za-z0-9_.\-]{1,64}$")]
+log = logging.getLogger("streamrate.queries")
 CorrelationId = Annotated[str, Field(min_length=1, max_length=128)]
 Channel = Annotated[str, Field(min_length=1, max_length=256, pattern=r"^[^\x00-\x20\x7f]+$")]
 _STRICT = ConfigDict(extra="forbid", frozen=True)
@@ -141,6 +143,16 @@ class ModelView(Protocol):
     version: str
     applied: int
     changed: bool
+
+    @property
+    def status(self) -> str:
+        """``loading`` / ``ready`` / ``stalled`` (see :class:`streamrate.consumer.LiveModel`)."""
+
+    @property
+    def detail(self) -> str: ...
+
+    @property
+    def behind(self) -> int | None: ...
 
 
 def _matchup(first: Sequence[str], second: Sequence[str], context: dict[str, Any]) -> Matchup:
@@ -298,6 +310,13 @@ class QueryError(EventError):
 
 MAX_ERROR_CHARS = 300
 """Error texts (replies and log lines) are cut to this length: never the payload."""
+class NotReadyError(QueryError):
+    """The model is not loaded yet or the consumer cannot apply events; the reply
+    carries ``status`` (``loading`` or ``stalled``)."""
+
+    def __init__(self, status: str, detail: str) -> None:
+        super().__init__(f"not ready: {status}: {detail}")
+        self.status = status
 
 
 def _describe(exc: ValidationError) -> str:
@@ -422,11 +441,19 @@ class Answerer:
         # events in the gaps instead of waiting for the whole lobby.
         self.pairs_per_lock = pairs_per_lock
 
+    def _ready(self) -> None:
+        """Every model question passes here: no answer from a model that is not
+        loaded, or that the consumer cannot keep current."""
+        status = self.view.status
+        if status != "ready":
+            raise NotReadyError(status, self.view.detail)
+
     def _meta(self) -> dict[str, Any]:
         meta = {
             "model": self.view.model.kind,
             "model_version": self.view.version,
             "applied": self.view.applied,
+            "behind": self.view.behind,
         }
         if isinstance(self.view.model, ChallengerSet):
             meta["answered_by"] = self.view.model.active
@@ -439,6 +466,7 @@ class Answerer:
         return model
 
     def promote(self, req: PromoteRequest) -> dict[str, Any]:
+        self._ready()
         # Under the model lock: the consumer learns whole chunks under it, so the
         # switch falls between two chunks, never inside one.
         with self.view.lock:
@@ -450,10 +478,12 @@ class Answerer:
                 raise QueryError(f"model: {exc}") from exc
             if model.active != previous:
                 self.view.changed = True  # saved by the next checkpoint, events or not
+                log.info("promotion: %s answers now (was %s)", model.active, previous)
             meta = self._meta()
         return {"previous": previous, **meta}
 
     def compare(self, req: CompareRequest) -> dict[str, Any]:
+        self._ready()
         with self.view.lock:  # only the copy is made under the lock; the bootstrap is not
             window = self._challengers().window()
             meta = self._meta()
@@ -464,6 +494,7 @@ class Answerer:
         return {**table, **meta}
 
     def pairing(self, req: PairingRequest) -> dict[str, Any]:
+        self._ready()
         mu = _matchup(req.first, req.second, dict(req.context))
         with self.view.lock:
             model = self.view.model
@@ -478,6 +509,7 @@ class Answerer:
         }
 
     def lobby(self, req: LobbyRequest) -> dict[str, Any]:
+        self._ready()
         ids, (a, b) = req.entities, req.team_sizes
         if len(set(ids)) != len(ids):
             raise QueryError("entities: an entity is listed twice")
@@ -566,6 +598,8 @@ def handle(
         else:
             body = on_watch(req)
     except QueryError as exc:
-        error = str(exc)[:MAX_ERROR_CHARS]
-        return req.reply_to, {"id": req.id, "ok": False, "error": error}, req.kind
+        failed = {"id": req.id, "ok": False, "error": str(exc)[:MAX_ERROR_CHARS]}
+        if isinstance(exc, NotReadyError):
+            failed["status"] = exc.status
+        return req.reply_to, failed, req.kind
     return req.reply_to, {"id": req.id, "ok": True, "kind": req.kind, **body}, req.kind

@@ -203,8 +203,7 @@ def test_window_holds_the_last_events_oldest_first(window: int, chunks: list[int
     for k in chunks:
         part = DRAWS[at : at + k]
         at += k
-        cs.learn_many(part)
-        for label, p in cs.last_member_predictions_.items():
+        for label, p in cs.learn_scored(part).parts.items():
             history[label].append(p.p_win + 0.5 * p.p_draw)
         scores += [ev.score for ev in part]
     w = cs.window()

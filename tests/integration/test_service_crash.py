@@ -49,7 +49,7 @@ def _serve(cfg: Path, log: Path) -> subprocess.Popen[bytes]:
 
 
 def _resumes(log: Path) -> int:
-    return log.read_text().count("resuming after") if log.exists() else 0
+    return log.read_text().count("entries to read") if log.exists() else 0
 
 
 def _wait_started(proc: subprocess.Popen[bytes], log: Path, before: int) -> None:
