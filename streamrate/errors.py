@@ -47,6 +47,8 @@ class CheckpointError(StateError):
 
     The message names the checkpoint (file path or Redis key) and the problem.
     """
+
+
 class CheckpointRefusedError(ServiceError):
     """The space's checkpoint cannot be read or was written for other model settings:
     the service does not start (the message names the checkpoint and the ways out)."""

@@ -310,6 +310,8 @@ class QueryError(EventError):
 
 MAX_ERROR_CHARS = 300
 """Error texts (replies and log lines) are cut to this length: never the payload."""
+
+
 class NotReadyError(QueryError):
     """The model is not loaded yet or the consumer cannot apply events; the reply
     carries ``status`` (``loading`` or ``stalled``)."""
