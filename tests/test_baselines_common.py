@@ -26,6 +26,7 @@ T0 = datetime(2026, 3, 1, 18, 0, tzinfo=UTC)
 MODELS: list[tuple[str, dict[str, Any]]] = [
     ("elo", {}),
     ("elo", {"first_advantage": 35.0, "compiled": False}),
+    ("elo", {"advantage_k": 0.0}),
     ("glicko2", {}),
     ("glicko2", {"period_s": 3600.0}),
     ("trueskill", {}),
@@ -34,7 +35,13 @@ MODELS: list[tuple[str, dict[str, Any]]] = [
 ]
 IDS = [f"{k}-{i}" for i, (k, _) in enumerate(MODELS)]
 # Models without a first-side term, where swapping sides must mirror the prediction.
-SYMMETRIC = [(k, s) for k, s in MODELS if k != "logistic_batch" and not s.get("first_advantage")]
+SYMMETRIC = [
+    (k, s)
+    for k, s in MODELS
+    if k != "logistic_batch"
+    and not s.get("first_advantage")
+    and (k != "elo" or s.get("advantage_k") == 0.0)  # Elo learns a first-side edge by default
+]
 
 
 def stream(seed: int, n: int, start: int = 0) -> list[MatchEvent]:
@@ -167,6 +174,10 @@ def test_unknown_entities_get_the_prior(kind: str, settings_: dict[str, Any]) ->
     if kind == "logistic_batch":
         # Only the learned first-side intercept separates two unknowns.
         assert fresh.predict(q).p_win == 0.5
+    elif kind == "elo":
+        # Two unknowns differ only by the (learned) first-side advantage.
+        prior = build_model(kind, **{**settings_, "first_advantage": float(m.advantage_[0])})
+        assert m.predict(q) == prior.predict(q)
     else:
         assert m.predict(q) == fresh.predict(q)
 
