@@ -276,8 +276,10 @@ class BayesStrength(Model):
             n1, n2 = int(b.first_size[i]), int(b.second_size[i])
             rows = [int(r) for r in (*b.first[i, :n1], *b.second[i, :n2])]
             xs = [1.0 / n1] * n1 + [-1.0 / n2] * n2
-            m = adv[0] + sum(x * mu[r] for r, x in zip(rows, xs, strict=True))
-            big_v = adv[1] + sum(x * x * var[r] for r, x in zip(rows, xs, strict=True))
+            m, big_v = adv[0], adv[1]  # summed in the sequential loop's order
+            for r, x in zip(rows, xs, strict=True):
+                m += x * mu[r]
+                big_v += x * x * var[r]
             p[i] = 1.0 / (1.0 + math.exp(-m / math.sqrt(1.0 + PROBIT * big_v)))
             g, w = b.score[i] - p[i], p[i] * (1.0 - p[i])
             denom = 1.0 + w * big_v
