@@ -45,13 +45,13 @@ CLIP = 1e-9
 
 DEFAULT_MEMBERS: tuple[dict[str, Any], ...] = (
     {"label": "steady", "kind": "bayes_strength",
-     "settings": {"noise_per_day": 0.0005, "period_field": "season"}},
+     "settings": {"noise_per_day": 0.0001, "prior_var": 0.3}},
     {"label": "seasonal", "kind": "bayes_strength",
-     "settings": {"noise_per_day": 0.002, "period_field": "season",
-                  "period_pull": 0.25, "period_var": 0.25}},
+     "settings": {"noise_per_day": 0.0003, "prior_var": 0.3, "period_field": "season",
+                  "period_pull": 0.2, "period_var": 0.05}},
     {"label": "restless", "kind": "bayes_strength",
-     "settings": {"noise_per_day": 0.01, "period_field": "season",
-                  "period_pull": 0.5, "period_var": 0.5}},
+     "settings": {"noise_per_day": 0.002, "period_field": "season",
+                  "period_pull": 0.3, "period_var": 0.25}},
     {"label": "styles", "kind": "blade_chest",
      "settings": {"dims": 8, "lr": 0.15, "lr_strength": 0.2, "context": "stacked",
                   "init_scale": 0.1}},
