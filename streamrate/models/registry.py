@@ -22,6 +22,8 @@ BUILTIN: dict[str, str] = {
     "bradley_terry": "streamrate.models.matchup:BradleyTerry",
     "blade_chest": "streamrate.models.matchup:BladeChest",
     "blade_chest_dist": "streamrate.models.matchup:BladeChestDistance",
+    "bayes_strength": "streamrate.models.bayes_strength:BayesStrength",
+    "mixture": "streamrate.models.mixture:Mixture",
     "recalibrated": "streamrate.recalibrate:Recalibrated",
     "challengers": "streamrate.challengers:ChallengerSet",
 }
