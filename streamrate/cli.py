@@ -197,19 +197,25 @@ SpaceOpt = Annotated[str | None, typer.Option("--space", help="Model space (defa
 
 
 @app.command()
-def serve(config: ConfigOpt = None, redis_url: RedisOpt = None, set_: SetOpt = None) -> None:
+def serve(
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    log_format: Annotated[
+        str | None,
+        typer.Option("--log-format", help="text, or json: one JSON object per line."),
+    ] = None,
+) -> None:
     """Consume the event stream, keep the model current, answer queries (until SIGTERM)."""
-    import logging
-
     from streamrate.connect import service_clients
     from streamrate.errors import StreamrateError
+    from streamrate.logs import setup_logging
     from streamrate.service import serve_forever
 
     try:
-        settings = _service_settings(config, redis_url, set_)
-        logging.basicConfig(
-            level=settings.log_level, format="%(asctime)s %(levelname)s %(name)s: %(message)s"
-        )
+        extra = [] if log_format is None else [f"log_format={log_format}"]
+        settings = _service_settings(config, redis_url, [*(set_ or []), *extra])
+        setup_logging(settings.log_level, settings.log_format)
         code = serve_forever(settings, service_clients(settings.redis))
     except StreamrateError as exc:
         typer.echo(f"error: {exc}", err=True)
