@@ -32,7 +32,11 @@ Opt = typer.Option
 def simulate(
     out: Annotated[Path, Opt("--out", "-o", help="Event file to write (JSON lines).")],
     world: Annotated[
-        str, Opt(help="Preset world: plain, cyclic (3 styles + map effects), patch, teams.")
+        str,
+        Opt(
+            help="Preset world: plain, cyclic (3 styles + map effects), patch, teams, "
+            "seasons (a league whose strengths change between seasons)."
+        ),
     ] = "plain",
     entities: Annotated[int | None, Opt(help="Number of players.")] = None,
     matches: Annotated[int | None, Opt(help="Number of matches.")] = None,
@@ -68,6 +72,18 @@ def simulate(
     ] = None,
     days: Annotated[float | None, Opt(help="Time span of the matches in days.")] = None,
     seed: Annotated[int | None, Opt(help="Random seed (same seed, same file).")] = None,
+    seasons: Annotated[
+        int | None, Opt(help="Seasons of a league (0 = none); context field 'season'.")
+    ] = None,
+    season_shift: Annotated[
+        float | None, Opt(help="Std of each skill's change between seasons.")
+    ] = None,
+    turnover: Annotated[
+        float | None, Opt(help="Share of the roster replaced by newcomers each season.")
+    ] = None,
+    first_edge: Annotated[
+        float | None, Opt(help="Logit edge of the first side (seasons worlds).")
+    ] = None,
     truth: Annotated[
         bool,
         Opt("--truth/--no-truth", help="Also write OUT.truth.json with true expected scores."),
