@@ -67,7 +67,7 @@ def names_in(expr: str) -> tuple[set[str], set[str]]:
     words = set(re.findall(r"\b([A-Za-z_][A-Za-z0-9_:]*)\b", bare))
     metrics = {w for w in words if w not in FUNCTIONS | KEYWORDS}
     # label_values(metric, label): its second argument is a label
-    for metric, label in re.findall(r"label_values\((\w+),\s*(\w+)\)", expr):
+    for _metric, label in re.findall(r"label_values\((\w+),\s*(\w+)\)", expr):
         metrics.discard(label)
         labels.add(label)
     return metrics, labels
