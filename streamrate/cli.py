@@ -213,19 +213,25 @@ SpaceOpt = Annotated[str | None, typer.Option("--space", help="Model space (defa
 
 
 @app.command()
-def serve(config: ConfigOpt = None, redis_url: RedisOpt = None, set_: SetOpt = None) -> None:
+def serve(
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    log_format: Annotated[
+        str | None,
+        typer.Option("--log-format", help="text, or json: one JSON object per line."),
+    ] = None,
+) -> None:
     """Consume the event stream, keep the model current, answer queries (until SIGTERM)."""
-    import logging
-
     from streamrate.connect import service_clients
     from streamrate.errors import StreamrateError
+    from streamrate.logs import setup_logging
     from streamrate.service import serve_forever
 
     try:
-        settings = _service_settings(config, redis_url, set_)
-        logging.basicConfig(
-            level=settings.log_level, format="%(asctime)s %(levelname)s %(name)s: %(message)s"
-        )
+        extra = [] if log_format is None else [f"log_format={log_format}"]
+        settings = _service_settings(config, redis_url, [*(set_ or []), *extra])
+        setup_logging(settings.log_level, settings.log_format)
         code = serve_forever(settings, service_clients(settings.redis))
     except StreamrateError as exc:
         typer.echo(f"error: {exc}", err=True)
@@ -736,6 +742,75 @@ def web(
     typer.echo(f"board:   http://{shown}:{port}/board", err=True)
     typer.echo(f"overlay: http://{shown}:{port}/overlay?p=FIRST:SECOND", err=True)
     server.run()
+
+
+@app.command("checkpoint-backup")
+def checkpoint_backup(
+    out: Annotated[Path, typer.Argument(help="File to write the checkpoint to.")],
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    space: SpaceOpt = None,
+) -> None:
+    """Copy the newest checkpoint of a space (file or Redis key) out to a file."""
+    import redis as redis_lib
+
+    from streamrate.backup import backup
+    from streamrate.errors import StreamrateError
+    from streamrate.service import redis_factory
+
+    try:
+        settings = _service_settings(config, redis_url, set_)
+        sp = settings.space(space)
+        client = redis_factory(settings.redis)() if settings.checkpoint.store == "redis" else None
+        info = backup(settings, sp, client, out)
+    except (StreamrateError, redis_lib.RedisError, OSError) as exc:
+        raise _fail(" ".join(str(exc).split())) from exc
+    typer.echo(
+        f"wrote {info.where}: {info.model}, {info.applied} events applied, "
+        f"last stream id {info.last_id}, {info.size_bytes} bytes"
+    )
+
+
+@app.command("checkpoint-restore")
+def checkpoint_restore(
+    source: Annotated[Path, typer.Argument(help="A file written by checkpoint-backup.")],
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    space: SpaceOpt = None,
+    force: Annotated[
+        bool, typer.Option("--force", help="Install even while a writer of the space runs.")
+    ] = False,
+    idle_s: Annotated[
+        float, typer.Option(help="A group member that read within this many seconds is running.")
+    ] = 10.0,
+) -> None:
+    """Install a backed-up checkpoint as a space's, if it fits the settings.
+
+    Refused when it holds another model, other settings or another format, and
+    while the space's writer runs (unless --force). Moves the consumer group
+    back to the checkpoint's last stream id, so later entries are read again.
+    """
+    import redis as redis_lib
+
+    from streamrate.backup import restore
+    from streamrate.errors import StreamrateError
+    from streamrate.service import redis_factory
+
+    try:
+        settings = _service_settings(config, redis_url, set_)
+        sp = settings.space(space)
+        client = redis_factory(settings.redis)()
+        info = restore(settings, sp, client, source, force=force, idle_s=idle_s)
+    except (StreamrateError, redis_lib.RedisError) as exc:
+        raise _fail(" ".join(str(exc).split())) from exc
+    typer.echo(
+        f"installed {info.where}: {info.model}, {info.applied} events applied, "
+        f"last stream id {info.last_id}; the consumer group reads on from there"
+    )
+    if info.note:
+        typer.echo(f"note: {info.note}", err=True)
 
 
 def main() -> None:  # pragma: no cover - console entry point

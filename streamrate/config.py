@@ -261,6 +261,8 @@ class Settings(BaseModel):
     model_config = _FROZEN
     prefix: str = Field("sr", pattern=r"^[A-Za-z0-9_.\-]{1,32}$")
     log_level: Literal["DEBUG", "INFO", "WARNING", "ERROR"] = "INFO"
+    # "json": one JSON object per line (streamrate.logs states the fields).
+    log_format: Literal["text", "json"] = "text"
     redis: RedisSettings = Field(default_factory=RedisSettings)
     checkpoint: CheckpointSettings = Field(default_factory=CheckpointSettings)
     metrics: MetricsSettings = Field(default_factory=MetricsSettings)

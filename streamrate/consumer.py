@@ -48,6 +48,8 @@ from streamrate.checkpoint import (
     RedisCheckpointStore,
     decode_checkpoint,
     encode_checkpoint,
+    load_parts,
+    parts_of,
 )
 from streamrate.config import SpaceKeys, SpaceSettings
 from streamrate.deadletters import dead_fields
@@ -200,6 +202,7 @@ class Consumer:
             raise self._refuse(f"cannot be read ({exc})") from exc
         if data is None:
             self._install(self.build_model(), "0-0", 0)
+            load_parts(self.observers, {})
             self.seen = SeenIds(self.space.dedupe_keep_ids, self.space.dedupe_window_s)
             self.last_id = self.ckpt_id = "0-0"
             self.loaded = True
@@ -228,6 +231,10 @@ class Consumer:
         except (StreamrateError, ValueError, TypeError, KeyError, IndexError) as exc:
             raise self._refuse(f"holds {asked.kind!r} state that cannot be loaded ({exc})") from exc
         self._install(model, ck.last_id, ck.applied)
+        try:
+            load_parts(self.observers, ck.parts)  # quality windows roll back with the model
+        except StreamrateError as exc:
+            raise self._refuse(f"holds observer state that cannot be loaded ({exc})") from exc
         self.seen = ck.seen
         self.last_id = self.ckpt_id = ck.last_id
         self.counters.update({k: v for k, v in ck.counters.items() if k in self.counters})
@@ -624,7 +631,14 @@ class Consumer:
                 self.live.changed = False
                 applied = self.live.applied
             blob = encode_checkpoint(
-                Checkpoint(state, self.last_id, applied, self.seen, dict(self.counters))
+                Checkpoint(
+                    state,
+                    self.last_id,
+                    applied,
+                    self.seen,
+                    dict(self.counters),
+                    parts=parts_of(self.observers),
+                )
             )
             self.store.save(blob)
             self.ckpt_id = self.last_id
