@@ -24,7 +24,13 @@ import numpy as np
 
 from streamrate import calibration
 from streamrate.client import ask, follow, send_events
-from streamrate.config import CheckpointSettings, RedisSettings, Settings, SpaceSettings
+from streamrate.config import (
+    CheckpointSettings,
+    MetricsSettings,
+    RedisSettings,
+    Settings,
+    SpaceSettings,
+)
 from streamrate.errors import ServiceError
 from streamrate.events import MatchEvent, event_to_json
 from streamrate.models.base import Prediction
@@ -103,7 +109,12 @@ def run_demo(
         dedupe_window_s=365 * 86400.0,
     )
     tmp = tempfile.TemporaryDirectory(prefix="streamrate-demo-")
-    settings = Settings(prefix=prefix, spaces=(space,), checkpoint=CheckpointSettings(dir=tmp.name))
+    settings = Settings(
+        prefix=prefix,
+        spaces=(space,),
+        checkpoint=CheckpointSettings(dir=tmp.name),
+        metrics=MetricsSettings(enabled=False),  # the demo prints its own summary
+    )
     keys = settings.keys(space)
     client = clients()
     if redis_url is not None:
