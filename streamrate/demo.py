@@ -18,6 +18,7 @@ import tempfile
 import threading
 import time
 from collections.abc import Callable
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -36,7 +37,7 @@ from streamrate.events import MatchEvent, event_to_json
 from streamrate.models.base import Prediction
 from streamrate.service import ClientFactory, Service, SpaceService, redis_factory
 from streamrate.simulate import simulate, world_spec
-from streamrate.warm import warm_kernels
+from streamrate.warm import compile_models, warm_kernels
 
 ASK_TIMEOUT_S = 60.0
 """A safety net for questions asked once the service says it is ready, not a race:
@@ -90,8 +91,12 @@ def run_demo(
 ) -> dict[str, Any]:
     """Run the demo; returns the summary numbers (also printed through ``out``)."""
     t_begin = time.monotonic()
-    out("[demo] loading the model kernels")
-    warm_s = warm_kernels(say=lambda line: out(f"[demo] {line}"))
+    model_settings = {"context": "stacked"} if model.startswith("blade") else {}
+    out(f"[demo] loading the {model} model's kernels")
+    warm_s = warm_kernels(
+        say=lambda line: out(f"[demo] {line}"),
+        compile_all=partial(compile_models, [(model, model_settings)]),
+    )
     out(f"[demo] model kernels ready ({warm_s:.1f} s)")
     world = simulate(world_spec("cyclic", matches=matches, entities=entities, seed=seed))
     events = world.events
@@ -101,7 +106,7 @@ def run_demo(
     space = SpaceSettings(
         name="duel",
         model=model,
-        model_settings={"context": "stacked"} if model.startswith("blade") else {},
+        model_settings=model_settings,
         batch_count=200,
         block_ms=100,
         checkpoint_every_events=2000,

@@ -17,14 +17,14 @@ from __future__ import annotations
 
 import os
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Mapping, Sequence
 
 from numba.core import event
 
 # Each setting routes events through a different compiled loop: the solo loop
 # (1v1, no context), the general sequential loop (context, teams, features), the
 # mini-batch loop and the prediction loop, for both matchup forms and Elo.
-_SETUPS: tuple[tuple[str, dict[str, object]], ...] = (
+_SETUPS: tuple[tuple[str, Mapping[str, object]], ...] = (
     ("bradley_terry", {}),
     ("blade_chest", {"dims": 2}),
     ("blade_chest", {"dims": 2, "context": "stacked", "feature_width": 4}),
@@ -34,14 +34,15 @@ _SETUPS: tuple[tuple[str, dict[str, object]], ...] = (
 )
 
 
-def _compile_all() -> None:
+def compile_models(setups: Sequence[tuple[str, Mapping[str, object]]]) -> None:
+    """Run every learning and prediction path of these (kind, settings) models once."""
     from streamrate.events import Matchup
     from streamrate.models.registry import build_model
     from streamrate.simulate import simulate, world_spec
 
     solo = simulate(world_spec("cyclic", entities=8, matches=40, features=True, seed=1)).events
     teams = simulate(world_spec("teams", entities=12, matches=20, seed=1)).events
-    for kind, settings in _SETUPS:
+    for kind, settings in setups:
         for events in (solo, teams):
             model = build_model(kind, **settings)
             model.learn_many(events[: len(events) // 2])
@@ -49,6 +50,10 @@ def _compile_all() -> None:
             model.learn(events[0])
             ev = events[-1]
             model.predict(Matchup(first=ev.first, second=ev.second, context=ev.context))
+
+
+def _compile_all() -> None:
+    compile_models(_SETUPS)
 
 
 def warm_kernels(
