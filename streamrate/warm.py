@@ -69,7 +69,9 @@ def warm_kernels(
 
     where = os.environ.get(ENV) or "numba's default cache folder"
     announce = _Announce(
-        say, f"compiling model kernels (first run only, ~20 s; cached in {where})..."
+        say,
+        "compiling model kernels (first run only: about 20 s on an idle machine, "
+        f"longer under load; cached in {where})...",
     )
     t0 = time.monotonic()
     with event.install_listener("numba:compile", announce):
