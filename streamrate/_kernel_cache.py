@@ -11,6 +11,7 @@ package's ``__init__`` calls :func:`use_user_cache_dir` first thing.
 from __future__ import annotations
 
 import os
+import sys
 from collections.abc import Mapping
 from pathlib import Path
 
@@ -36,4 +37,7 @@ def use_user_cache_dir() -> str | None:
     if not os.access(folder, os.W_OK):
         return None
     os.environ[ENV] = str(folder)
+    numba = sys.modules.get("numba")
+    if numba is not None:  # imported before streamrate: let it read the setting again
+        numba.config.reload_config()
     return str(folder)

@@ -67,6 +67,10 @@ def test_kernel_cache_goes_to_a_per_user_folder_unless_set(tmp_path: Path) -> No
     env["NUMBA_CACHE_DIR"] = str(tmp_path / "mine")
     assert _run(code, env) == str(tmp_path / "mine")
     assert default_cache_dir({"HOME": "/x"}).parts[-2:] == ("streamrate", "numba")
+    # numba imported first: it is told to read its settings again.
+    env.pop("NUMBA_CACHE_DIR")
+    code = "import numba, streamrate; print(numba.core.config.CACHE_DIR)"
+    assert _run(code, env) == str(tmp_path / "xdg" / "streamrate" / "numba")
 
 
 def test_importing_the_package_does_not_import_numba_or_redis() -> None:
