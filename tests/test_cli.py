@@ -68,6 +68,11 @@ def test_team_sizes_have_one_name() -> None:
     for command in ("simulate", "ask"):
         res = runner.invoke(app, [command, "--help"])
         assert "--team-size" in res.output and "--teams" not in res.output
+    # The earlier spelling still parses (hidden); here it fails only at the missing server.
+    url = f"redis://127.0.0.1:{_free_port()}/0"
+    for spelling in ("--teams", "--team-size"):
+        res = runner.invoke(app, ["ask", "--lobby", "a,b", spelling, "1,1", "--redis-url", url])
+        assert res.exit_code == 2 and "No such option" not in res.output, res.output
 
 
 def test_replay_and_compare_print_columns_in_the_same_order() -> None:
