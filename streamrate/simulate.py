@@ -42,10 +42,18 @@ from streamrate.events import MatchEvent, event_to_json
 
 MAPS = ("saltflats", "ember-quarry", "glasswood", "sunken-bell")
 PATCHES = ("1.4", "1.5")
-STYLE_NAMES = ("lancer", "warden", "trickster", "sapper", "drifter", "herald", "seer")
-_KNOWN = ("kestrel", "marlow", "tindra", "oskel", "brisa", "vantor")
-_HEAD = ("ka", "mo", "ti", "os", "bri", "van", "quel", "ro", "sel", "dun", "ha", "fe", "ly", "zo")
-_TAIL = ("strel", "rvek", "nzar", "kel", "quo", "tor", "wyx", "mir", "dak", "lox", "vo", "rux")
+STYLE_NAMES = ("brannuk", "quespel", "tovrik", "zuvrel", "ornwhit", "pashvo", "glimmek")
+"""Play styles: invented words, so that no style reads as a real game's class or tier."""
+# Handles are two (rarely three) of these invented syllables, e.g. "kavrilt".
+_SYLLABLES = (
+    "bru", "dov", "fesk", "gwi", "huv", "jor", "kav", "lyx", "murn", "nev", "oqu", "pry",
+    "quon", "rilt", "sul", "tevo", "umb", "vash", "wex", "yeb", "zan", "thap", "crom", "idr",
+)  # fmt: skip
+# The syllable tables of the handle draws of earlier versions: the main random stream
+# still makes those draws (see _skip_earlier_name_draws), so a seed keeps its world.
+_EARLIER_HEAD = 14
+_EARLIER_TAIL = 12
+_EARLIER_FIXED = 6
 START = datetime(2026, 3, 1, tzinfo=UTC)
 
 
@@ -174,17 +182,47 @@ class World:
 
 
 def handles(n: int, rng: np.random.Generator) -> list[str]:
-    """``n`` distinct invented player handles."""
-    out: list[str] = list(_KNOWN[:n])
-    taken = set(out)
+    """``n`` distinct invented player handles, from a random stream of their own.
+
+    The handles come from a child stream of ``rng`` (``rng.spawn``), so they follow
+    the seed; the draws ``rng`` itself makes are those of earlier versions, so a seed
+    still gives the same skills, styles and matches (only the names changed).
+    """
+    (names_rng,) = rng.spawn(1)
+    _skip_earlier_name_draws(n, rng)
+    out: list[str] = []
+    taken: set[str] = set()
+    syllables = 2
+    misses = 0
     while len(out) < n:
-        name = f"{rng.choice(_HEAD)}{rng.choice(_TAIL)}"
+        picks = names_rng.integers(0, len(_SYLLABLES), syllables)
+        name = "".join(_SYLLABLES[int(i)] for i in picks)
         if name in taken:
-            name = f"{name}{int(rng.integers(2, 100))}"
+            misses += 1
+            if misses > 50:  # two syllables are getting used up: use three
+                syllables, misses = 3, 0
+            continue
+        taken.add(name)
+        out.append(name)
+    return out
+
+
+def _skip_earlier_name_draws(n: int, rng: np.random.Generator) -> None:
+    """Make the draws the handle generator of earlier versions made from ``rng``.
+
+    That generator gave six fixed handles, then drew a head and a tail syllable per
+    handle (14 and 12 of them), with a number from 2 to 99 appended on a clash; two
+    of the fixed handles could also be drawn. Only the draws matter here, not the names.
+    """
+    taken: set[tuple[int, int, int]] = {(3, 3, 0), (5, 5, 0)}  # the two drawable fixed ones
+    made = min(n, _EARLIER_FIXED)
+    while made < n:
+        name = (int(rng.integers(0, _EARLIER_HEAD)), int(rng.integers(0, _EARLIER_TAIL)), 0)
+        if name in taken:
+            name = (name[0], name[1], int(rng.integers(2, 100)))
         if name not in taken:
             taken.add(name)
-            out.append(name)
-    return out
+            made += 1
 
 
 def _style_matrix(styles: int, strength: float) -> np.ndarray:
