@@ -42,6 +42,10 @@ class Stack:
         space = SpaceSettings(
             name="duel",
             model="elo",
+            # A fixed first-side advantage: a learned one moves every pairing a
+            # little with every match, while the live feed publishes only the
+            # pairings a match touches (the web server re-asks the rest now and then).
+            model_settings={"advantage_k": 0.0},
             batch_count=20,
             block_ms=20,
             checkpoint_every_events=200,
