@@ -134,7 +134,7 @@ def test_readme_service_walkthrough_runs_as_written(
                 out = work / "follow.log"
                 with open(out, "wb") as fh:
                     proc = subprocess.Popen(_argv(step), cwd=work, env=env, stderr=fh, stdout=fh)
-                _wait_for_text(out, "following", proc)
+                _wait_for_text(out, "watching", proc)
                 proc.send_signal(signal.SIGINT)
                 assert proc.wait(30) == 0, out.read_text()
                 assert "error" not in out.read_text()
