@@ -98,6 +98,9 @@ class Checkpoint:
     seen: SeenIds
     counters: dict[str, int] = field(default_factory=dict)
     written_at_s: float = 0.0
+    log_id: str = "0-0"
+    """Id of the newest applied-log entry this checkpoint covers ("0-0": none);
+    a replica that loads the checkpoint follows the log after it."""
 
 
 def encode_checkpoint(ckpt: Checkpoint) -> bytes:
@@ -110,6 +113,7 @@ def encode_checkpoint(ckpt: Checkpoint) -> bytes:
         "applied": ckpt.applied,
         "counters": ckpt.counters,
         "written_at_s": ckpt.written_at_s or time.time(),
+        "log_id": ckpt.log_id,
     }
     state = ModelState(ckpt.state.kind, ckpt.state.version, ckpt.state.params, arrays)
     return state_to_bytes(state, extra)
@@ -154,6 +158,9 @@ def _decode(data: bytes, keep: int, window_s: float) -> Checkpoint:
     written = extra.get("written_at_s") or 0.0
     if not isinstance(written, int | float) or not math.isfinite(written):
         raise StateError("written_at_s is not a time")
+    log_id = extra.get("log_id", "0-0")  # absent: written before the applied log
+    if not isinstance(log_id, str) or not _is_stream_id(log_id):
+        raise StateError(f"log_id {str(log_id)[:40]!r} is not a stream id (ms-seq)")
     check_params(state.params)
     check_arrays(model_arrays)
     if version == 1:  # finish times, no digests: received at the checkpoint, content unknown
@@ -169,6 +176,7 @@ def _decode(data: bytes, keep: int, window_s: float) -> Checkpoint:
         seen,
         {str(k): int(v) for k, v in counters.items()},
         float(written),
+        log_id,
     )
 
 
