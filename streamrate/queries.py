@@ -470,7 +470,7 @@ class Answerer:
     def promote(self, req: PromoteRequest) -> dict[str, Any]:
         self._ready()
         if not getattr(self.view, "writable", True):
-            raise QueryError("promote goes to the writer; this is a replica (it follows the writer)")
+            raise QueryError("promote goes to the writer; this replica follows it")
         # Under the model lock: the consumer learns whole chunks under it, so the
         # switch falls between two chunks, never inside one.
         with self.view.lock:
