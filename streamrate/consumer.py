@@ -44,20 +44,16 @@ import redis
 from streamrate.checkpoint import (
     Checkpoint,
     CheckpointStore,
-    FileCheckpointStore,
-    RedisCheckpointStore,
-    decode_checkpoint,
     encode_checkpoint,
 )
 from streamrate.config import SpaceKeys, SpaceSettings
 from streamrate.deadletters import dead_fields
 from streamrate.dedupe import SeenIds
-from streamrate.errors import CheckpointRefusedError, EventError, StreamrateError
+from streamrate.errors import EventError
 from streamrate.events import MatchEvent, event_digest, parse_event, time_problem
 from streamrate.livefeed import WatchRegistry
 from streamrate.metrics import CONSUMER_STATES, ServiceMetrics
 from streamrate.models.base import Model, warm_up
-from streamrate.models.registry import model_from_state
 from streamrate.stream.applied_log import AppliedLogWriter
 from streamrate.stream.apply import (
     Applier,
@@ -67,17 +63,23 @@ from streamrate.stream.apply import (
     Status,
     redis_publisher,
 )
+from streamrate.stream.checkpoints import RUNTIME_SETTINGS, describe_store, load_checked
 
-__all__ = ["Consumer", "Entry", "LiveModel", "Observer", "Status", "id_key"]
+__all__ = [
+    "RUNTIME_SETTINGS",
+    "Consumer",
+    "Entry",
+    "LiveModel",
+    "Observer",
+    "Status",
+    "id_key",
+]
 
 log = logging.getLogger("streamrate.consumer")
 BEHIND_EVERY_S = 2.0
 """How often ``behind`` (the group's lag) is refreshed while the loop runs."""
 PROGRESS_EVERY_S = 30.0
 """How often the consumer logs its progress (events applied, entries behind)."""
-RUNTIME_SETTINGS = frozenset({"compiled", "active"})
-"""Model settings that do not change what a checkpoint means (how kernels run;
-which challenger answers): a checkpoint is not refused over them."""
 
 Entry = tuple[bytes, dict[bytes, bytes] | None]
 
@@ -163,64 +165,22 @@ class Consumer:
 
     def describe_store(self) -> str:
         """Where the checkpoint lives, in words (for messages)."""
-        if isinstance(self.store, FileCheckpointStore):
-            return f"checkpoint file {self.store.path}"
-        if isinstance(self.store, RedisCheckpointStore):
-            return f"checkpoint in Redis key {self.store.key}"
-        return "checkpoint"
-
-    def _refuse(self, what: str) -> CheckpointRefusedError:
-        where = self.describe_store()
-        if isinstance(self.store, RedisCheckpointStore):
-            aside = f"rename the key aside (RENAME {self.store.key} {self.store.key}.old)"
-        else:
-            aside = "move the file aside"
-        what = " ".join(what.split())  # one line, whatever the cause's message holds
-        return CheckpointRefusedError(
-            f"{where} {what}. Either point space {self.space.name!r} at another checkpoint "
-            f"(checkpoint.dir, the prefix or the space name), or {aside} to start afresh "
-            f"from the stream's first entry"
-        )
+        return describe_store(self.store)
 
     # -- start-up ---------------------------------------------------------------
     def load_checkpoint(self) -> bool:
         """Install the stored checkpoint (True) or an empty model when there is none
         (False); :class:`CheckpointRefusedError` when it is unreadable or was
         written for another model, other settings or in another format."""
-        try:
-            data = self.store.load()
-        except StreamrateError as exc:
-            raise self._refuse(f"cannot be read ({exc})") from exc
-        if data is None:
+        got = load_checked(self.store, self.space, self.build_model)
+        if got is None:
             self._install(self.build_model(), "0-0", 0)
             self.seen = SeenIds(self.space.dedupe_keep_ids, self.space.dedupe_window_s)
             self.last_id = self.ckpt_id = "0-0"
             self.ckpt_log_id = "0-0"
             self.loaded = True
             return False
-        try:
-            ck = decode_checkpoint(data, self.space.dedupe_keep_ids, self.space.dedupe_window_s)
-        except (StreamrateError, ValueError, KeyError, TypeError) as exc:
-            raise self._refuse(f"is not a checkpoint this version reads ({exc})") from exc
-        asked = self.build_model().to_state()
-        if ck.state.kind != asked.kind:
-            raise self._refuse(
-                f"holds model {ck.state.kind!r}, the settings ask for {asked.kind!r}"
-            )
-        diff = _settings_diff(ck.state.params, asked.params)
-        if diff:
-            raise self._refuse(
-                f"holds model {asked.kind!r} with other settings ({diff}) than the settings ask for"
-            )
-        if ck.state.version != asked.version:
-            raise self._refuse(
-                f"holds {asked.kind!r} state of format version {ck.state.version}, "
-                f"this version reads {asked.version}"
-            )
-        try:
-            model = model_from_state(ck.state)
-        except (StreamrateError, ValueError, TypeError, KeyError, IndexError) as exc:
-            raise self._refuse(f"holds {asked.kind!r} state that cannot be loaded ({exc})") from exc
+        ck, model = got
         self._install(model, ck.last_id, ck.applied)
         self.seen = ck.seen
         self.last_id = self.ckpt_id = ck.last_id
@@ -688,35 +648,3 @@ def _conflict(match_id: str) -> str:
         f"match_id: {match_id!r} was applied before with other content "
         "(a reused id, not a retry; the first event stands)"
     )
-
-
-def _plain(value: Any) -> Any:
-    """Settings as JSON-like values for comparison: lists for tuples, floats for
-    numbers, runtime-only keys left out."""
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items() if k not in RUNTIME_SETTINGS}
-    if isinstance(value, list | tuple):
-        return [_plain(v) for v in value]
-    if isinstance(value, int | float) and not isinstance(value, bool):
-        return float(value)
-    return value
-
-
-def _settings_diff(saved: dict[str, Any], asked: dict[str, Any], limit: int = 3) -> str:
-    """The settings that differ, in words (empty when they agree)."""
-    a, b = _plain(saved), _plain(asked)
-    if a == b:
-        return ""
-    keys = sorted(set(a) | set(b))
-    parts = [
-        f"{k}: {_short(a.get(k, 'unset'))} in the checkpoint, {_short(b.get(k, 'unset'))} asked"
-        for k in keys
-        if a.get(k) != b.get(k)
-    ]
-    more = f"; and {len(parts) - limit} more" if len(parts) > limit else ""
-    return "; ".join(parts[:limit]) + more
-
-
-def _short(value: Any, width: int = 60) -> str:
-    text = repr(value)
-    return text if len(text) <= width else text[: width - 3] + "..."
