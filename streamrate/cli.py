@@ -197,20 +197,33 @@ SpaceOpt = Annotated[str | None, typer.Option("--space", help="Model space (defa
 
 
 @app.command()
-def serve(config: ConfigOpt = None, redis_url: RedisOpt = None, set_: SetOpt = None) -> None:
+def serve(
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    role: Annotated[
+        str,
+        typer.Option(
+            help="writer: learn, checkpoint and write the applied log; responder: follow the "
+            "writer and answer the request stream; both: one process doing all (default)."
+        ),
+    ] = "both",
+) -> None:
     """Consume the event stream, keep the model current, answer queries (until SIGTERM)."""
     import logging
 
     from streamrate.connect import service_clients
-    from streamrate.errors import StreamrateError
+    from streamrate.errors import ConfigError, StreamrateError
     from streamrate.service import serve_forever
 
     try:
+        if role not in ("writer", "responder", "both"):
+            raise ConfigError(f"--role {role!r}: one of writer, responder, both")
         settings = _service_settings(config, redis_url, set_)
         logging.basicConfig(
             level=settings.log_level, format="%(asctime)s %(levelname)s %(name)s: %(message)s"
         )
-        code = serve_forever(settings, service_clients(settings.redis))
+        code = serve_forever(settings, service_clients(settings.redis), role)  # type: ignore[arg-type]
     except StreamrateError as exc:
         typer.echo(f"error: {exc}", err=True)
         raise typer.Exit(2) from exc
