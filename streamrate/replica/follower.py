@@ -192,7 +192,7 @@ class Follower:
                 raise Reload("gap")
             self.epoch = max(self.epoch, entry.epoch)
             part = [
-                (sid, parse_event(raw)) for sid, raw in zip(entry.ids, entry.events, strict=False)
+                (sid, parse_event(raw)) for sid, raw in zip(entry.ids, entry.events, strict=True)
             ]
             self.applier.apply(part)
             lag_ms = max(now_ms() - id_key(entry.id)[0], 0)

@@ -188,7 +188,7 @@ class LocalReader:
             id="local",
             reply_to="local",
             entities=list(entities),
-            team_sizes=tuple(team_sizes),
+            team_sizes=(team_sizes[0], team_sizes[1]),
             context=context or {},
         )
         try:
