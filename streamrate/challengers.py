@@ -344,7 +344,7 @@ def format_compare(table: Mapping[str, Any]) -> str:
 
     ref = table["reference"]
     head = (
-        f"  {'member':<18} {'n':>6} {'log_loss':>9} {'brier':>7} {'ece':>6} {'acc':>6}  "
+        f"  {'member':<18} {'n':>6} {'log_loss':>9} {'brier':>7} {'acc':>6} {'ece':>6}  "
         f"diff vs {ref} [95% CI]"
     )
     lines = [head, "-" * len(head)]
@@ -354,7 +354,7 @@ def format_compare(table: Mapping[str, Any]) -> str:
         mark = "*" if r.get("active") else " "
         lines.append(
             f"{mark} {label[:18]:<18} {r['n']:>6} {num(r['log_loss'], 9, 4)} "
-            f"{num(r['brier'], 7, 4)} {num(r['ece'], 6, 3)} {num(r['accuracy'], 6, 3)}  {diff}"
+            f"{num(r['brier'], 7, 4)} {num(r['accuracy'], 6, 3)} {num(r['ece'], 6, 3)}  {diff}"
         )
     lines.append(f"* answers queries ({table['active']}); over the last {table['events']} events")
     lines.append("log loss in nats on the expected score; CI: paired circular block bootstrap")

@@ -26,11 +26,19 @@ and match ids to follow the event format's id rule, and ``last_id`` to be a
 stream id. Every refusal is one :class:`~streamrate.errors.CheckpointError`
 naming the checkpoint and the problem.
 
-Versions (``checkpoint_version`` in the metadata): 2 keeps, per remembered
-match id, the time its entry was received and a content digest; 1 (no field)
-kept the event's own finish time and no digest. A version-1 checkpoint still
-loads: its ids count as received at its ``last_id`` and their content as unknown
-(a reuse of such an id is taken for a retry, as version 1 did).
+Versions (``checkpoint_version`` in the metadata): 3 adds the parts (below);
+2 keeps, per remembered match id, the time its entry was received and a content
+digest; 1 (no field) kept the event's own finish time and no digest. Older
+versions still load: a version-2 checkpoint has no parts; in a version-1 one the
+ids count as received at its ``last_id`` and their content as unknown (a reuse of
+such an id is taken for a retry, as version 1 did).
+
+Parts: the state of the consumer's observers (the quality windows, drift
+windows and change detectors), so that a restart continues the same alerting
+series. A part is a :class:`PartState` (arrays named ``_part_<name>.<key>`` in
+the blob, JSON under ``parts`` in the metadata); its arrays are checked like the
+model's (finite), and its owner checks the rest when it loads it
+(:func:`load_parts`).
 
 >>> from streamrate.dedupe import SeenIds
 >>> from streamrate.models.base import ModelState
@@ -45,6 +53,7 @@ from __future__ import annotations
 import math
 import re
 import time
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Protocol
@@ -58,8 +67,13 @@ from streamrate.models.base import ModelState
 from streamrate.statefile import state_from_bytes, state_to_bytes, write_atomic
 
 _PREFIX = "_ckpt_"
-CHECKPOINT_VERSION = 2
-"""Written into every checkpoint; versions 1 and 2 are read."""
+_PART_PREFIX = "_part_"
+CHECKPOINT_VERSION = 3
+"""Written into every checkpoint; versions 1 to 3 are read."""
+READ_VERSIONS = (1, 2, CHECKPOINT_VERSION)
+PART_NAME = re.compile(r"^[a-z][a-z0-9_]{0,31}$")
+PART_KEY = re.compile(r"^[A-Za-z0-9_.]{1,64}$")
+MAX_PARTS = 16
 STREAM_ID = re.compile(r"^(0|[1-9][0-9]{0,19})-(0|[1-9][0-9]{0,19})$")
 _U64 = (1 << 64) - 1
 MAX_ENTITIES = 100_000_000
@@ -88,6 +102,50 @@ class CheckpointBlob(bytes):
         return blob
 
 
+@dataclass(frozen=True)
+class PartState:
+    """One observer's saved state: number arrays (keys ``[A-Za-z0-9_.]``) and JSON."""
+
+    arrays: dict[str, np.ndarray]
+    meta: dict[str, Any]
+
+
+class Stateful(Protocol):
+    """An observer whose state goes into the checkpoint under ``state_name``."""
+
+    state_name: str
+
+    def state(self) -> PartState: ...
+
+    def load_state(self, part: PartState | None) -> None:
+        """Install ``part`` (``None``: the checkpoint holds none, start empty);
+        :class:`~streamrate.errors.StateError` when it is malformed."""
+        ...
+
+
+def parts_of(observers: Iterable[object]) -> dict[str, PartState]:
+    """The saved states of those observers that keep one (see :class:`Stateful`)."""
+    parts: dict[str, PartState] = {}
+    for obs in observers:
+        name = getattr(obs, "state_name", None)
+        if isinstance(name, str) and callable(getattr(obs, "state", None)):
+            if name in parts:
+                raise StateError(f"two observers save their state as {name!r}")
+            parts[name] = obs.state()  # type: ignore[attr-defined]
+    return parts
+
+
+def load_parts(observers: Iterable[object], parts: dict[str, PartState]) -> None:
+    """Give each stateful observer its part (or ``None`` when the checkpoint has none)."""
+    for obs in observers:
+        name = getattr(obs, "state_name", None)
+        if isinstance(name, str) and callable(getattr(obs, "load_state", None)):
+            try:
+                obs.load_state(parts.get(name))  # type: ignore[attr-defined]
+            except StateError as exc:
+                raise CheckpointError(f"part {name!r}: {exc}") from exc
+
+
 @dataclass
 class Checkpoint:
     """What a checkpoint holds. ``last_id`` is the newest stream id it covers."""
@@ -98,6 +156,7 @@ class Checkpoint:
     seen: SeenIds
     counters: dict[str, int] = field(default_factory=dict)
     written_at_s: float = 0.0
+    parts: dict[str, PartState] = field(default_factory=dict)
     log_id: str = "0-0"
     """Id of the newest applied-log entry this checkpoint covers ("0-0": none);
     a replica that loads the checkpoint follows the log after it."""
@@ -107,6 +166,13 @@ def encode_checkpoint(ckpt: Checkpoint) -> bytes:
     arrays = dict(ckpt.state.arrays)
     for name, arr in ckpt.seen.to_arrays().items():
         arrays[_PREFIX + name] = arr
+    for part_name, part in ckpt.parts.items():
+        if not PART_NAME.match(part_name):
+            raise StateError(f"part name {part_name!r} is not of the form {PART_NAME.pattern}")
+        for key, arr in part.arrays.items():
+            if not PART_KEY.match(key):
+                raise StateError(f"part {part_name!r}: array name {key!r} is not usable")
+            arrays[f"{_PART_PREFIX}{part_name}.{key}"] = arr
     extra: dict[str, Any] = {
         "checkpoint_version": CHECKPOINT_VERSION,
         "last_id": ckpt.last_id,
@@ -114,6 +180,7 @@ def encode_checkpoint(ckpt: Checkpoint) -> bytes:
         "counters": ckpt.counters,
         "written_at_s": ckpt.written_at_s or time.time(),
         "log_id": ckpt.log_id,
+        "parts": {name: part.meta for name, part in ckpt.parts.items()},
     }
     state = ModelState(ckpt.state.kind, ckpt.state.version, ckpt.state.params, arrays)
     return state_to_bytes(state, extra)
@@ -138,12 +205,19 @@ def decode_checkpoint(
 def _decode(data: bytes, keep: int, window_s: float) -> Checkpoint:
     state, extra = state_from_bytes(data)
     own = {k[len(_PREFIX) :]: v for k, v in state.arrays.items() if k.startswith(_PREFIX)}
-    model_arrays = {k: v for k, v in state.arrays.items() if not k.startswith(_PREFIX)}
+    part_arrays = {k: v for k, v in state.arrays.items() if k.startswith(_PART_PREFIX)}
+    model_arrays = {
+        k: v
+        for k, v in state.arrays.items()
+        if not k.startswith(_PREFIX) and not k.startswith(_PART_PREFIX)
+    }
     version = extra.get("checkpoint_version", 1)
-    if version not in (1, CHECKPOINT_VERSION):
+    if version not in READ_VERSIONS or isinstance(version, bool):
         raise StateError(
-            f"checkpoint version {version!r}; this code reads versions 1 and {CHECKPOINT_VERSION}"
+            f"checkpoint version {str(version)[:20]!r}; this code reads versions "
+            f"{', '.join(map(str, READ_VERSIONS))}"
         )
+    parts = _parts(extra.get("parts"), part_arrays)
     last_id = extra.get("last_id")
     if not isinstance(last_id, str) or not _is_stream_id(last_id):
         raise StateError(f"last_id {str(last_id)[:40]!r} is not a stream id (ms-seq)")
@@ -176,8 +250,29 @@ def _decode(data: bytes, keep: int, window_s: float) -> Checkpoint:
         seen,
         {str(k): int(v) for k, v in counters.items()},
         float(written),
-        log_id,
+        parts=parts,
+        log_id=log_id,
     )
+
+
+def _parts(meta: Any, arrays: dict[str, np.ndarray]) -> dict[str, PartState]:
+    """The parts, checked for shape (names, JSON maps, finite arrays), not for meaning."""
+    if meta is None:
+        meta = {}
+    if not isinstance(meta, dict) or len(meta) > MAX_PARTS:
+        raise StateError(f"parts are not a map of at most {MAX_PARTS} entries")
+    parts: dict[str, PartState] = {}
+    for name, part_meta in meta.items():
+        if not PART_NAME.match(str(name)) or not isinstance(part_meta, dict):
+            raise StateError(f"part {str(name)[:40]!r} is not a named map")
+        parts[name] = PartState({}, part_meta)
+    for full, arr in arrays.items():
+        name, _, key = full[len(_PART_PREFIX) :].partition(".")
+        if name not in parts or not PART_KEY.match(key):
+            raise StateError(f"array {full[:80]!r} belongs to no listed part")
+        parts[name].arrays[key] = arr
+    check_arrays(arrays)
+    return parts
 
 
 def _is_stream_id(text: str) -> bool:

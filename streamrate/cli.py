@@ -7,14 +7,95 @@ from pathlib import Path
 from typing import Annotated, Any
 
 import typer
+from typer.core import TyperArgument, TyperGroup
+
+from streamrate.errors import StreamrateError
+
+# Metavars for help texts by Python type, so that no Python type shows (``<list[str]>``).
+_METAVARS = {int: "N", float: "NUMBER", str: "TEXT", Path: "PATH", bool: "BOOL"}
+
+
+def _fail(message: str) -> typer.Exit:
+    """Print one ``error:`` line on stderr; the exit (code 2) to raise."""
+    typer.echo(f"error: {message}", err=True)
+    return typer.Exit(2)
+
+
+def _metavar(param: Any) -> str:
+    """``N``, ``NUMBER``, ``TEXT``, ``PATH`` from the annotation (a list: its items)."""
+    desc = getattr(param, "type_descriptor", None)
+    annotation = getattr(desc, "annotation", None)
+    for arg in (annotation, *getattr(annotation, "__args__", ())):
+        if arg in _METAVARS:
+            return _METAVARS[arg]
+    return "VALUE"
+
+
+class _PlainArgument(TyperArgument):
+    """An argument shown as ``FILE`` (``[FILE]`` when optional), with no type beside it."""
+
+    def display_type_rich(self, ctx: Any) -> str:  # typer's own (vendored) click Context
+        return ""
+
+    def _usage_display_name(self) -> str:
+        name = (self.metavar or "") + ("..." if self.nargs != 1 else "")
+        return name if self.required else f"[{name}]"
+
+
+class _Commands(TyperGroup):
+    """The command group: one line and exit code 2 for any error of the tree, plain help."""
+
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        super().__init__(*args, **kwargs)
+        for command in self.commands.values():
+            for param in command.params:
+                if param.metavar is not None or getattr(param, "is_flag", False):
+                    continue
+                if isinstance(param, TyperArgument):
+                    param.metavar = (param.name or "value").upper()
+                    param.__class__ = _PlainArgument
+                else:
+                    param.metavar = _metavar(param)
+
+    def invoke(self, ctx: Any) -> Any:  # typer's own (vendored) click Context
+        import redis
+
+        try:
+            return super().invoke(ctx)
+        except StreamrateError as exc:
+            raise _fail(str(exc)) from exc
+        except redis.RedisError as exc:
+            raise _fail(f"Redis: {exc}") from exc
+
 
 app = typer.Typer(
+    cls=_Commands,
     help="streamrate keeps win probabilities current as match results stream in.",
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
     rich_markup_mode=None,  # help texts show [brackets] literally
 )
+
+
+def _show_version(value: bool) -> None:
+    if value:
+        from streamrate import __version__
+
+        typer.echo(f"streamrate {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _main(
+    version: Annotated[
+        bool,
+        typer.Option(
+            "--version", callback=_show_version, is_eager=True, help="Print the version and exit."
+        ),
+    ] = False,
+) -> None:
+    """streamrate keeps win probabilities current as match results stream in."""
 
 
 @app.command()
@@ -30,9 +111,16 @@ Opt = typer.Option
 
 @app.command()
 def simulate(
-    out: Annotated[Path, Opt("--out", "-o", help="Event file to write (JSON lines).")],
+    out: Annotated[
+        Path, Opt("--out", "-o", metavar="FILE", help="Event file to write (JSON lines).")
+    ],
     world: Annotated[
-        str, Opt(help="Preset world: plain, cyclic (3 styles + map effects), patch, teams.")
+        str,
+        Opt(
+            metavar="NAME",
+            help="Preset world: plain, cyclic (3 styles + map effects), patch, teams, "
+            "seasons (a league whose strengths change between seasons).",
+        ),
     ] = "plain",
     entities: Annotated[int | None, Opt(help="Number of players.")] = None,
     matches: Annotated[int | None, Opt(help="Number of matches.")] = None,
@@ -68,6 +156,18 @@ def simulate(
     ] = None,
     days: Annotated[float | None, Opt(help="Time span of the matches in days.")] = None,
     seed: Annotated[int | None, Opt(help="Random seed (same seed, same file).")] = None,
+    seasons: Annotated[
+        int | None, Opt(help="Seasons of a league (0 = none); context field 'season'.")
+    ] = None,
+    season_shift: Annotated[
+        float | None, Opt(help="Std of each skill's change between seasons.")
+    ] = None,
+    turnover: Annotated[
+        float | None, Opt(help="Share of the roster replaced by newcomers each season.")
+    ] = None,
+    first_edge: Annotated[
+        float | None, Opt(help="Logit edge of the first side (seasons worlds).")
+    ] = None,
     truth: Annotated[
         bool,
         Opt("--truth/--no-truth", help="Also write OUT.truth.json with true expected scores."),
@@ -103,10 +203,17 @@ _MODEL_HELP = (
 @app.command()
 def replay(
     file: Annotated[Path, typer.Argument(help="Time-ordered event file (JSON lines).")],
-    model: Annotated[list[str] | None, Opt("--model", "-m", help=_MODEL_HELP)] = None,
+    model: Annotated[
+        list[str] | None, Opt("--model", "-m", metavar="SPEC", help=_MODEL_HELP)
+    ] = None,
     config: Annotated[
         list[Path] | None,
-        Opt("--config", "-c", help="TOML file with [models.LABEL] tables (kind, settings)."),
+        Opt(
+            "--config",
+            "-c",
+            metavar="FILE",
+            help="TOML file with [models.LABEL] tables (kind, settings).",
+        ),
     ] = None,
     all_models: Annotated[
         bool, Opt("--all-models", help="Run every built-in model with its default settings.")
@@ -114,12 +221,15 @@ def replay(
     burn_in: Annotated[
         str | None,
         Opt(
+            metavar="N|TIME",
             help="Score only events after this: an event count (5000) or a time "
-            "(YYYY-MM-DD = midnight UTC, or RFC 3339). All events still train."
+            "(YYYY-MM-DD = midnight UTC, or RFC 3339). All events still train.",
         ),
     ] = None,
     as_json: Annotated[bool, Opt("--json", help="Print one JSON object keyed by model.")] = False,
-    plot: Annotated[Path | None, Opt(help="Write a reliability diagram PNG here.")] = None,
+    plot: Annotated[
+        Path | None, Opt(metavar="PNG", help="Write a reliability diagram PNG here.")
+    ] = None,
     allow_unordered: Annotated[
         bool,
         Opt(
@@ -179,21 +289,28 @@ def _service_settings(
 
 ConfigOpt = Annotated[
     Path | None,
-    typer.Option("--config", "-c", help="Settings file (TOML), e.g. configs/service.toml."),
+    typer.Option(
+        "--config", "-c", metavar="FILE", help="Settings file (TOML), e.g. configs/service.toml."
+    ),
 ]
 RedisOpt = Annotated[
     str | None,
     typer.Option(
         "--redis-url",
+        metavar="URL",
         help="redis:// or rediss:// URL. A password here shows in the process list: "
         "prefer redis.password_env or redis.password_file.",
     ),
 ]
 SetOpt = Annotated[
     list[str] | None,
-    typer.Option("--set", help="Override a setting: dotted.key=value (repeatable)."),
+    typer.Option(
+        "--set", metavar="KEY=VALUE", help="Override a setting: dotted.key=value (repeatable)."
+    ),
 ]
-SpaceOpt = Annotated[str | None, typer.Option("--space", help="Model space (default: the first).")]
+SpaceOpt = Annotated[
+    str | None, typer.Option("--space", metavar="NAME", help="Model space (default: the first).")
+]
 
 
 @app.command()
@@ -201,6 +318,10 @@ def serve(
     config: ConfigOpt = None,
     redis_url: RedisOpt = None,
     set_: SetOpt = None,
+    log_format: Annotated[
+        str | None,
+        typer.Option("--log-format", help="text, or json: one JSON object per line."),
+    ] = None,
     role: Annotated[
         str,
         typer.Option(
@@ -210,19 +331,17 @@ def serve(
     ] = "both",
 ) -> None:
     """Consume the event stream, keep the model current, answer queries (until SIGTERM)."""
-    import logging
-
     from streamrate.connect import service_clients
     from streamrate.errors import ConfigError, StreamrateError
+    from streamrate.logs import setup_logging
     from streamrate.service import serve_forever
 
     try:
         if role not in ("writer", "responder", "both"):
             raise ConfigError(f"--role {role!r}: one of writer, responder, both")
-        settings = _service_settings(config, redis_url, set_)
-        logging.basicConfig(
-            level=settings.log_level, format="%(asctime)s %(levelname)s %(name)s: %(message)s"
-        )
+        extra = [] if log_format is None else [f"log_format={log_format}"]
+        settings = _service_settings(config, redis_url, [*(set_ or []), *extra])
+        setup_logging(settings.log_level, settings.log_format)
         code = serve_forever(settings, service_clients(settings.redis), role)  # type: ignore[arg-type]
     except StreamrateError as exc:
         typer.echo(f"error: {exc}", err=True)
@@ -308,9 +427,15 @@ def ask(
     first: Annotated[str | None, typer.Argument(help="First side: ids joined by commas.")] = None,
     second: Annotated[str | None, typer.Argument(help="Second side: ids joined by commas.")] = None,
     lobby: Annotated[str | None, typer.Option(help="Lobby: ids joined by commas.")] = None,
-    teams: Annotated[
-        str, typer.Option(help="Team sizes for --lobby, e.g. 2,2 (default: an even split).")
+    team_size: Annotated[
+        str,
+        typer.Option(
+            "--team-size",
+            metavar="N,N",
+            help="Team sizes for --lobby, e.g. 2,2 (default: an even split).",
+        ),
     ] = "",
+    teams: Annotated[str, typer.Option("--teams", hidden=True)] = "",  # the earlier spelling
     context: Annotated[
         list[str] | None, typer.Option(help="name=category or name:=number (repeatable).")
     ] = None,
@@ -348,20 +473,21 @@ def ask(
         ctx = parse_context(context or [])
         if lobby is not None:
             ids = _side(lobby)
+            sizes_text = team_size or teams
             try:
-                sizes = [int(x) for x in teams.split(",") if x.strip()]
+                sizes = [int(x) for x in sizes_text.split(",") if x.strip()]
             except ValueError:
-                raise _fail(f"--teams {teams!r}: write two sizes, e.g. 2,2") from None
+                raise _fail(f"--team-size {sizes_text!r}: write two sizes, e.g. 2,2") from None
             if not sizes:
                 if len(ids) % 2:
                     raise _fail(
-                        f"a lobby of {len(ids)} cannot be split evenly: give --teams, "
-                        f"e.g. --teams {len(ids) // 2},{len(ids) - len(ids) // 2}"
+                        f"a lobby of {len(ids)} cannot be split evenly: give --team-size, "
+                        f"e.g. --team-size {len(ids) // 2},{len(ids) - len(ids) // 2}"
                     )
                 sizes = [len(ids) // 2, len(ids) // 2]
             if len(sizes) != 2 or min(sizes) < 1 or sum(sizes) != len(ids):
                 raise _fail(
-                    f"--teams {teams}: two sizes of at least 1 adding up to the "
+                    f"--team-size {sizes_text}: two sizes of at least 1 adding up to the "
                     f"{len(ids)} ids of the lobby"
                 )
             req: dict[str, Any] = {
@@ -620,22 +746,38 @@ def demo(
 
 @app.command()
 def health(
+    config: ConfigOpt = None,
+    space: Annotated[
+        str | None, typer.Option("--space", metavar="NAME", help="Only this model space.")
+    ] = None,
     url: Annotated[
-        str, typer.Option(help="Metrics endpoint of a running service.")
-    ] = "http://127.0.0.1:9464/metrics",
+        str | None,
+        typer.Option(
+            metavar="URL",
+            help="Metrics endpoint of a running service (default: the address in --config, "
+            "else the default metrics address).",
+        ),
+    ] = None,
     checkpoint: Annotated[
-        Path | None, typer.Option(help="Read this checkpoint file instead of a running service.")
+        Path | None,
+        typer.Option(
+            metavar="FILE", help="Read this checkpoint file instead of a running service."
+        ),
     ] = None,
     plot: Annotated[
-        Path | None, typer.Option(help="Also write a PNG of each figure against its alert level.")
+        Path | None,
+        typer.Option(
+            metavar="PNG", help="Also write a PNG of each figure against its alert level."
+        ),
     ] = None,
 ) -> None:
     """One-screen health report with a verdict per line (ok / watch / bad / n/a).
 
-    Exit code 0 when nothing is bad, 1 when a line is past its alert level, 2 when
-    the source cannot be read. Thresholds are those of the Prometheus alert rules.
+    The report and the overall verdict go to stdout. Exit code 0 when nothing is
+    bad, 1 when a line is past its alert level, 2 when the source cannot be read.
+    Thresholds are those of the Prometheus alert rules.
     """
-    from streamrate.errors import StreamrateError
+    from streamrate.config import load_settings
     from streamrate.health import (
         BAD,
         fetch_metrics,
@@ -643,23 +785,38 @@ def health(
         from_checkpoint,
         from_metrics_text,
         health_png,
+        metrics_url,
         worst,
     )
 
-    try:
-        if checkpoint is not None:
-            lines = from_checkpoint(checkpoint)
-        else:
-            lines = from_metrics_text(fetch_metrics(url))
-        typer.echo(format_report(lines))
-        if plot is not None:
-            health_png(plot, lines)
-            typer.echo(f"wrote {plot}", err=True)
-    except StreamrateError as exc:
-        typer.echo(f"error: {exc}", err=True)
-        raise typer.Exit(2) from exc
+    if checkpoint is not None:
+        lines = from_checkpoint(checkpoint)
+    else:
+        settings = load_settings(config)
+        if config is not None and url is None and not settings.metrics.enabled:
+            raise _fail(
+                f"metrics are off in {config} (metrics.enabled = false): turn them on, "
+                "or read a checkpoint with --checkpoint"
+            )
+        address = url or metrics_url(settings.metrics)
+        try:
+            text = fetch_metrics(address)
+        except StreamrateError as exc:
+            where = f"metrics.port in {config}" if config else "metrics.port in its settings"
+            raise _fail(
+                f"{exc} (is the service running with metrics enabled? see {where})"
+            ) from exc
+        lines = from_metrics_text(text)
+    if space is not None:
+        lines = [x for x in lines if x.space == space]
+        if not lines:
+            raise _fail(f"nothing reported for model space {space!r}")
+    typer.echo(format_report(lines))
+    if plot is not None:
+        health_png(plot, lines)
+        typer.echo(f"wrote {plot}", err=True)
     verdict = worst(lines)
-    typer.echo(f"overall: {verdict}", err=True)
+    typer.echo(f"overall: {verdict}")
     if verdict == BAD:
         raise typer.Exit(1)
 
@@ -733,6 +890,88 @@ def web(
     typer.echo(f"board:   http://{shown}:{port}/board", err=True)
     typer.echo(f"overlay: http://{shown}:{port}/overlay?p=FIRST:SECOND", err=True)
     server.run()
+
+
+@app.command("checkpoint-backup")
+def checkpoint_backup(
+    out: Annotated[Path, typer.Argument(help="File to write the checkpoint to.")],
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    space: SpaceOpt = None,
+) -> None:
+    """Copy the newest checkpoint of a space (file or Redis key) out to a file."""
+    import redis as redis_lib
+
+    from streamrate.backup import backup
+    from streamrate.errors import StreamrateError
+    from streamrate.service import redis_factory
+
+    try:
+        settings = _service_settings(config, redis_url, set_)
+        sp = settings.space(space)
+        client = redis_factory(settings.redis)() if settings.checkpoint.store == "redis" else None
+        info = backup(settings, sp, client, out)
+    except (StreamrateError, redis_lib.RedisError, OSError) as exc:
+        raise _fail(" ".join(str(exc).split())) from exc
+    typer.echo(
+        f"wrote {info.where}: {info.model}, {info.applied} events applied, "
+        f"last stream id {info.last_id}, {info.size_bytes} bytes"
+    )
+
+
+@app.command("checkpoint-restore")
+def checkpoint_restore(
+    source: Annotated[Path, typer.Argument(help="A file written by checkpoint-backup.")],
+    config: ConfigOpt = None,
+    redis_url: RedisOpt = None,
+    set_: SetOpt = None,
+    space: SpaceOpt = None,
+    force: Annotated[
+        bool, typer.Option("--force", help="Install even while a writer of the space runs.")
+    ] = False,
+    idle_s: Annotated[
+        float, typer.Option(help="A group member that read within this many seconds is running.")
+    ] = 10.0,
+) -> None:
+    """Install a backed-up checkpoint as a space's, if it fits the settings.
+
+    Refused when it holds another model, other settings or another format, and
+    while the space's writer runs (unless --force). Moves the consumer group
+    back to the checkpoint's last stream id, so later entries are read again.
+    """
+    import redis as redis_lib
+
+    from streamrate.backup import restore
+    from streamrate.errors import StreamrateError
+    from streamrate.service import redis_factory
+
+    try:
+        settings = _service_settings(config, redis_url, set_)
+        sp = settings.space(space)
+        client = redis_factory(settings.redis)()
+        info = restore(settings, sp, client, source, force=force, idle_s=idle_s)
+    except (StreamrateError, redis_lib.RedisError) as exc:
+        raise _fail(" ".join(str(exc).split())) from exc
+    typer.echo(
+        f"installed {info.where}: {info.model}, {info.applied} events applied, "
+        f"last stream id {info.last_id}; the consumer group reads on from there"
+    )
+    if info.note:
+        typer.echo(f"note: {info.note}", err=True)
+
+
+@app.command()
+def warm() -> None:
+    """Compile every model kernel into the on-disk cache (run once, e.g. when building an image)."""
+    import os
+
+    from streamrate._kernel_cache import ENV
+    from streamrate.warm import warm_kernels
+
+    seconds = warm_kernels(say=lambda line: typer.echo(line, err=True))
+    where = os.environ.get(ENV) or "numba's default cache folder"
+    typer.echo(f"model kernels ready in {seconds:.1f} s (cache: {where})")
 
 
 def main() -> None:  # pragma: no cover - console entry point

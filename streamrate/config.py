@@ -204,13 +204,19 @@ class CheckpointSettings(BaseModel):
     dir: Path = Path("checkpoints")
 
 
+DEFAULT_METRICS_PORT = 8564
+"""Outside 9090-9999: Prometheus' own ports (9090-9094) and the exporter range of its
+default port allocations list (9100-9999, all given out), so no well-known exporter
+on the same host expects this port."""
+
+
 class MetricsSettings(BaseModel):
-    """Prometheus endpoint; off unless ``enabled``."""
+    """Prometheus endpoint at ``http://bind:port/metrics``; on by default, loopback only."""
 
     model_config = _FROZEN
-    enabled: bool = False
+    enabled: bool = True
     bind: str = "127.0.0.1"
-    port: int = Field(9464, ge=0, le=65535)
+    port: int = Field(DEFAULT_METRICS_PORT, ge=0, le=65535)
 
 
 class QuerySettings(BaseModel):
@@ -286,6 +292,8 @@ class Settings(BaseModel):
     model_config = _FROZEN
     prefix: str = Field("sr", pattern=r"^[A-Za-z0-9_.\-]{1,32}$")
     log_level: Literal["DEBUG", "INFO", "WARNING", "ERROR"] = "INFO"
+    # "json": one JSON object per line (streamrate.logs states the fields).
+    log_format: Literal["text", "json"] = "text"
     redis: RedisSettings = Field(default_factory=RedisSettings)
     checkpoint: CheckpointSettings = Field(default_factory=CheckpointSettings)
     metrics: MetricsSettings = Field(default_factory=MetricsSettings)

@@ -45,11 +45,13 @@ from streamrate.checkpoint import (
     Checkpoint,
     CheckpointStore,
     encode_checkpoint,
+    load_parts,
+    parts_of,
 )
 from streamrate.config import SpaceKeys, SpaceSettings
 from streamrate.deadletters import dead_fields
 from streamrate.dedupe import SeenIds
-from streamrate.errors import EventError
+from streamrate.errors import EventError, StreamrateError
 from streamrate.events import MatchEvent, event_digest, parse_event, time_problem
 from streamrate.livefeed import WatchRegistry
 from streamrate.metrics import CONSUMER_STATES, ServiceMetrics
@@ -63,7 +65,7 @@ from streamrate.stream.apply import (
     Status,
     redis_publisher,
 )
-from streamrate.stream.checkpoints import RUNTIME_SETTINGS, describe_store, load_checked
+from streamrate.stream.checkpoints import RUNTIME_SETTINGS, describe_store, load_checked, refusal
 
 __all__ = [
     "RUNTIME_SETTINGS",
@@ -175,6 +177,7 @@ class Consumer:
         got = load_checked(self.store, self.space, self.build_model)
         if got is None:
             self._install(self.build_model(), "0-0", 0)
+            load_parts(self.observers, {})
             self.seen = SeenIds(self.space.dedupe_keep_ids, self.space.dedupe_window_s)
             self.last_id = self.ckpt_id = "0-0"
             self.ckpt_log_id = "0-0"
@@ -182,6 +185,12 @@ class Consumer:
             return False
         ck, model = got
         self._install(model, ck.last_id, ck.applied)
+        try:
+            load_parts(self.observers, ck.parts)  # quality windows roll back with the model
+        except StreamrateError as exc:
+            raise refusal(
+                self.store, self.space.name, f"holds observer state that cannot be loaded ({exc})"
+            ) from exc
         self.seen = ck.seen
         self.last_id = self.ckpt_id = ck.last_id
         self.ckpt_log_id = ck.log_id
@@ -546,7 +555,13 @@ class Consumer:
             log_id = self.log.flush()
             blob = encode_checkpoint(
                 Checkpoint(
-                    state, self.last_id, applied, self.seen, dict(self.counters), log_id=log_id
+                    state,
+                    self.last_id,
+                    applied,
+                    self.seen,
+                    dict(self.counters),
+                    parts=parts_of(self.observers),
+                    log_id=log_id,
                 )
             )
             self.store.save(blob)

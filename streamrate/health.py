@@ -33,6 +33,7 @@ from pathlib import Path
 
 from prometheus_client.parser import text_string_to_metric_families
 
+from streamrate.config import MetricsSettings
 from streamrate.drift import PSI_MAJOR, PSI_MODERATE
 from streamrate.errors import ConfigError, ServiceError
 
@@ -349,3 +350,15 @@ def health_png(path: Path | str, lines: list[Line]) -> None:
     ax.set_title(f"streamrate health: {worst(lines)}")
     fig.savefig(path, dpi=110)
     plt.close(fig)
+
+
+def metrics_url(metrics: MetricsSettings) -> str:
+    """Where a service with these metrics settings serves its page (loopback for 0.0.0.0).
+
+    >>> metrics_url(MetricsSettings(bind="0.0.0.0", port=8564))
+    'http://127.0.0.1:8564/metrics'
+    """
+    host = {"0.0.0.0": "127.0.0.1", "::": "::1", "": "127.0.0.1"}.get(metrics.bind, metrics.bind)
+    if ":" in host:
+        host = f"[{host}]"
+    return f"http://{host}:{metrics.port}/metrics"

@@ -17,9 +17,13 @@ configured bind address and port.
 
 from __future__ import annotations
 
+import errno
+import logging
 from collections.abc import Sequence
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, start_http_server
+
+from streamrate.errors import ServiceError
 
 EVENT_OUTCOMES = ("applied", "dead_lettered", "duplicate")
 QUERY_KINDS = ("pairing", "lobby", "watch", "invalid")
@@ -259,5 +263,18 @@ class ReplicaMetrics:
 
 
 def serve_metrics(registry: CollectorRegistry, bind: str, port: int) -> None:
-    """Expose ``registry`` over HTTP at ``http://bind:port/metrics`` (daemon thread)."""
-    start_http_server(port, addr=bind, registry=registry)
+    """Expose ``registry`` over HTTP at ``http://bind:port/metrics`` (daemon thread).
+
+    :class:`ServiceError` (one line, no traceback) when the address cannot be taken.
+    """
+    try:
+        start_http_server(port, addr=bind, registry=registry)
+    except OSError as exc:
+        busy = exc.errno == errno.EADDRINUSE
+        why = "is in use by another process" if busy else f"cannot be opened ({exc.strerror})"
+        raise ServiceError(
+            f"metrics address {bind}:{port} {why}: choose another with metrics.port "
+            f"(--set metrics.port=N) or turn metrics off (--set metrics.enabled=false)"
+        ) from exc
+    host = f"[{bind}]" if ":" in bind else bind
+    logging.getLogger("streamrate.service").info("metrics at http://%s:%d/metrics", host, port)

@@ -30,17 +30,22 @@ which Prometheus comparisons treat as false, so it never fires an alert.
 
 from __future__ import annotations
 
+import logging
 import math
 import time
 from collections.abc import Callable, Mapping
 
 from prometheus_client import CollectorRegistry, Counter, Gauge
 
+from streamrate.checkpoint import PartState
 from streamrate.config import QualitySettings
 from streamrate.events import MatchEvent
 from streamrate.models.base import Prediction
 from streamrate.quality import CHANGE_DIRECTIONS, MonitorSettings, QualityMonitor, QualitySnapshot
+from streamrate.quality_state import monitor_from_state, monitor_state
 from streamrate.recalibrate import OnlineRecalibrator
+
+log = logging.getLogger("streamrate.quality")
 
 WINDOWS = ("recent", "reference")
 _QLABELS = ["space", "model", "window", "group"]
@@ -223,6 +228,27 @@ class QualityObserver:
     def publish(self) -> None:
         """Set every gauge from the monitor now."""
         self._publish(self.clock())
+
+    # -- state kept in the checkpoint (streamrate.checkpoint.Stateful) ------------------
+    state_name = "quality"
+
+    def state(self) -> PartState:
+        """The windows, drift windows and change detectors, for the checkpoint."""
+        return monitor_state(self.monitor)
+
+    def load_state(self, part: PartState | None) -> None:
+        """Continue from a checkpoint's state (``None``: none saved, start empty) and
+        publish it at once, so the gauges continue the series they showed before."""
+        settings = self.monitor.settings
+        mon = None if part is None else monitor_from_state(settings, part)
+        if mon is None and part is not None:
+            log.warning(
+                "space %s: the checkpoint's quality windows were kept under other quality "
+                "settings; they start empty",
+                self.space,
+            )
+        self.monitor = mon if mon is not None else QualityMonitor(settings)
+        self.publish()
 
     def _publish(self, now: float) -> None:
         recs = self.recalibrators

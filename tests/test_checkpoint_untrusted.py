@@ -26,7 +26,7 @@ from streamrate.checkpoint import (
 from streamrate.config import Settings, SpaceSettings
 from streamrate.consumer import Consumer
 from streamrate.dedupe import SeenIds
-from streamrate.errors import CheckpointError
+from streamrate.errors import CheckpointError, CheckpointRefusedError
 from streamrate.metrics import ServiceMetrics
 from streamrate.models.base import ModelState
 from streamrate.models.registry import build_model
@@ -247,8 +247,12 @@ def test_the_consumer_names_the_file_and_leftover_temporaries_are_removed(tmp_pa
         ServiceMetrics(CollectorRegistry(), ["duel"]),
         lambda: build_model("elo", compiled=False),
     )
-    with pytest.raises(CheckpointError) as err:
+    # The service refuses to start (CheckpointRefusedError, one line with the ways
+    # out); its cause is the loader's CheckpointError naming the file and the problem.
+    with pytest.raises(CheckpointRefusedError) as err:
         c.load_checkpoint()
-    assert str(err.value).startswith(f"checkpoint {tmp_path / 'duel.ckpt.npz'} refused: ")
+    cause = err.value.__cause__
+    assert isinstance(cause, CheckpointError)
+    assert str(cause).startswith(f"checkpoint {tmp_path / 'duel.ckpt.npz'} refused: ")
     assert "non-finite" in str(err.value)
     assert not leftover.exists()

@@ -52,7 +52,7 @@ def single(model: Model) -> Single:
 
 def _elo_single(m: Elo) -> Single:
     lookup = m.entities_.lookup
-    initial, adv, scale, pow_ = m.initial, m.first_advantage, m.scale, math.pow
+    initial, scale, pow_ = m.initial, m.scale, math.pow
 
     def side(ids: Side) -> float:
         ratings = m.ratings_  # re-read: it grows (a new array) as entities arrive
@@ -63,7 +63,7 @@ def _elo_single(m: Elo) -> Single:
         return total / len(ids)
 
     def predict(first: Side, second: Side, context: dict[str, Any]) -> Prediction:
-        diff = side(first) + adv - side(second)
+        diff = side(first) + float(m.advantage_[0]) - side(second)  # learned: read each time
         return Prediction(1.0 / (1.0 + pow_(10.0, -diff / scale)))
 
     return predict
@@ -85,7 +85,7 @@ def many(
         ratings = model.ratings_
         va = np.where(ra < 0, model.initial, ratings[np.maximum(ra, 0)])
         vb = np.where(rb < 0, model.initial, ratings[np.maximum(rb, 0)])
-        diff = va + model.first_advantage - vb
+        diff = va + float(model.advantage_[0]) - vb
         out[:] = 1.0 / (1.0 + np.power(10.0, -diff / model.scale))
         return out
     if solo and hasattr(model, "encode") and hasattr(model, "predict_encoded"):

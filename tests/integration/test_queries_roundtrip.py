@@ -12,7 +12,13 @@ import pytest
 from prometheus_client import CollectorRegistry
 
 from streamrate.client import ask, follow, send_events
-from streamrate.config import CheckpointSettings, RedisSettings, Settings, SpaceSettings
+from streamrate.config import (
+    CheckpointSettings,
+    MetricsSettings,
+    RedisSettings,
+    Settings,
+    SpaceSettings,
+)
 from streamrate.events import Matchup, event_to_json
 from streamrate.service import Service, redis_factory
 from streamrate.simulate import simulate, world_spec
@@ -34,6 +40,7 @@ def running(redis_server: RedisServer, tmp_path: Path) -> Iterator[tuple[Service
     settings = Settings(
         redis=RedisSettings(url=redis_server.url),
         checkpoint=CheckpointSettings(dir=tmp_path),
+        metrics=MetricsSettings(enabled=False),
         spaces=(space,),
     )
     service = Service(settings, redis_factory(settings.redis), CollectorRegistry())
