@@ -24,7 +24,7 @@ from typing import Any
 import numpy as np
 
 from streamrate import calibration
-from streamrate.client import ask, follow, send_events
+from streamrate.client import ask, follow, new_watcher_id, send_events
 from streamrate.config import (
     CheckpointSettings,
     MetricsSettings,
@@ -251,7 +251,14 @@ def run_demo(
 
 
 def _watch_request(pairings: list[dict[str, list[str]]]) -> dict[str, Any]:
-    return {"kind": "watch", "action": "set", "pairings": pairings}
+    # A watch of its own (per-client); the demo ends long before it would expire.
+    return {
+        "kind": "watch",
+        "action": "set",
+        "watcher": new_watcher_id(),
+        "ttl_s": 60.0,
+        "pairings": pairings,
+    }
 
 
 def _ask(clients: ClientFactory, channel: str, request: dict[str, Any]) -> dict[str, Any]:

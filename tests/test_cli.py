@@ -17,7 +17,7 @@ from streamrate.challengers import format_compare
 from streamrate.cli import app
 from streamrate.config import Settings, load_settings
 from streamrate.evaluate import Report, format_table
-from streamrate.metrics import ServiceMetrics
+from streamrate.metrics import CONSUMER_STATES, ServiceMetrics
 
 ROOT = Path(__file__).resolve().parents[1]
 COMMANDS = [
@@ -124,7 +124,10 @@ def _write_config(path: Path, port: int, enabled: bool = True) -> Path:
 def test_health_finds_the_metrics_address_in_the_settings(tmp_path: Path) -> None:
     port = _free_port()
     registry = CollectorRegistry()
-    ServiceMetrics(registry, ["duel", "squad"])
+    metrics = ServiceMetrics(registry, ["duel", "squad"])
+    for space in ("duel", "squad"):  # a running service's consumers, ready
+        for st in CONSUMER_STATES:
+            metrics.state.labels(space=space, state=st).set(int(st == "ready"))
     server, thread = start_http_server(port, addr="127.0.0.1", registry=registry)
     try:
         cfg = _write_config(tmp_path / "s.toml", port)

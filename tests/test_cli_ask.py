@@ -17,7 +17,7 @@ NOWHERE = ["--redis-url", "redis://127.0.0.1:1/0"]  # never reached: input is ch
         (["watch", "kestrel:kestrel"], "an entity cannot be on both sides: kestrel"),
         (["watch", "kestrel"], "write first,ids:second,ids"),
         (["ask", "kestrel", "kestrel"], "an entity cannot be on both sides: kestrel"),
-        (["ask", "--lobby", "a,b,c"], "cannot be split evenly: give --teams"),
+        (["ask", "--lobby", "a,b,c"], "cannot be split evenly: give --team-size"),
         (["ask", "--lobby", "a,b,c,d", "--teams", "3,3"], "adding up to the 4 ids"),
         (["ask", "--lobby", "a,b", "--teams", "x"], "write two sizes"),
         (["ask"], "give FIRST and SECOND"),

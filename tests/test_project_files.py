@@ -15,7 +15,11 @@ from pathlib import Path
 import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
-LOCAL = {"streamrate", "service_fakes", "tests", "conftest", "helpers"}
+# Our own modules: the package, and the helper modules beside the tests and benchmarks
+# (imported by their bare names from those folders).
+LOCAL = {"streamrate", "tests", "conftest"} | {
+    p.stem for folder in ("tests", "bench") for p in (ROOT / folder).rglob("*.py")
+}
 
 
 def _canonical(name: str) -> str:

@@ -16,6 +16,7 @@ from prometheus_client import CollectorRegistry
 from streamrate.client import ask, send_events, watch
 from streamrate.config import (
     CheckpointSettings,
+    MetricsSettings,
     QuerySettings,
     RedisSettings,
     Settings,
@@ -45,6 +46,7 @@ def _start(
     settings = Settings(
         redis=RedisSettings(url=url, reconnect_min_s=0.02, reconnect_max_s=0.2),
         checkpoint=CheckpointSettings(dir=tmp_path),
+        metrics=MetricsSettings(enabled=False),  # on by default; tests must not share a port
         queries=queries or QuerySettings(),
         spaces=(space,),
     )

@@ -10,7 +10,13 @@ import pytest
 from prometheus_client import CollectorRegistry
 
 from streamrate.client import ask
-from streamrate.config import CheckpointSettings, RedisSettings, Settings, SpaceSettings
+from streamrate.config import (
+    CheckpointSettings,
+    MetricsSettings,
+    RedisSettings,
+    Settings,
+    SpaceSettings,
+)
 from streamrate.service import Service, redis_factory
 
 from .conftest import RedisServer
@@ -25,6 +31,7 @@ def test_the_query_sides_outage_is_counted_beside_the_consumers(
     settings = Settings(
         redis=RedisSettings(url=redis_server.url, reconnect_min_s=0.02, reconnect_max_s=0.2),
         checkpoint=CheckpointSettings(dir=tmp_path),
+        metrics=MetricsSettings(enabled=False),  # on by default; tests must not share a port
         spaces=(SpaceSettings(name="duel", model="elo", block_ms=50),),
     )
     service = Service(settings, redis_factory(settings.redis), CollectorRegistry())

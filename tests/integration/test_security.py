@@ -73,8 +73,9 @@ def _role_config(
         **redis_extra,
     }
     checkpoint = {"store": "redis", "dir": str(tmp_path / "ckpt")}
-    return _toml(tmp_path / f"{role}.toml", {"redis": redis_table, "checkpoint": checkpoint},
-                 _space())  # fmt: skip
+    metrics = {"enabled": False}  # on by default; tests must not share a port
+    tables = {"redis": redis_table, "checkpoint": checkpoint, "metrics": metrics}
+    return _toml(tmp_path / f"{role}.toml", tables, _space())
 
 
 def _ask_json(runner: CliRunner, cfg: Path, *args: str) -> dict[str, object]:

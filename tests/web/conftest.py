@@ -75,7 +75,7 @@ class Stack:
     def start_service(self, metrics: bool | None = None) -> None:
         settings = self.settings
         if metrics is False:  # the metrics port of a stopped service stays bound
-            settings = settings.model_copy(update={"metrics": MetricsSettings()})
+            settings = settings.model_copy(update={"metrics": MetricsSettings(enabled=False)})
         self.stop_event = threading.Event()
         self.service = Service(settings, redis_factory(settings.redis), CollectorRegistry())
         self.service.start(self.stop_event)
