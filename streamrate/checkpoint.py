@@ -157,6 +157,9 @@ class Checkpoint:
     counters: dict[str, int] = field(default_factory=dict)
     written_at_s: float = 0.0
     parts: dict[str, PartState] = field(default_factory=dict)
+    log_id: str = "0-0"
+    """Id of the newest applied-log entry this checkpoint covers ("0-0": none);
+    a replica that loads the checkpoint follows the log after it."""
 
 
 def encode_checkpoint(ckpt: Checkpoint) -> bytes:
@@ -176,6 +179,7 @@ def encode_checkpoint(ckpt: Checkpoint) -> bytes:
         "applied": ckpt.applied,
         "counters": ckpt.counters,
         "written_at_s": ckpt.written_at_s or time.time(),
+        "log_id": ckpt.log_id,
         "parts": {name: part.meta for name, part in ckpt.parts.items()},
     }
     state = ModelState(ckpt.state.kind, ckpt.state.version, ckpt.state.params, arrays)
@@ -228,6 +232,9 @@ def _decode(data: bytes, keep: int, window_s: float) -> Checkpoint:
     written = extra.get("written_at_s") or 0.0
     if not isinstance(written, int | float) or not math.isfinite(written):
         raise StateError("written_at_s is not a time")
+    log_id = extra.get("log_id", "0-0")  # absent: written before the applied log
+    if not isinstance(log_id, str) or not _is_stream_id(log_id):
+        raise StateError(f"log_id {str(log_id)[:40]!r} is not a stream id (ms-seq)")
     check_params(state.params)
     check_arrays(model_arrays)
     if version == 1:  # finish times, no digests: received at the checkpoint, content unknown
@@ -243,7 +250,8 @@ def _decode(data: bytes, keep: int, window_s: float) -> Checkpoint:
         seen,
         {str(k): int(v) for k, v in counters.items()},
         float(written),
-        parts,
+        parts=parts,
+        log_id=log_id,
     )
 
 

@@ -322,18 +322,27 @@ def serve(
         str | None,
         typer.Option("--log-format", help="text, or json: one JSON object per line."),
     ] = None,
+    role: Annotated[
+        str,
+        typer.Option(
+            help="writer: learn, checkpoint and write the applied log; responder: follow the "
+            "writer and answer the request stream; both: one process doing all (default)."
+        ),
+    ] = "both",
 ) -> None:
     """Consume the event stream, keep the model current, answer queries (until SIGTERM)."""
     from streamrate.connect import service_clients
-    from streamrate.errors import StreamrateError
+    from streamrate.errors import ConfigError, StreamrateError
     from streamrate.logs import setup_logging
     from streamrate.service import serve_forever
 
     try:
+        if role not in ("writer", "responder", "both"):
+            raise ConfigError(f"--role {role!r}: one of writer, responder, both")
         extra = [] if log_format is None else [f"log_format={log_format}"]
         settings = _service_settings(config, redis_url, [*(set_ or []), *extra])
         setup_logging(settings.log_level, settings.log_format)
-        code = serve_forever(settings, service_clients(settings.redis))
+        code = serve_forever(settings, service_clients(settings.redis), role)  # type: ignore[arg-type]
     except StreamrateError as exc:
         typer.echo(f"error: {exc}", err=True)
         raise typer.Exit(2) from exc

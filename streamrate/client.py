@@ -90,10 +90,20 @@ def _json_object(data: Any) -> dict[str, Any] | None:
     return obj if isinstance(obj, dict) else None
 
 
-def ask(client: Any, channel: str, request: dict[str, Any], timeout_s: float = 5.0) -> Any:
+def ask(
+    client: Any,
+    channel: str,
+    request: dict[str, Any],
+    timeout_s: float = 5.0,
+    stream: str | None = None,
+    stream_max: int = 10_000,
+) -> Any:
     """Publish ``request`` on ``channel`` and wait for the reply with its id.
 
-    Messages on the reply channel that are not JSON objects with our id are skipped.
+    With ``stream`` (a space's request stream, ``{sr:space}:q:stream``) the request
+    is added there instead, for the responders to share (exactly one answers);
+    the stream is capped near ``stream_max`` entries. Messages on the reply
+    channel that are not JSON objects with our id are skipped.
     """
     req = dict(request)
     req.setdefault("id", uuid.uuid4().hex)
@@ -101,7 +111,9 @@ def ask(client: Any, channel: str, request: dict[str, Any], timeout_s: float = 5
     pubsub = client.pubsub(ignore_subscribe_messages=True)
     pubsub.subscribe(req["reply_to"])
     try:
-        if client.publish(channel, json.dumps(req)) == 0:
+        if stream is not None:
+            client.xadd(stream, {"request": json.dumps(req)}, maxlen=stream_max, approximate=True)
+        elif client.publish(channel, json.dumps(req)) == 0:
             raise ServiceError(f"no service listens on {channel}")
         deadline = time.monotonic() + timeout_s
         while time.monotonic() < deadline:

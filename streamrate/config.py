@@ -17,6 +17,9 @@ slots)::
     {sr:duel}:live     the live feed of watch requests that name no watcher
     {sr:duel}:q:reply:<...>   replies (a request's ``reply_to`` must start so)
     {sr:duel}:q:errors error replies to requests that named no usable reply channel
+    {sr:duel}:applied  the applied log: what the writer applied, in its order (replicas follow it)
+    {sr:duel}:epoch    the writer's epoch counter (INCR at every writer start)
+    {sr:duel}:q:stream requests shared by responders (consumer group ``responders``)
 
 >>> s = Settings(spaces=(SpaceSettings(name="duel"),))
 >>> s.keys(s.spaces[0]).events
@@ -243,6 +246,25 @@ class QuerySettings(BaseModel):
     max_watchers: int = Field(1024, ge=1)
 
 
+class ReplicaSettings(BaseModel):
+    """Replicas (responders, the in-process reader) and the request stream they share."""
+
+    model_config = _FROZEN
+    # A replica more than this many events behind the writer reloads the newest
+    # checkpoint when that checkpoint is ahead of it, rather than replaying the log.
+    max_behind_events: int = Field(50_000, ge=1)
+    # How long one read of the applied log blocks when there is nothing new.
+    block_ms: int = Field(200, ge=1)
+    # Responders' consumer group on the request stream (each responder a consumer).
+    group: str = Field("responders", pattern=_NAME)
+    # Requests older than this (the stream id's clock) are dropped, not answered late.
+    request_max_age_s: float = Field(3.0, gt=0)
+    # The request stream is capped near this many entries (XADD MAXLEN ~ by clients).
+    request_stream_max: int = Field(10_000, ge=100)
+    # The writer keeps the applied log back to the checkpoint before the newest one.
+    log_min_entries: int = Field(1000, ge=0)
+
+
 @dataclass(frozen=True)
 class SpaceKeys:
     """All Redis names of one space (see the module docstring)."""
@@ -255,6 +277,9 @@ class SpaceKeys:
     live: str
     errors: str
     reply_prefix: str = ""
+    applied: str = ""
+    epoch: str = ""
+    request_stream: str = ""
 
     def live_of(self, watcher: str) -> str:
         """The live-feed channel of one watcher (the bare ``live`` for the unnamed one)."""
@@ -273,6 +298,7 @@ class Settings(BaseModel):
     checkpoint: CheckpointSettings = Field(default_factory=CheckpointSettings)
     metrics: MetricsSettings = Field(default_factory=MetricsSettings)
     queries: QuerySettings = Field(default_factory=QuerySettings)
+    replica: ReplicaSettings = Field(default_factory=ReplicaSettings)
     spaces: tuple[SpaceSettings, ...] = (SpaceSettings(),)
 
     @model_validator(mode="after")
@@ -295,6 +321,9 @@ class Settings(BaseModel):
             live=f"{tag}:live",
             errors=f"{tag}:q:errors",
             reply_prefix=f"{tag}:q:reply:",
+            applied=f"{tag}:applied",
+            epoch=f"{tag}:epoch",
+            request_stream=f"{tag}:q:stream",
         )
 
     def space(self, name: str | None = None) -> SpaceSettings:

@@ -37,16 +37,13 @@ import threading
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
-from typing import Any, Literal
+from typing import Any
 
 import redis
 
 from streamrate.checkpoint import (
     Checkpoint,
     CheckpointStore,
-    FileCheckpointStore,
-    RedisCheckpointStore,
-    decode_checkpoint,
     encode_checkpoint,
     load_parts,
     parts_of,
@@ -54,25 +51,37 @@ from streamrate.checkpoint import (
 from streamrate.config import SpaceKeys, SpaceSettings
 from streamrate.deadletters import dead_fields
 from streamrate.dedupe import SeenIds
-from streamrate.errors import CheckpointRefusedError, EventError, StreamrateError
+from streamrate.errors import EventError, StreamrateError
 from streamrate.events import MatchEvent, event_digest, parse_event, time_problem
-from streamrate.livefeed import WatchRegistry, live_messages
+from streamrate.livefeed import WatchRegistry
 from streamrate.metrics import CONSUMER_STATES, ServiceMetrics
-from streamrate.models.base import Model, Prediction, Predictions, warm_up
-from streamrate.models.registry import model_from_state
+from streamrate.models.base import Model, warm_up
+from streamrate.stream.applied_log import AppliedLogWriter
+from streamrate.stream.apply import (
+    Applier,
+    ChunkResult,
+    LiveModel,
+    Observer,
+    Status,
+    redis_publisher,
+)
+from streamrate.stream.checkpoints import RUNTIME_SETTINGS, describe_store, load_checked, refusal
+
+__all__ = [
+    "RUNTIME_SETTINGS",
+    "Consumer",
+    "Entry",
+    "LiveModel",
+    "Observer",
+    "Status",
+    "id_key",
+]
 
 log = logging.getLogger("streamrate.consumer")
 BEHIND_EVERY_S = 2.0
 """How often ``behind`` (the group's lag) is refreshed while the loop runs."""
 PROGRESS_EVERY_S = 30.0
 """How often the consumer logs its progress (events applied, entries behind)."""
-RUNTIME_SETTINGS = frozenset({"compiled", "active"})
-"""Model settings that do not change what a checkpoint means (how kernels run;
-which challenger answers): a checkpoint is not refused over them."""
-
-Observer = Callable[[MatchEvent, Prediction, str], None]
-"""Called after each applied event with (event, prediction made before learning, model kind);
-for a challenger set also once per member with that member's prediction and label."""
 
 Entry = tuple[bytes, dict[bytes, bytes] | None]
 
@@ -84,35 +93,12 @@ def id_key(stream_id: str | bytes) -> tuple[int, int]:
     return int(ms), int(seq or 0)
 
 
-Status = Literal["loading", "ready", "stalled"]
-
-
-@dataclass
-class LiveModel:
-    """The model the queries read; ``lock`` is held only around predict/learn.
-
-    ``status`` (set by the consumer; queries are answered only when ``ready``):
-    ``loading`` until the checkpoint is loaded (or the space is known to start
-    empty), ``ready``, ``stalled`` while the consumer cannot apply events;
-    ``detail`` says why in words. ``behind``: entries the consumer group has not
-    read yet (``None`` when unknown), refreshed every few seconds.
-    """
-
-    model: Model
-    version: str = "0-0"
-    applied: int = 0
-    lock: threading.Lock = field(default_factory=threading.Lock)
-    changed: bool = False  # set (under lock) by a query that changes the model: a promotion
-    status: Status = "ready"  # a model handed over as is; the consumer starts at "loading"
-    detail: str = ""
-    behind: int | None = None
-
-
 @dataclass
 class _Sorted:
     valid: list[tuple[str, MatchEvent]] = field(default_factory=list)
     dead: list[tuple[str, dict[bytes, bytes], str]] = field(default_factory=list)
     dupes: list[str] = field(default_factory=list)
+    raws: dict[str, bytes] = field(default_factory=dict)  # stream id -> event JSON, valid ones
 
 
 class Consumer:
@@ -129,6 +115,7 @@ class Consumer:
         watch: WatchRegistry | None = None,
         observers: Sequence[Observer] = (),
         clock: Callable[[], float] = time.monotonic,
+        log_min_entries: int = 1000,
     ) -> None:
         self.r = client
         self.space = space
@@ -140,6 +127,14 @@ class Consumer:
         self.observers: list[Observer] = list(observers)
         self.clock = clock
         self.live = LiveModel(build_model())
+        self.applier = Applier(
+            self.live, self.watch, keys.live_of, redis_publisher(client), self.observers
+        )
+        # The applied log: what this writer applied, for the replicas to follow.
+        self.log = AppliedLogWriter(client, keys.applied, keys.epoch)
+        self.log_min_entries = log_min_entries
+        self.ckpt_log_id = "0-0"  # applied-log position of the loaded/last checkpoint
+        self.prev_ckpt_log_id = "0-0"  # ... and of the one before (the log is kept back to it)
         self.seen = SeenIds(space.dedupe_keep_ids, space.dedupe_window_s)
         self.last_id = "0-0"
         self.ckpt_id = "0-0"
@@ -172,71 +167,33 @@ class Consumer:
 
     def describe_store(self) -> str:
         """Where the checkpoint lives, in words (for messages)."""
-        if isinstance(self.store, FileCheckpointStore):
-            return f"checkpoint file {self.store.path}"
-        if isinstance(self.store, RedisCheckpointStore):
-            return f"checkpoint in Redis key {self.store.key}"
-        return "checkpoint"
-
-    def _refuse(self, what: str) -> CheckpointRefusedError:
-        where = self.describe_store()
-        if isinstance(self.store, RedisCheckpointStore):
-            aside = f"rename the key aside (RENAME {self.store.key} {self.store.key}.old)"
-        else:
-            aside = "move the file aside"
-        what = " ".join(what.split())  # one line, whatever the cause's message holds
-        return CheckpointRefusedError(
-            f"{where} {what}. Either point space {self.space.name!r} at another checkpoint "
-            f"(checkpoint.dir, the prefix or the space name), or {aside} to start afresh "
-            f"from the stream's first entry"
-        )
+        return describe_store(self.store)
 
     # -- start-up ---------------------------------------------------------------
     def load_checkpoint(self) -> bool:
         """Install the stored checkpoint (True) or an empty model when there is none
         (False); :class:`CheckpointRefusedError` when it is unreadable or was
         written for another model, other settings or in another format."""
-        try:
-            data = self.store.load()
-        except StreamrateError as exc:
-            raise self._refuse(f"cannot be read ({exc})") from exc
-        if data is None:
+        got = load_checked(self.store, self.space, self.build_model)
+        if got is None:
             self._install(self.build_model(), "0-0", 0)
             load_parts(self.observers, {})
             self.seen = SeenIds(self.space.dedupe_keep_ids, self.space.dedupe_window_s)
             self.last_id = self.ckpt_id = "0-0"
+            self.ckpt_log_id = "0-0"
             self.loaded = True
             return False
-        try:
-            ck = decode_checkpoint(data, self.space.dedupe_keep_ids, self.space.dedupe_window_s)
-        except (StreamrateError, ValueError, KeyError, TypeError) as exc:
-            raise self._refuse(f"is not a checkpoint this version reads ({exc})") from exc
-        asked = self.build_model().to_state()
-        if ck.state.kind != asked.kind:
-            raise self._refuse(
-                f"holds model {ck.state.kind!r}, the settings ask for {asked.kind!r}"
-            )
-        diff = _settings_diff(ck.state.params, asked.params)
-        if diff:
-            raise self._refuse(
-                f"holds model {asked.kind!r} with other settings ({diff}) than the settings ask for"
-            )
-        if ck.state.version != asked.version:
-            raise self._refuse(
-                f"holds {asked.kind!r} state of format version {ck.state.version}, "
-                f"this version reads {asked.version}"
-            )
-        try:
-            model = model_from_state(ck.state)
-        except (StreamrateError, ValueError, TypeError, KeyError, IndexError) as exc:
-            raise self._refuse(f"holds {asked.kind!r} state that cannot be loaded ({exc})") from exc
+        ck, model = got
         self._install(model, ck.last_id, ck.applied)
         try:
             load_parts(self.observers, ck.parts)  # quality windows roll back with the model
         except StreamrateError as exc:
-            raise self._refuse(f"holds observer state that cannot be loaded ({exc})") from exc
+            raise refusal(
+                self.store, self.space.name, f"holds observer state that cannot be loaded ({exc})"
+            ) from exc
         self.seen = ck.seen
         self.last_id = self.ckpt_id = ck.last_id
+        self.ckpt_log_id = ck.log_id
         self.counters.update({k: v for k, v in ck.counters.items() if k in self.counters})
         self.counters["applied"] = ck.applied
         self.loaded = True
@@ -258,6 +215,9 @@ class Consumer:
         """
         had_checkpoint = self.load_checkpoint()
         self.to_ack, self.since_ckpt = [], 0
+        # A new epoch: replicas ahead of this checkpoint reload it (see applied_log).
+        self.log.start(self.live.applied, self.ckpt_id, self.ckpt_log_id)
+        self.prev_ckpt_log_id = self.ckpt_log_id
         start = self.ckpt_id if had_checkpoint else self._start_id()
         self._place_group(start, move=not had_checkpoint)
         if not had_checkpoint and start != "0-0":
@@ -415,6 +375,8 @@ class Consumer:
             entries = _entries(resp)
         if entries:
             self.handle(entries)
+        self._log_promotions()
+        self.log.flush()
         self.maybe_checkpoint()
         self.maybe_claim()
         return len(entries)
@@ -441,7 +403,7 @@ class Consumer:
         self._batch_top = top_sid.decode() if isinstance(top_sid, bytes) else top_sid
         sorted_ = self._sort(fresh)
         self._dead_letter(sorted_.dead)
-        self._apply(sorted_.valid)
+        self._apply(sorted_.valid, sorted_.raws)
         ids = [sid for sid, _ in fresh]
         top = max((id_key(s) for s in ids), default=last) if late else max(id_key(ids[-1]), last)
         if top > last:
@@ -457,6 +419,7 @@ class Consumer:
             self.counters[outcome] += n
             if n:
                 self.metrics.events.labels(space=self.space.name, outcome=outcome).inc(n)
+        self.log.flush()
         self.metrics.batch_seconds.labels(**self._lbl).observe(time.perf_counter() - t0)
 
     def _sort(self, entries: list[Entry]) -> _Sorted:
@@ -506,6 +469,7 @@ class Consumer:
             batch[mid] = digest
             self._digests[sid] = digest
             out.valid.append((sid, ev))
+            out.raws[sid] = raw
         return out
 
     def _remember(self, part: list[tuple[str, MatchEvent]]) -> None:
@@ -533,49 +497,6 @@ class Consumer:
             elif isinstance(res, Exception):
                 raise res
 
-    def _learn(
-        self, part: list[tuple[str, MatchEvent]], messages: list[tuple[str, str]]
-    ) -> tuple[list[tuple[float, float]], dict[str, Predictions]]:
-        """Predict-then-learn one chunk under the model lock; live messages appended.
-
-        Returns the served predictions and, by label, those of the models inside
-        the model (challenger members, the raw model under a recalibration), for
-        every event of the chunk on either path."""
-        live = self.live
-        events = [ev for _, ev in part]
-        with live.lock:
-            if not self.watch.touches(e for ev in events for e in ev.entities()):
-                got = live.model.learn_scored(events)
-                preds = list(
-                    zip(got.served.p_win.tolist(), got.served.p_draw.tolist(), strict=True)
-                )
-                members = got.parts
-            else:
-                preds = []
-                rows: dict[str, list[tuple[float, float]]] = {}
-                for sid, ev in part:
-                    one = live.model.learn_scored([ev])
-                    preds.append((float(one.served.p_win[0]), float(one.served.p_draw[0])))
-                    for label, mp in one.parts.items():
-                        rows.setdefault(label, []).append((float(mp.p_win[0]), float(mp.p_draw[0])))
-                    hit = self.watch.affected(ev.entities())
-                    if hit:
-                        messages += live_messages(
-                            live.model,
-                            hit,
-                            sid,
-                            ev.match_id,
-                            self.keys.live_of,
-                            self.watch.next_seq,
-                        )
-                members = {
-                    label: Predictions.from_list([Prediction(*r) for r in got_rows])
-                    for label, got_rows in rows.items()
-                }
-            live.applied += len(part)
-            live.version = part[-1][0]
-        return preds, members
-
     def failed(self) -> None:
         """The loop failed while handling a batch. Until past that batch, apply one
         event at a time: if the model itself cannot learn from an event, that event
@@ -587,15 +508,14 @@ class Consumer:
     def careful(self) -> bool:
         return id_key(self.last_id) < id_key(self.careful_until)
 
-    def _apply(self, valid: list[tuple[str, MatchEvent]]) -> None:
-        kind = self.live.model.kind
+    def _apply(self, valid: list[tuple[str, MatchEvent]], raws: dict[str, bytes]) -> None:
+        """Apply in chunks through the shared :class:`Applier`; log each chunk."""
         chunk = 1 if self.careful else self.space.lock_chunk
         for start in range(0, len(valid), chunk):
             part = valid[start : start + chunk]
-            events = [ev for _, ev in part]
-            messages: list[tuple[str, str]] = []
+            seq = self.live.applied  # only this thread changes it
             try:
-                preds, members = self._learn(part, messages)
+                got: ChunkResult = self.applier.learn(part)
             except Exception as exc:
                 if len(part) == 1:  # careful mode: this is the event the model rejects
                     self.poison[part[0][0]] = (
@@ -603,17 +523,16 @@ class Consumer:
                     )[:500]
                 raise
             self._remember(part)
-            if messages:
-                pipe = self.r.pipeline(transaction=False)
-                for channel, m in messages:
-                    pipe.publish(channel, m)
-                pipe.execute()
-                self.metrics.live_published.labels(**self._lbl).inc(len(messages))
-            for i, (ev, p) in enumerate(zip(events, preds, strict=True)):
-                for obs in self.observers:
-                    obs(ev, Prediction(p[0], p[1]), kind)
-                    for label, mp in members.items():
-                        obs(ev, Prediction(float(mp.p_win[i]), float(mp.p_draw[i])), label)
+            for model in got.promoted:  # made before this chunk, under the same lock
+                self.log.promote(seq, model)
+            self.log.chunk(seq, [sid for sid, _ in part], [raws[sid] for sid, _ in part])
+            if got.published:
+                self.metrics.live_published.labels(**self._lbl).inc(got.published)
+            self.applier.notify(part, got)
+
+    def _log_promotions(self) -> None:
+        for model in self.applier.take_promotions():
+            self.log.promote(self.live.applied, model)
 
     # -- checkpoint and acknowledge -----------------------------------------------
     def maybe_checkpoint(self) -> None:
@@ -630,6 +549,10 @@ class Consumer:
                 state = self.live.model.to_state()
                 self.live.changed = False
                 applied = self.live.applied
+                promoted, self.live.promoted = self.live.promoted, []
+            for model in promoted:  # in the state above: logged before it is saved
+                self.log.promote(applied, model)
+            log_id = self.log.flush()
             blob = encode_checkpoint(
                 Checkpoint(
                     state,
@@ -638,10 +561,12 @@ class Consumer:
                     self.seen,
                     dict(self.counters),
                     parts=parts_of(self.observers),
+                    log_id=log_id,
                 )
             )
             self.store.save(blob)
             self.ckpt_id = self.last_id
+            self.prev_ckpt_log_id, self.ckpt_log_id = self.ckpt_log_id, log_id
             self.since_ckpt = 0
             self.metrics.checkpoint_seconds.labels(**self._lbl).observe(time.perf_counter() - t0)
             self.metrics.checkpoint_time.labels(**self._lbl).set(time.time())
@@ -651,6 +576,7 @@ class Consumer:
             self.r.xack(self.keys.events, self.space.group, *part)
             del self.to_ack[: len(part)]
         self._trim()
+        self.log.trim(self.prev_ckpt_log_id, self.log_min_entries)
         self._gauges()
 
     def _trim(self) -> None:
@@ -737,35 +663,3 @@ def _conflict(match_id: str) -> str:
         f"match_id: {match_id!r} was applied before with other content "
         "(a reused id, not a retry; the first event stands)"
     )
-
-
-def _plain(value: Any) -> Any:
-    """Settings as JSON-like values for comparison: lists for tuples, floats for
-    numbers, runtime-only keys left out."""
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items() if k not in RUNTIME_SETTINGS}
-    if isinstance(value, list | tuple):
-        return [_plain(v) for v in value]
-    if isinstance(value, int | float) and not isinstance(value, bool):
-        return float(value)
-    return value
-
-
-def _settings_diff(saved: dict[str, Any], asked: dict[str, Any], limit: int = 3) -> str:
-    """The settings that differ, in words (empty when they agree)."""
-    a, b = _plain(saved), _plain(asked)
-    if a == b:
-        return ""
-    keys = sorted(set(a) | set(b))
-    parts = [
-        f"{k}: {_short(a.get(k, 'unset'))} in the checkpoint, {_short(b.get(k, 'unset'))} asked"
-        for k in keys
-        if a.get(k) != b.get(k)
-    ]
-    more = f"; and {len(parts) - limit} more" if len(parts) > limit else ""
-    return "; ".join(parts[:limit]) + more
-
-
-def _short(value: Any, width: int = 60) -> str:
-    text = repr(value)
-    return text if len(text) <= width else text[: width - 3] + "..."

@@ -7,7 +7,8 @@ Every error the package raises on purpose derives from :class:`StreamrateError`:
     ├── ConfigError         settings that cannot be used
     ├── StateError          a saved model state or checkpoint cannot be loaded
     │   ├── StateVersionError   written by an incompatible format version
-    │   └── CheckpointError     a checkpoint refused as input (names the file and the problem)
+    │   ├── CheckpointError     a checkpoint refused as input (names the file and the problem)
+    │   └── AppliedLogError     an applied-log entry a replica cannot follow
     └── ServiceError        the running service cannot go on (Redis, checkpoint store)
         └── CheckpointRefusedError  the checkpoint is unreadable or not of these settings
 
@@ -47,6 +48,10 @@ class CheckpointError(StateError):
 
     The message names the checkpoint (file path or Redis key) and the problem.
     """
+
+
+class AppliedLogError(StateError):
+    """An entry of the applied log that is malformed: the replica reloads the checkpoint."""
 
 
 class CheckpointRefusedError(ServiceError):

@@ -218,6 +218,50 @@ class ServiceMetrics:
                     self.queries.labels(space=s, kind=k, outcome=o)
 
 
+REPLICA_RELOADS = ("initial", "writer_restart", "gap", "behind", "error")
+"""Why a replica loaded the checkpoint: its first load; a writer restarted below
+it; entries missing from the applied log (trimmed); too far behind; after an error."""
+_LAG_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 5.0)
+
+
+class ReplicaMetrics:
+    """Series of replicas following the applied log (responders, in-process readers)."""
+
+    def __init__(self, registry: CollectorRegistry, spaces: Sequence[str]) -> None:
+        r = registry
+        self.lag_events = Gauge(
+            "streamrate_replica_lag_events",
+            "Events the writer has applied and this replica not yet (last measured).",
+            ["space"],
+            registry=r,
+        )
+        self.lag_seconds = Histogram(
+            "streamrate_replica_lag_seconds",
+            "From the writer appending a chunk to the applied log to this replica applying it.",
+            ["space"],
+            buckets=_LAG_BUCKETS,
+            registry=r,
+        )
+        self.applied = Counter(
+            "streamrate_replica_applied_events_total",
+            "Events this replica applied from the applied log.",
+            ["space"],
+            registry=r,
+        )
+        self.reloads = Counter(
+            "streamrate_replica_checkpoint_reloads_total",
+            "Times this replica loaded the newest checkpoint, by reason.",
+            ["space", "reason"],
+            registry=r,
+        )
+        for s in spaces:
+            self.lag_events.labels(space=s)
+            self.lag_seconds.labels(space=s)
+            self.applied.labels(space=s)
+            for reason in REPLICA_RELOADS:
+                self.reloads.labels(space=s, reason=reason)
+
+
 def serve_metrics(registry: CollectorRegistry, bind: str, port: int) -> None:
     """Expose ``registry`` over HTTP at ``http://bind:port/metrics`` (daemon thread).
 

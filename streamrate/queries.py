@@ -469,6 +469,8 @@ class Answerer:
 
     def promote(self, req: PromoteRequest) -> dict[str, Any]:
         self._ready()
+        if not getattr(self.view, "writable", True):
+            raise QueryError("promote goes to the writer; this replica follows it")
         # Under the model lock: the consumer learns whole chunks under it, so the
         # switch falls between two chunks, never inside one.
         with self.view.lock:
@@ -480,6 +482,9 @@ class Answerer:
                 raise QueryError(f"model: {exc}") from exc
             if model.active != previous:
                 self.view.changed = True  # saved by the next checkpoint, events or not
+                pending = getattr(self.view, "promoted", None)
+                if pending is not None:  # the writer logs it for the replicas
+                    pending.append(model.active)
                 log.info("promotion: %s answers now (was %s)", model.active, previous)
             meta = self._meta()
         return {"previous": previous, **meta}

@@ -1,5 +1,12 @@
 """Running the service: threads per space, signals, reconnect with backoff, drain.
 
+Roles (``streamrate serve --role``): ``writer`` runs the consumer (the only
+process that learns, checkpoints, acknowledges and dead-letters; it writes the
+applied log) and answers today's pub/sub requests; ``both`` (the default, one
+process as before) does that and also answers from the request stream;
+``responder`` runs a replica per space (:mod:`streamrate.replica.space`) that
+follows the writer's applied log and answers from the request stream.
+
 Per model space two threads run: the consumer (:mod:`streamrate.consumer`) and
 the query responder (pub/sub, its own Redis connection, reads the live model
 under its lock). ``SIGTERM``/``SIGINT`` set a stop flag: the consumer finishes
@@ -21,7 +28,7 @@ import threading
 import time
 from collections.abc import Callable, Sequence
 from functools import partial
-from typing import Any
+from typing import Any, Literal
 
 import redis
 from prometheus_client import CollectorRegistry
@@ -32,18 +39,22 @@ from streamrate.connect import RedisClients
 from streamrate.consumer import Consumer, Observer
 from streamrate.errors import CheckpointRefusedError
 from streamrate.livefeed import WatchRegistry
-from streamrate.metrics import ServiceMetrics, serve_metrics
+from streamrate.metrics import ReplicaMetrics, ServiceMetrics, serve_metrics
 from streamrate.models.base import Model
 from streamrate.models.registry import build_model
 from streamrate.quality_metrics import QualityMetrics, QualityObserver, quality_observers
 from streamrate.queries import MAX_WATCH
 from streamrate.recalibrate import OnlineRecalibrator, recalibrators_of
+from streamrate.replica.request_stream import StreamResponder
+from streamrate.replica.space import ReplicaSpace
 from streamrate.responder import Responder
 
 log = logging.getLogger("streamrate.service")
 REDIS_DOWN = (redis.ConnectionError, redis.TimeoutError)
 QUERY_SWITCH_INTERVAL_S = 0.0002
 ClientFactory = Callable[[], Any]
+Role = Literal["writer", "responder", "both"]
+ROLES: tuple[Role, ...] = ("writer", "responder", "both")
 
 
 def redis_factory(settings: RedisSettings) -> ClientFactory:
@@ -152,8 +163,10 @@ class SpaceService:
         observers: Sequence[Observer] = (),
         model_builder: Callable[[], Model] | None = None,
         clock: Callable[[], float] = time.monotonic,
+        role: Role = "both",
     ) -> None:
         self.settings, self.space, self.clients, self.metrics = settings, space, clients, metrics
+        self.role = role
         self.keys = settings.keys(space)
         self.watch = WatchRegistry(MAX_WATCH, settings.queries.max_watchers)
         client = clients()
@@ -164,7 +177,16 @@ class SpaceService:
             store = FileCheckpointStore(settings.checkpoint.dir, space.name)
         builder = model_builder or (lambda: build_model(space.model, **space.model_settings))
         self.consumer = Consumer(
-            client, space, self.keys, store, metrics, builder, self.watch, observers, clock
+            client,
+            space,
+            self.keys,
+            store,
+            metrics,
+            builder,
+            self.watch,
+            observers,
+            clock,
+            log_min_entries=settings.replica.log_min_entries,
         )
         self.ready = threading.Event()  # the consumer has recovered and is reading
         self.fatal: CheckpointRefusedError | None = None  # set when the space cannot start
@@ -174,6 +196,30 @@ class SpaceService:
         )
         self.listening = self.responder.listening  # the query responder is subscribed
         self.answerer = self.responder.answerer
+        # In one process (role "both") the writer also answers the request stream.
+        self.stream: StreamResponder | None = None
+        if role == "both":
+            self.stream = StreamResponder(
+                space, self.keys, settings.replica, self.responder, metrics
+            )
+
+    def threads(self, stop: threading.Event) -> list[threading.Thread]:
+        name = self.space.name
+        out = [
+            threading.Thread(target=fn, args=(stop,), name=f"{role}-{name}", daemon=True)
+            for fn, role in ((self.consume, "consumer"), (self.respond, "queries"))
+        ]
+        if self.stream is not None:
+            rs = self.settings.redis
+            out.append(
+                threading.Thread(
+                    target=self.stream.run,
+                    args=(stop, self.clients, rs.reconnect_min_s, rs.reconnect_max_s),
+                    name=f"responder-{name}",
+                    daemon=True,
+                )
+            )
+        return out
 
     # -- consumer thread --------------------------------------------------------
     def consume(self, stop: threading.Event) -> None:
@@ -274,10 +320,21 @@ class Service:
         registry: CollectorRegistry | None = None,
         observers: Sequence[Observer] = (),
         clock: Callable[[], float] = time.monotonic,
+        role: Role = "both",
     ) -> None:
         self.settings = settings
+        self.role = role
         self.registry = registry or CollectorRegistry()
         self.metrics = ServiceMetrics(self.registry, [s.name for s in settings.spaces])
+        self.replicas: list[ReplicaSpace] = []
+        self.spaces: list[SpaceService] = []
+        self.threads: list[threading.Thread] = []
+        if role == "responder":
+            rm = ReplicaMetrics(self.registry, [s.name for s in settings.spaces])
+            self.replicas = [
+                ReplicaSpace(settings, s, clients, self.metrics, rm) for s in settings.spaces
+            ]
+            return
         self.quality = QualityMetrics(self.registry)
         self.spaces = [
             SpaceService(
@@ -287,6 +344,7 @@ class Service:
                 self.metrics,
                 [*observers, *quality_observers(s.name, s.quality, self.quality)],
                 clock=clock,
+                role=role,
             )
             for s in settings.spaces
         ]
@@ -294,19 +352,18 @@ class Service:
             for obs in sp.consumer.observers:
                 if isinstance(obs, QualityObserver):
                     obs.recalibrators = partial(_live_recalibrators, sp.consumer)
-        self.threads: list[threading.Thread] = []
 
     def start(self, stop: threading.Event) -> None:
         m = self.settings.metrics
         if m.enabled:
             serve_metrics(self.registry, m.bind, m.port)
         for sp in self.spaces:
-            for target, role in ((sp.consume, "consumer"), (sp.respond, "queries")):
-                t = threading.Thread(
-                    target=target, args=(stop,), name=f"{role}-{sp.space.name}", daemon=True
-                )
-                t.start()
-                self.threads.append(t)
+            self.threads += sp.threads(stop)
+        for rp in self.replicas:
+            self.threads += rp.threads(stop)
+            log.info("space %s: responder %s following the writer", rp.space.name, rp.stream.name)
+        for t in self.threads:
+            t.start()
 
     def join(self) -> None:
         for t in self.threads:
@@ -323,7 +380,7 @@ class Service:
                 raise sp.fatal
 
 
-def serve_forever(settings: Settings, clients: ClientFactory) -> int:
+def serve_forever(settings: Settings, clients: ClientFactory, role: Role = "both") -> int:
     """Run until SIGTERM/SIGINT; return the exit code."""
     stop = threading.Event()
 
@@ -338,5 +395,5 @@ def serve_forever(settings: Settings, clients: ClientFactory) -> int:
     # the whole interval; a shorter one bounds that wait (bench/bench_service.py
     # measures query latency while the consumer is busy).
     sys.setswitchinterval(QUERY_SWITCH_INTERVAL_S)
-    Service(settings, clients).run(stop)
+    Service(settings, clients, role=role).run(stop)
     return 0

@@ -1,0 +1,81 @@
+"""One space in a responder process: a replica of the model and a request-stream responder.
+
+Threads: the follower (:class:`~streamrate.replica.follower.Follower`) keeps the
+model current from the applied log; the responder
+(:class:`~streamrate.replica.request_stream.StreamResponder`) answers the
+requests it takes from the space's request stream from that model. Nothing is
+acknowledged on the event stream, checkpointed or dead-lettered here.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Callable
+from typing import Any
+
+from streamrate.checkpoint import CheckpointStore, FileCheckpointStore, RedisCheckpointStore
+from streamrate.config import Settings, SpaceSettings
+from streamrate.livefeed import WatchRegistry
+from streamrate.metrics import ReplicaMetrics, ServiceMetrics
+from streamrate.models.registry import build_model
+from streamrate.queries import MAX_WATCH
+from streamrate.replica.follower import Follower
+from streamrate.replica.request_stream import StreamResponder
+from streamrate.responder import Responder
+
+ClientFactory = Callable[[], Any]
+
+
+class ReplicaSpace:
+    """Follower + request-stream responder of one space."""
+
+    def __init__(
+        self,
+        settings: Settings,
+        space: SpaceSettings,
+        clients: ClientFactory,
+        metrics: ServiceMetrics,
+        replica_metrics: ReplicaMetrics,
+    ) -> None:
+        self.settings, self.space, self.clients = settings, space, clients
+        self.keys = settings.keys(space)
+        client = clients()
+        store: CheckpointStore
+        if settings.checkpoint.store == "redis":
+            store = RedisCheckpointStore(client, self.keys.ckpt)
+        else:
+            store = FileCheckpointStore(settings.checkpoint.dir, space.name)
+        watch = WatchRegistry(MAX_WATCH, settings.queries.max_watchers)  # watches go to the writer
+        self.follower = Follower(
+            client,
+            space,
+            self.keys,
+            store,
+            lambda: build_model(space.model, **space.model_settings),
+            settings.replica,
+            replica_metrics,
+            metrics,
+        )
+        self.responder = Responder(
+            settings, space, self.keys, clients, metrics, self.follower.live, watch
+        )
+        self.stream = StreamResponder(space, self.keys, settings.replica, self.responder, metrics)
+        self.fatal: Exception | None = None
+
+    def threads(self, stop: threading.Event) -> list[threading.Thread]:
+        rs = self.settings.redis
+        name = self.space.name
+        return [
+            threading.Thread(
+                target=self.follower.run,
+                args=(stop, rs.reconnect_min_s, rs.reconnect_max_s),
+                name=f"replica-{name}",
+                daemon=True,
+            ),
+            threading.Thread(
+                target=self.stream.run,
+                args=(stop, self.clients, rs.reconnect_min_s, rs.reconnect_max_s),
+                name=f"responder-{name}",
+                daemon=True,
+            ),
+        ]

@@ -1,0 +1,1 @@
+"""The writer's data path, step by step: apply, the applied log, checkpoint loading."""
