@@ -24,16 +24,19 @@ from __future__ import annotations
 import argparse
 import gc
 import math
+import sys
 import time
 import tracemalloc
 from collections.abc import Callable
 from datetime import UTC, datetime, timedelta
+from pathlib import Path
 
 import numpy as np
 
 from streamrate.batch import EncodedBatch
 from streamrate.encode import EntityTable
 from streamrate.events import MatchEvent
+from streamrate.models.base import Model
 from streamrate.models.matchup import BladeChest, BladeChestDistance, BradleyTerry, MatchupModel
 
 
@@ -151,24 +154,36 @@ def model_runner(
 PLAIN: dict[str, object] = {"context": "none"}
 
 
-def make_events(n: int, n_ent: int, seed: int = 2) -> list[MatchEvent]:
-    """Pre-parsed 1v1 events with a map and a mode, as the consumer hands them on."""
+def make_events(n: int, n_ent: int, seed: int = 2, teams: bool = False) -> list[MatchEvent]:
+    """Pre-parsed 1v1 events with a map and a mode, as the consumer hands them on;
+    with ``teams`` every third match is two against two and one in ten a draw."""
     rng = np.random.default_rng(seed)
     i = rng.integers(0, n_ent, n)
     j = (i + rng.integers(1, n_ent, n)) % n_ent
+    i2 = (i + rng.integers(1, n_ent, n)) % n_ent
+    j2 = (i + rng.integers(1, n_ent, n)) % n_ent
     maps = ("saltflats", "ember-quarry", "glasswood", "sunken-bell")
     start = datetime(2026, 3, 1, tzinfo=UTC)
-    return [
-        MatchEvent(
-            match_id=f"m-{k}",
-            finished_at=start + timedelta(seconds=10 * k),
-            first=(f"quill-{i[k]}",),
-            second=(f"quill-{j[k]}",),
-            score=float(rng.random() < 0.5),
-            context={"map": maps[k % 4], "mode": "duel"},
+    out = []
+    for k in range(n):
+        first, second = (f"quill-{i[k]}",), (f"quill-{j[k]}",)
+        duo = teams and k % 3 == 0 and len({i[k], j[k], i2[k], j2[k]}) == 4
+        if duo:
+            first, second = (*first, f"quill-{i2[k]}"), (*second, f"quill-{j2[k]}")
+        score = float(rng.random() < 0.5)
+        if teams and k % 10 == 5:
+            score = 0.5
+        out.append(
+            MatchEvent(
+                match_id=f"m-{k}",
+                finished_at=start + timedelta(seconds=10 * k),
+                first=first,
+                second=second,
+                score=score,
+                context={"map": maps[k % 4], "mode": "duo" if duo else "duel"},
+            )
         )
-        for k in range(n)
-    ]
+    return out
 
 
 def speed_events(n: int, n_ent: int) -> None:
@@ -199,6 +214,47 @@ def speed_events(n: int, n_ent: int) -> None:
     print(f"{'path':<62}{'events/s':>12}{'/ elo':>8}")
     for name, rate in rates.items():
         print(f"{name:<62}{rate:>12,.0f}{rate / rates['elo']:>8.2f}")
+
+
+def speed_ratings(n: int, n_ent: int, n_slow: int) -> None:
+    """Glicko-2 and TrueSkill on pre-parsed MatchEvent objects (encoding included):
+    the former plain-Python models (tests/rating_reference.py, the baseline) against
+    the compiled loops and their uncompiled run, sequential and in mini-batches."""
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
+    from rating_reference import ReferenceGlicko2, ReferenceTrueSkill
+
+    from streamrate.models.glicko2 import Glicko2
+    from streamrate.models.trueskill import TrueSkill
+
+    events = make_events(n, n_ent, teams=True)
+    slow = events[:n_slow]
+    print(f"\n{n:,} pre-parsed MatchEvent objects (1v1 and 2v2, some draws), {n_ent:,} entities;")
+    print(f"plain-Python and uncompiled paths on the first {n_slow:,}")
+    print(f"{'path':<62}{'events/s':>12}{'x plain':>10}")
+    for name, ref, fast in (
+        ("glicko2", ReferenceGlicko2, Glicko2),
+        ("trueskill", ReferenceTrueSkill, TrueSkill),
+    ):
+        fast(compiled=True).learn_many(events[:50])  # compile / load the cache untimed
+        rows: list[tuple[str, Callable[[], Model], list[MatchEvent], int]] = [
+            ("plain Python (before), learn_many", ref, slow, 0),
+            ("plain Python (before), learn_batch 100", ref, slow, 100),
+            ("uncompiled loops (fallback), learn_many", lambda f=fast: f(compiled=False), slow, 0),
+            ("compiled, learn_many", fast, events, 0),
+            ("compiled, learn_batch 100", fast, events, 100),
+            ("compiled, learn_batch 1000", fast, events, 1000),
+        ]
+        base = 0.0
+        for label, make, evs, size in rows:
+            m = make()
+            if size:
+                parts = [evs[k : k + size] for k in range(0, len(evs), size)]
+                t = timed(lambda m=m, parts=parts: [m.learn_batch(p) for p in parts], repeat=1)
+            else:
+                t = timed(lambda m=m, evs=evs: m.learn_many(evs), repeat=1)
+            rate = len(evs) / t
+            base = base or rate
+            print(f"{name + ' ' + label:<62}{rate:>12,.0f}{rate / base:>10.1f}")
 
 
 def speed(n: int, n_ent: int, n_slow: int) -> None:
@@ -272,11 +328,19 @@ def main() -> None:
     ap.add_argument("--entities", type=int, default=100_000)
     ap.add_argument("--slow-events", type=int, default=20_000)
     ap.add_argument("--parsed-events", type=int, default=200_000)
+    ap.add_argument("--rating-events", type=int, default=200_000)
+    ap.add_argument("--only", choices=("encoded", "parsed", "ratings", "memory"), default=None)
     ap.add_argument("--memory-entities", type=int, default=1_000_000)
     args = ap.parse_args()
-    speed(args.events, args.entities, args.slow_events)
-    speed_events(args.parsed_events, args.entities)
-    memory(args.memory_entities)
+    run = {
+        "encoded": lambda: speed(args.events, args.entities, args.slow_events),
+        "parsed": lambda: speed_events(args.parsed_events, args.entities),
+        "ratings": lambda: speed_ratings(args.rating_events, args.entities, args.slow_events),
+        "memory": lambda: memory(args.memory_entities),
+    }
+    for name, part in run.items():
+        if args.only in (None, name):
+            part()
 
 
 if __name__ == "__main__":
