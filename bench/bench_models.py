@@ -186,15 +186,27 @@ def make_events(n: int, n_ent: int, seed: int = 2, teams: bool = False) -> list[
     return out
 
 
+def _former_encoder() -> Callable[..., EncodedBatch]:
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
+    from encode_reference import reference_encode_events
+
+    return reference_encode_events  # type: ignore[no-any-return]
+
+
 def speed_events(n: int, n_ent: int) -> None:
     """Events/s through ``learn_many`` on pre-parsed MatchEvent objects: encoding
     (id lookups, context hashing) plus the compiled update, the path that replay
-    and the service take; timed on a second pass over the same events."""
-    from streamrate.models.elo import Elo
+    and the service take; timed on a second pass over the same events. Each path
+    runs with the package's one-pass encoder and, in the same run, with the former
+    encoder (tests/encode_reference.py) swapped in: the per-event cost of both."""
+    from streamrate.models import elo, glicko2, matchup, trueskill
 
-    events = make_events(n, n_ent)
-    makers: list[tuple[str, Callable[[], object]]] = [
-        ("elo", Elo),
+    modules = (elo, glicko2, matchup, trueskill)
+    current, former = matchup.encode_events, _former_encoder()
+    makers: list[tuple[str, Callable[[], Model]]] = [
+        ("elo", elo.Elo),
+        ("glicko2", glicko2.Glicko2),
+        ("trueskill", trueskill.TrueSkill),
         ("bradley_terry", BradleyTerry),
         *[
             (f"blade_chest d={d} (context none)", lambda d=d: BladeChest(dims=d, **PLAIN))
@@ -203,17 +215,30 @@ def speed_events(n: int, n_ent: int) -> None:
         ("blade_chest d=16 (context stacked)", lambda: BladeChest(dims=16)),
         ("blade_chest defaults (d=8, stacked)", BladeChest),
     ]
-    rates: dict[str, float] = {}
-    for name, make in makers:
-        m = make()
-        # A first pass registers the ids (and compiles); the timed second pass is
-        # the steady state of a long-running stream, where most ids are known.
-        m.learn_many(events)  # type: ignore[attr-defined]
-        rates[name] = n / timed(lambda m=m: m.learn_many(events), repeat=1)  # type: ignore[attr-defined]
-    print(f"\n{n:,} pre-parsed 1v1 MatchEvent objects (map + mode context) through learn_many")
-    print(f"{'path':<62}{'events/s':>12}{'/ elo':>8}")
-    for name, rate in rates.items():
-        print(f"{name:<62}{rate:>12,.0f}{rate / rates['elo']:>8.2f}")
+    for teams in (False, True):
+        events = make_events(n, n_ent, teams=teams)
+        rows: list[tuple[str, float, float]] = []
+        for name, make in makers:
+            cost = []
+            for encoder in (former, current):
+                for mod in modules:
+                    mod.encode_events = encoder  # type: ignore[attr-defined]
+                m = make()
+                # A first pass registers the ids (and compiles); the timed second pass
+                # is the steady state of a long-running stream, where most ids are known.
+                m.learn_many(events)
+                cost.append(timed(lambda m=m, ev=events: m.learn_many(ev), repeat=3) / n)
+            rows.append((name, cost[0], cost[1]))
+        for mod in modules:
+            mod.encode_events = current  # type: ignore[attr-defined]
+        kind = "1v1 and 2v2 (every third), draws" if teams else "1v1"
+        print(f"\n{n:,} pre-parsed {kind} MatchEvent objects (map + mode context), learn_many")
+        print(f"{'path':<44}{'events/s':>12}{'/ elo':>7}{'us/ev before':>14}{'after':>8}{'x':>6}")
+        elo_rate = 1.0 / rows[0][2]
+        for name, before, after in rows:
+            rate = 1.0 / after
+            print(f"{name:<44}{rate:>12,.0f}{rate / elo_rate:>7.2f}{before * 1e6:>14.2f}"
+                  f"{after * 1e6:>8.2f}{before / after:>6.2f}")  # fmt: skip
 
 
 def speed_ratings(n: int, n_ent: int, n_slow: int) -> None:

@@ -33,8 +33,12 @@ Example:
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from datetime import datetime
+from itertools import chain, repeat
+from operator import add as add_tuples
+from operator import attrgetter, itemgetter
 
 import numpy as np
 
@@ -42,6 +46,9 @@ from streamrate.encode import EntityTable, FeatureHasher
 from streamrate.events import Matchup
 
 _NAN = math.nan
+_FIRST, _SECOND = attrgetter("first"), attrgetter("second")
+_SCORE, _FINISHED = attrgetter("score"), attrgetter("finished_at")
+_ONLY = itemgetter(0)
 _EMPTY_I = np.zeros((0, 0, 0), dtype=np.int32)
 _EMPTY_F = np.zeros((0, 0, 0), dtype=np.float64)
 
@@ -85,47 +92,47 @@ class EncodedBatch:
         return self.feat_idx.ndim == 3 and self.feat_idx.shape[0] == len(self) > 0
 
 
-def _rows(
-    sides: list[tuple[str, ...]], get: Callable[[str, int], int]
-) -> tuple[np.ndarray, np.ndarray, bool]:
-    """(rows padded with -1, sizes, whether a real member is unknown).
+def _members(
+    events: Sequence[Matchup], table: EntityTable, add: bool
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """(first rows, first sizes, second rows, second sizes) of a batch, in one pass.
 
-    ``get(id, -1)`` is the table's dict lookup itself: this runs for every
-    entity of every event, so no Python-level wrapper sits in between.
+    Ids are looked up by ``map`` over the table's own dict lookup straight into
+    numpy (no per-event lists); with teams, all member ids of the batch form one
+    flat list in event order (first side, then second side) and numpy lays them
+    out padded. New ids get rows in that order, exactly as one-event-at-a-time
+    encoding would hand them out, so row numbers (and anything seeded by them)
+    do not depend on how a stream was cut into batches.
     """
-    n = len(sides)
-    width = max(map(len, sides), default=1)
-    if width == 1:
-        out = [get(s[0], -1) for s in sides]
-        unknown = -1 in out
-        return np.array(out, dtype=np.int32).reshape(n, 1), np.ones(n, dtype=np.int32), unknown
-    flat: list[int] = []
-    pad = [-1] * width
-    sizes = []
-    unknown = False
-    for s in sides:
-        k = len(s)
-        sizes.append(k)
-        members = [get(e, -1) for e in s]
-        if -1 in members:
-            unknown = True
-        flat.extend(members)
-        if k < width:
-            flat.extend(pad[k:])
-    rows = np.array(flat, dtype=np.int32).reshape(n, width)
-    return rows, np.array(sizes, dtype=np.int32), unknown
-
-
-def _register(events: Sequence[Matchup], table: EntityTable) -> None:
-    # Rows are handed out in event order (first side, then second side), exactly
-    # as one-event-at-a-time encoding would, so row numbers (and anything seeded
-    # by them) do not depend on how a stream was cut into batches.
-    row = table.row
-    for e in events:
-        for x in e.first:
-            row(x)
-        for x in e.second:
-            row(x)
+    n = len(events)
+    firsts = list(map(_FIRST, events))
+    seconds = list(map(_SECOND, events))
+    size1 = np.fromiter(map(len, firsts), dtype=np.int32, count=n)
+    size2 = np.fromiter(map(len, seconds), dtype=np.int32, count=n)
+    get = table.lookup
+    if n == 0 or (size1.max() == 1 and size2.max() == 1):  # one against one: no padding
+        rows1 = np.fromiter(map(get, map(_ONLY, firsts), repeat(-1)), dtype=np.int32, count=n)
+        rows2 = np.fromiter(map(get, map(_ONLY, seconds), repeat(-1)), dtype=np.int32, count=n)
+        if add and n and min(rows1.min(), rows2.min()) < 0:
+            row = table.row
+            for i in np.flatnonzero((rows1 < 0) | (rows2 < 0)).tolist():
+                rows1[i] = row(firsts[i][0])
+                rows2[i] = row(seconds[i][0])
+        return rows1.reshape(n, 1), size1, rows2.reshape(n, 1), size2
+    ids = list(chain.from_iterable(map(add_tuples, firsts, seconds)))
+    rows = np.fromiter(map(get, ids, repeat(-1)), dtype=np.int32, count=len(ids))
+    if add:
+        row = table.row
+        for k in np.flatnonzero(rows < 0).tolist():
+            rows[k] = row(ids[k])
+    w1, w2 = int(size1.max()), int(size2.max())
+    start = np.cumsum(size1 + size2, dtype=np.int64) - (size1 + size2)
+    pad = len(ids)
+    rows = np.append(rows, np.int32(-1))  # the padding value, at index ``pad``
+    cols1, cols2 = np.arange(w1), np.arange(w2)
+    at1 = np.where(cols1 < size1[:, None], start[:, None] + cols1, pad)
+    at2 = np.where(cols2 < size2[:, None], (start + size1)[:, None] + cols2, pad)
+    return rows[at1], size1, rows[at2], size2
 
 
 def _sparse(
@@ -184,20 +191,11 @@ def encode_events(
     untouched and marks unknown ids with row ``-1`` (inside the side's size).
     """
     n = len(events)
-    firsts = [e.first for e in events]
-    seconds = [e.second for e in events]
-    get = table.lookup
-    first, first_size, unknown1 = _rows(firsts, get)
-    second, second_size, unknown2 = _rows(seconds, get)
-    if add and (unknown1 or unknown2):
-        _register(events, table)
-        first, first_size, _ = _rows(firsts, get)
-        second, second_size, _ = _rows(seconds, get)
+    first, first_size, second, second_size = _members(events, table, add)
     try:  # the common case, all finished matches; a query lacks both fields
-        score = np.array([e.score for e in events], dtype=np.float64)  # type: ignore[attr-defined]
-        time_s = np.array(
-            [e.finished_at.timestamp() for e in events],  # type: ignore[attr-defined]
-            dtype=np.float64,
+        score = np.fromiter(map(_SCORE, events), dtype=np.float64, count=n)
+        time_s = np.fromiter(
+            map(datetime.timestamp, map(_FINISHED, events)), dtype=np.float64, count=n
         )
     except AttributeError:
         score = np.array([getattr(e, "score", _NAN) for e in events], dtype=np.float64)
