@@ -127,7 +127,11 @@ class EntityTable:
             self._rows[entity_id] = r
             self._ids.append(entity_id)
             if r >= len(self.counts):
-                self.counts = np.concatenate([self.counts, np.zeros_like(self.counts)])
+                # np.zeros: the spare half costs no memory until written (see
+                # streamrate.models.base.with_room), unlike zeros_like + concatenate.
+                grown = np.zeros(2 * len(self.counts), dtype=np.int32)
+                grown[:r] = self.counts[:r]
+                self.counts = grown
         return r
 
     def rows(self, entity_ids: Iterable[str]) -> list[int]:

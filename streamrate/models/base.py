@@ -161,6 +161,30 @@ class Model(ABC):
         return f"{type(self).__name__}({args})"
 
 
+GROW_ROWS = 1 << 16
+"""Entity arrays take memory in steps of at most this many rows."""
+
+
+def with_room(arr: np.ndarray, used: int, rows: int) -> np.ndarray:
+    """``arr`` itself if it has ``rows`` rows, else a larger array holding its first
+    ``used`` rows (the rest zero).
+
+    The larger array comes from ``np.zeros``, whose pages the OS hands out only
+    when first written: its spare rows reserve address space, not memory, and
+    only the rows in use are copied. Its length at least doubles, so copies are
+    rare; resident memory grows as rows are written.
+
+    >>> a = with_room(np.ones((3, 2)), 3, 5)
+    >>> a.shape, a[:, 0].tolist()
+    ((6, 2), [1.0, 1.0, 1.0, 0.0, 0.0, 0.0])
+    """
+    if rows <= arr.shape[0]:
+        return arr
+    out = np.zeros((max(rows, 2 * arr.shape[0]), *arr.shape[1:]), dtype=arr.dtype)
+    out[:used] = arr[:used]
+    return out
+
+
 def entity_arrays(table: EntityTable, **per_entity: np.ndarray) -> dict[str, np.ndarray]:
     """The table's arrays plus one array per name, each cut to the known entities."""
     n = len(table)

@@ -55,7 +55,7 @@ from streamrate.batch import EncodedBatch, count_matches, encode_events
 from streamrate.encode import EntityTable, FeatureHasher
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
-from streamrate.models.base import Model, Prediction, Predictions
+from streamrate.models.base import GROW_ROWS, Model, Prediction, Predictions, with_room
 
 CONTEXT_MODES = ("none", "stacked", "gated")
 PRIOR_MAPS = ("identity", "tanh")
@@ -238,6 +238,7 @@ class MatchupModel(Model):
     # -- state ----------------------------------------------------------------------
     def _fresh_state(self) -> None:
         D, d, C = self.width, self.dims, self.context_width
+        self._rows_ready = 0  # rows of the entity arrays initialised so far
         self.own_ = np.zeros((0, D), dtype=np.float32)
         self.acc_ = np.zeros((0, D), dtype=np.float32)
         self.last_s_ = np.zeros(0, dtype=np.float64)
@@ -255,30 +256,35 @@ class MatchupModel(Model):
         self.clock_s_ = math.nan
 
     def _grow(self, need: int) -> None:
-        cap = self.own_.shape[0]
-        if need <= cap:
+        """Make rows ``0..need`` usable.
+
+        Rows are initialised (random start, AdaGrad sums) in steps of at most
+        :data:`GROW_ROWS`, so memory is taken in chunks as entities arrive. The
+        arrays themselves are reserved ahead by :func:`with_room`, whose spare
+        rows are pages the OS has not handed out yet: a larger reserve copies
+        only the rows in use, and the peak stays near twice the arrays in use
+        instead of the three copies of growing by concatenation.
+        """
+        ready = self._rows_ready
+        if need <= ready:
             return
-        new = max(need, 2 * cap, 16)
-        so, D = int(self.strength), self.width
-        own = np.zeros((new - cap, D), dtype=np.float32)
-        step = 1 << 16  # in chunks, so the float64 temporaries stay small
-        for lo in range(cap, new, step) if self.dims else ():
-            hi = min(lo + step, new)
-            block = hashed_uniform(self.seed, lo, hi, 2 * self.dims)
-            own[lo - cap : hi - cap, so:] = self.init_scale * block
-        self.own_ = np.concatenate([self.own_, own])
-        self.acc_ = np.concatenate(
-            [self.acc_, np.full((new - cap, D), self.accum_init, dtype=np.float32)]
-        )
+        hi = max(need, min(2 * ready, ready + GROW_ROWS), 16)
+        so = int(self.strength)
+        self.own_ = with_room(self.own_, ready, hi)
+        self.acc_ = with_room(self.acc_, ready, hi)
+        self.acc_[ready:hi] = self.accum_init
+        for lo in range(ready, hi, GROW_ROWS) if self.dims else ():
+            top = min(lo + GROW_ROWS, hi)  # float64 temporaries of one step at most
+            block = hashed_uniform(self.seed, lo, top, 2 * self.dims)
+            self.own_[lo:top, so:] = self.init_scale * block
         if self.forget_per_day > 0:
-            self.last_s_ = np.concatenate([self.last_s_, np.full(new - cap, np.nan)])
+            self.last_s_ = with_room(self.last_s_, ready, hi)
+            self.last_s_[ready:hi] = np.nan
         if self.feature_width:
-            self.feat_idx_ = np.concatenate(
-                [self.feat_idx_, np.full((new - cap, self.feature_slots), -1, dtype=np.int32)]
-            )
-            self.feat_val_ = np.concatenate(
-                [self.feat_val_, np.zeros((new - cap, self.feature_slots), dtype=np.float32)]
-            )
+            self.feat_idx_ = with_room(self.feat_idx_, ready, hi)
+            self.feat_idx_[ready:hi] = -1
+            self.feat_val_ = with_room(self.feat_val_, ready, hi)
+        self._rows_ready = hi
 
     # -- encoded API ------------------------------------------------------------------
     def encode(self, events: Sequence[Matchup], add: bool = True) -> EncodedBatch:
@@ -461,6 +467,7 @@ class MatchupModel(Model):
                 )
             got[name] = np.array(arr, dtype=dtype)
         self.entities_ = table
+        self._rows_ready = n
         self.own_, self.acc_ = got["own"], got["acc"]
         self.W_, self.AW_, self.G_, self.AG_ = got["W"], got["AW"], got["G"], got["AG"]
         self.H_, self.AH_, self.sc_, self.asc_ = got["H"], got["AH"], got["sc"], got["asc"]
