@@ -42,7 +42,7 @@ from operator import attrgetter, itemgetter
 
 import numpy as np
 
-from streamrate.encode import EntityTable, FeatureHasher
+from streamrate.encode import Encoded, EntityTable, FeatureHasher, RunningScale
 from streamrate.events import Matchup
 
 _NAN = math.nan
@@ -135,8 +135,30 @@ def _members(
     return rows[at1], size1, rows[at2], size2
 
 
+def _scaled(hit: Encoded, scale: RunningScale | None, learn: bool) -> list[tuple[int, float]]:
+    """The (slot, value) pairs of one mapping, its numbers as standard scores
+    (``scale`` given; added to the statistics first when ``learn``) or raw."""
+    pairs, numbers = hit
+    if not numbers:
+        return pairs
+    out = list(pairs)
+    for pos, name, v in numbers:
+        slot, sign = out[pos]
+        if scale is None:
+            z = float(v)
+        elif learn:
+            z = scale.observe(name, v)
+        else:
+            z = scale.score(name, v)
+        out[pos] = (slot, sign * z)
+    return out
+
+
 def _sparse(
-    maps: Sequence[Mapping[str, str | float]], hasher: FeatureHasher
+    maps: Sequence[Mapping[str, str | float]],
+    hasher: FeatureHasher,
+    scale: RunningScale | None = None,
+    learn: bool = False,
 ) -> tuple[np.ndarray, np.ndarray]:
     n = len(maps)
     width = max(map(len, maps), default=0)
@@ -148,7 +170,7 @@ def _sparse(
     pad = (-1, 0.0)
     flat: list[tuple[int, float]] = []
     for m in maps:
-        flat.extend(encoded(tuple(m.items())))
+        flat.extend(_scaled(encoded(tuple(m.items())), scale, learn))
         if len(m) < width:
             flat.extend([pad] * (width - len(m)))
     pairs = np.array(flat, dtype=np.float64).reshape(n, width, 2)
@@ -156,7 +178,12 @@ def _sparse(
 
 
 def _features(
-    events: Sequence[Matchup], k1: int, k2: int, hasher: FeatureHasher
+    events: Sequence[Matchup],
+    k1: int,
+    k2: int,
+    hasher: FeatureHasher,
+    scale: RunningScale | None = None,
+    learn: bool = False,
 ) -> tuple[np.ndarray, np.ndarray]:
     n = len(events)
     width = max((len(f) for e in events for f in e.features.values()), default=0)
@@ -165,16 +192,13 @@ def _features(
     for i, e in enumerate(events):
         if not e.features:
             continue
-        for j, ent in enumerate(e.first):
-            fm = e.features.get(ent)
-            if fm:
-                a, b = hasher.encode(fm)
-                idx[i, j, : len(a)], val[i, j, : len(a)] = a, b
-        for j, ent in enumerate(e.second):
-            fm = e.features.get(ent)
-            if fm:
-                a, b = hasher.encode(fm)
-                idx[i, k1 + j, : len(a)], val[i, k1 + j, : len(a)] = a, b
+        for off, side in ((0, e.first), (k1, e.second)):
+            for j, ent in enumerate(side):
+                fm = e.features.get(ent)
+                if fm:
+                    pairs = _scaled(hasher.encoded_items(tuple(fm.items())), scale, learn)
+                    for f, (slot, v) in enumerate(pairs):
+                        idx[i, off + j, f], val[i, off + j, f] = slot, v
     return idx, val
 
 
@@ -184,11 +208,18 @@ def encode_events(
     context: FeatureHasher | None = None,
     features: FeatureHasher | None = None,
     add: bool = True,
+    context_scale: RunningScale | None = None,
+    feature_scale: RunningScale | None = None,
 ) -> EncodedBatch:
     """Encode events (or queries) into arrays.
 
     ``add=True`` gives new ids a row in ``table``; ``add=False`` leaves the table
     untouched and marks unknown ids with row ``-1`` (inside the side's size).
+
+    With a ``context_scale`` / ``feature_scale``, numbers of the context / of the
+    entity features enter as standard scores; ``add=True`` (events to learn
+    from) first adds each number to its field's statistics, event by event in
+    order, so a batch is encoded exactly as its events one at a time would be.
     """
     n = len(events)
     first, first_size, second, second_size = _members(events, table, add)
@@ -202,12 +233,14 @@ def encode_events(
         times = [getattr(e, "finished_at", None) for e in events]
         time_s = np.array([_NAN if t is None else t.timestamp() for t in times], dtype=np.float64)
     if context is not None:
-        ctx_idx, ctx_val = _sparse([e.context for e in events], context)
+        ctx_idx, ctx_val = _sparse([e.context for e in events], context, context_scale, add)
     else:
         ctx_idx = np.full((n, 0), -1, dtype=np.int32)
         ctx_val = np.zeros((n, 0), dtype=np.float64)
     if features is not None:
-        feat_idx, feat_val = _features(events, first.shape[1], second.shape[1], features)
+        feat_idx, feat_val = _features(
+            events, first.shape[1], second.shape[1], features, feature_scale, add
+        )
     else:
         feat_idx, feat_val = _EMPTY_I, _EMPTY_F
     return EncodedBatch(

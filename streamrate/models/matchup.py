@@ -52,10 +52,17 @@ from typing import Any, ClassVar
 import numpy as np
 
 from streamrate.batch import EncodedBatch, count_matches, encode_events
-from streamrate.encode import EntityTable, FeatureHasher
+from streamrate.encode import EntityTable, FeatureHasher, RunningScale
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
-from streamrate.models.base import GROW_ROWS, Model, Prediction, Predictions, with_room
+from streamrate.models.base import (
+    GROW_ROWS,
+    Model,
+    ModelState,
+    Prediction,
+    Predictions,
+    with_room,
+)
 
 CONTEXT_MODES = ("none", "stacked", "gated")
 PRIOR_MAPS = ("identity", "tanh")
@@ -109,7 +116,10 @@ class MatchupModel(Model):
     ``feature_width`` hashed entity-feature slots (0: off), ``feature_slots``
     features kept per entity, ``prior_map`` "identity"/"tanh"; ``forget_per_day``
     decay rate of idle entities' own offsets; ``seed``; ``backend``
-    "auto"/"numba"/"numpy".
+    "auto"/"numba"/"numpy"; ``scale_numbers`` numbers of the context and of the
+    features enter as standard scores from a running mean and deviation per
+    field (:class:`~streamrate.encode.RunningScale`, kept in the state), so that
+    their units do not matter.
 
     Defaults were picked on synthetic worlds (tests and bench): with 60 entities
     and 3000-4000 matches, blade-chest d=8..16 reaches prequential log loss near
@@ -118,6 +128,9 @@ class MatchupModel(Model):
     """
 
     kind: ClassVar[str] = "matchup"
+    # Version 2 added the running statistics of numeric fields (scale_numbers);
+    # a version 1 state still loads, with numbers read raw as it was trained.
+    state_version: ClassVar[int] = 2
     form: ClassVar[int] = 0  # 0: inner, 1: distance
 
     def __init__(
@@ -141,6 +154,7 @@ class MatchupModel(Model):
         forget_per_day: float = 0.0,
         seed: int = 0,
         backend: str = "auto",
+        scale_numbers: bool = True,
     ) -> None:
         if dims < 0 or (dims == 0 and not strength):
             raise ConfigError("dims must be >= 0, and dims == 0 needs strength=True")
@@ -169,6 +183,7 @@ class MatchupModel(Model):
         self.feature_width, self.feature_slots = int(feature_width), int(feature_slots)
         self.prior_map, self.forget_per_day = prior_map, float(forget_per_day)
         self.seed, self.backend = int(seed), backend
+        self.scale_numbers = bool(scale_numbers)
         self.has_draws = self.draws  # type: ignore[misc]
         self._k = _kernels(backend)
         self._ctx = FeatureHasher(context_width) if context_width else None
@@ -199,7 +214,21 @@ class MatchupModel(Model):
             "forget_per_day": self.forget_per_day,
             "seed": self.seed,
             "backend": self.backend,
+            "scale_numbers": self.scale_numbers,
         }
+
+    @classmethod
+    def check_state(cls, state: ModelState) -> None:
+        if not (state.kind == cls.kind and state.version == 1):
+            super().check_state(state)
+
+    @classmethod
+    def from_state(cls, state: ModelState) -> Model:
+        if state.kind == cls.kind and state.version == 1:
+            # Version 1 read numbers raw: keep doing so for a model trained that way.
+            params = {**state.params, "scale_numbers": False}
+            state = ModelState(state.kind, cls.state_version, params, state.arrays)
+        return super().from_state(state)
 
     @property
     def width(self) -> int:
@@ -254,6 +283,8 @@ class MatchupModel(Model):
         self.AH_ = np.full(self.H_.shape, self.accum_init)
         self.asc_ = np.full(2, self.accum_init)
         self.clock_s_ = math.nan
+        self.context_scale_ = RunningScale()
+        self.feature_scale_ = RunningScale()
 
     def _grow(self, need: int) -> None:
         """Make rows ``0..need`` usable.
@@ -289,7 +320,17 @@ class MatchupModel(Model):
     # -- encoded API ------------------------------------------------------------------
     def encode(self, events: Sequence[Matchup], add: bool = True) -> EncodedBatch:
         """Events as arrays for :meth:`learn_encoded` / :meth:`predict_encoded`."""
-        return encode_events(events, self.entities_, self._ctx, self._feat, add=add)
+        if not self.scale_numbers:
+            return encode_events(events, self.entities_, self._ctx, self._feat, add=add)
+        return encode_events(
+            events,
+            self.entities_,
+            self._ctx,
+            self._feat,
+            add=add,
+            context_scale=self.context_scale_,
+            feature_scale=self.feature_scale_,
+        )
 
     def _args(self, b: EncodedBatch) -> tuple[np.ndarray, ...]:
         c = np.ascontiguousarray
@@ -428,6 +469,8 @@ class MatchupModel(Model):
             "asc": self.asc_,
             "clock_s": np.array([self.clock_s_]),
             **self.entities_.to_arrays(),
+            **self.context_scale_.to_arrays("context_scale"),
+            **self.feature_scale_.to_arrays("feature_scale"),
         }
         if self.forget_per_day > 0:
             arrays["last_s"] = self.last_s_[:n].copy()
@@ -466,6 +509,9 @@ class MatchupModel(Model):
                     f"expected {np.dtype(dtype)}{list(shape)}"
                 )
             got[name] = np.array(arr, dtype=dtype)
+        if "context_scale_names" in arrays or self.scale_numbers:
+            self.context_scale_ = RunningScale.from_arrays(arrays, "context_scale")
+            self.feature_scale_ = RunningScale.from_arrays(arrays, "feature_scale")
         self.entities_ = table
         self._rows_ready = n
         self.own_, self.acc_ = got["own"], got["acc"]
