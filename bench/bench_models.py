@@ -33,7 +33,7 @@ from pathlib import Path
 
 import numpy as np
 
-from streamrate.batch import EncodedBatch
+from streamrate.batch import EncodedBatch, encode_events
 from streamrate.encode import EntityTable
 from streamrate.events import MatchEvent
 from streamrate.models.base import Model
@@ -65,11 +65,14 @@ def fill_table(table: EntityTable, n_ent: int) -> None:
 
 
 def timed(fn: Callable[[], object], repeat: int = 3) -> float:
+    """Best of ``repeat`` runs, in CPU seconds of this process: everything timed is
+    single-threaded, and on a shared machine wall time also counts the waits for
+    a core, which swing from run to run."""
     best = math.inf
     for _ in range(repeat):
-        t = time.perf_counter()
+        t = time.process_time()
         fn()
-        best = min(best, time.perf_counter() - t)
+        best = min(best, time.process_time() - t)
     return best
 
 
@@ -243,18 +246,25 @@ def speed_events(n: int, n_ent: int) -> None:
 
 def speed_ratings(n: int, n_ent: int, n_slow: int) -> None:
     """Glicko-2 and TrueSkill on pre-parsed MatchEvent objects (encoding included):
-    the former plain-Python models (tests/rating_reference.py, the baseline) against
+    the former plain-Python models (tests/rating_reference.py, with the former
+    encoder of tests/encode_reference.py: the baseline) against
     the compiled loops and their uncompiled run, sequential and in mini-batches."""
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
+    import rating_reference
     from rating_reference import ReferenceGlicko2, ReferenceTrueSkill
 
     from streamrate.models.glicko2 import Glicko2
     from streamrate.models.trueskill import TrueSkill
 
+    # "Before" is the former models with the former encoder.
+    former = _former_encoder()
+    rating_reference.encode_events = former  # type: ignore[attr-defined]
+
     events = make_events(n, n_ent, teams=True)
     slow = events[:n_slow]
     print(f"\n{n:,} pre-parsed MatchEvent objects (1v1 and 2v2, some draws), {n_ent:,} entities;")
     print(f"plain-Python and uncompiled paths on the first {n_slow:,}")
+    print("x plain: against the plain-Python model on the same path (learn_many, batch size)")
     print(f"{'path':<62}{'events/s':>12}{'x plain':>10}")
     for name, ref, fast in (
         ("glicko2", ReferenceGlicko2, Glicko2),
@@ -264,12 +274,14 @@ def speed_ratings(n: int, n_ent: int, n_slow: int) -> None:
         rows: list[tuple[str, Callable[[], Model], list[MatchEvent], int]] = [
             ("plain Python (before), learn_many", ref, slow, 0),
             ("plain Python (before), learn_batch 100", ref, slow, 100),
+            ("plain Python (before), learn_batch 1000", ref, slow, 1000),
             ("uncompiled loops (fallback), learn_many", lambda f=fast: f(compiled=False), slow, 0),
             ("compiled, learn_many", fast, events, 0),
             ("compiled, learn_batch 100", fast, events, 100),
             ("compiled, learn_batch 1000", fast, events, 1000),
         ]
-        base = 0.0
+        plain: dict[int, float] = {}  # the baseline rate of each path (0: learn_many)
+        batch_s: dict[str, float] = {}
         for label, make, evs, size in rows:
             m = make()
             if size:
@@ -278,8 +290,26 @@ def speed_ratings(n: int, n_ent: int, n_slow: int) -> None:
             else:
                 t = timed(lambda m=m, evs=evs: m.learn_many(evs), repeat=1)
             rate = len(evs) / t
-            base = base or rate
-            print(f"{name + ' ' + label:<62}{rate:>12,.0f}{rate / base:>10.1f}")
+            plain.setdefault(size, rate)
+            print(f"{name + ' ' + label:<62}{rate:>12,.0f}{rate / plain[size]:>10.1f}")
+            if label.endswith("learn_batch 100"):
+                batch_s[label.split(",")[0]] = t / len(evs)
+        # The update alone: batch-100 time less the encoding of the same batches
+        # (former encoder for the plain model, one-pass encoder for the compiled).
+        enc = {}
+        for label, encoder, evs in (
+            ("plain Python (before)", former, slow),
+            ("compiled", encode_events, events),
+        ):
+            parts = [evs[k : k + 100] for k in range(0, len(evs), 100)]
+            table = EntityTable()
+            t = timed(lambda parts=parts, e=encoder, tb=table: [e(p, tb) for p in parts], 1)
+            enc[label] = t / len(evs)
+        upd = {k: batch_s[k] - enc[k] for k in enc}
+        print(f"{name} batch 100, us/event: encoding {enc['plain Python (before)'] * 1e6:.2f} "
+              f"-> {enc['compiled'] * 1e6:.2f}, update alone "
+              f"{upd['plain Python (before)'] * 1e6:.2f} -> {upd['compiled'] * 1e6:.2f} "
+              f"(x{upd['plain Python (before)'] / upd['compiled']:.1f})")  # fmt: skip
 
 
 def speed(n: int, n_ent: int, n_slow: int) -> None:

@@ -256,14 +256,12 @@ def count_matches(batch: EncodedBatch, table: EntityTable) -> None:
             np.add.at(table.counts, r, 1)
 
 
-def member_places(batch: EncodedBatch) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The batch's distinct known rows (sorted), and each member's place among them.
-
-    Returns ``(uniq, loc1, loc2)``: ``uniq[loc1[i, j]]`` is ``first[i, j]``; padding
-    and unknown members get place -1. Mini-batch updates sum per entity with it.
-    """
-    rows = np.concatenate([batch.first.ravel(), batch.second.ravel()])
-    uniq = np.unique(rows[rows >= 0]).astype(np.int64)
-    loc1 = np.where(batch.first >= 0, np.searchsorted(uniq, batch.first), -1).astype(np.int64)
-    loc2 = np.where(batch.second >= 0, np.searchsorted(uniq, batch.second), -1).astype(np.int64)
-    return uniq, loc1, loc2
+def has_unknown(batch: EncodedBatch) -> bool:
+    """Whether a real member of some event has no row (``add=False`` encoding)."""
+    for rows, sizes in ((batch.first, batch.first_size), (batch.second, batch.second_size)):
+        if rows.shape[1] == 1:
+            if rows.size and rows.min() < 0:
+                return True
+        elif np.any((rows < 0) & (np.arange(rows.shape[1]) < sizes[:, None])):
+            return True
+    return False

@@ -122,3 +122,14 @@ def test_log_normal_distribution_function_matches_scipy(x: float) -> None:
 
     # scipy.special.log_ndtr (as used by the reference model) is the independent check.
     assert own(x) == pytest.approx(log_ndtr(x), rel=1e-12, abs=1e-15)
+
+
+@pytest.mark.parametrize("cls", [Glicko2, TrueSkill])
+def test_an_encoded_batch_with_unknown_entities_is_refused(cls: type[Model]) -> None:
+    from streamrate.batch import encode_events
+
+    m = cls()
+    m.learn_many(mixed_stream(3, 5))
+    b = encode_events(mixed_stream(4, 5, players=60), m.entities_, add=False)
+    with pytest.raises(ValueError, match="unknown"):
+        m.learn_encoded(b)  # type: ignore[attr-defined]

@@ -179,42 +179,72 @@ def _period(
             last_s[r] = t
 
 
-def learn_seq(
-    first, n1, second, n2, score, time_s, mu, phi, sigma, last_s, prm, p_out,
-):  # fmt: skip
-    """Each event its own rating period, in order; P(first wins) before each into ``p_out``."""
-    n, k1, k2 = first.shape[0], first.shape[1], second.shape[1]
-    loc1 = np.zeros((n, k1), dtype=np.int64)
-    loc2 = np.zeros((n, k2), dtype=np.int64)
-    k = k1 + k2
-    uniq = np.zeros(k, dtype=np.int64)
-    acc = np.zeros((4, k))
-    for e in range(n):
-        m = 0
+@register_jitable
+def places(first, n1, second, n2, lo, hi, mark, uniq, loc1, loc2):  # fmt: skip
+    """Number the distinct rows of events ``lo..hi`` into ``uniq`` (first seen, first)
+    and write each member's number into ``loc1``/``loc2``; returns how many.
+
+    ``mark`` (one slot per entity row, all -1) remembers the numbers while this
+    runs and is cleared again before it returns.
+    """
+    m = 0
+    for e in range(lo, hi):
         for side in range(2):
             rows = first if side == 0 else second
             loc = loc1 if side == 0 else loc2
             for j in range(n1[e] if side == 0 else n2[e]):
                 r = rows[e, j]
-                u = 0
-                while u < m and uniq[u] != r:  # members are few: a scan beats a map
-                    u += 1
-                if u == m:
+                u = mark[r]
+                if u < 0:
+                    u = m
+                    mark[r] = m
                     uniq[m] = r
                     m += 1
                 loc[e, j] = u
+    for u in range(m):
+        mark[uniq[u]] = -1
+    return m
+
+
+@register_jitable
+def count(first, n1, second, n2, counts):  # fmt: skip
+    """One more match learned from for every member of every event."""
+    for e in range(first.shape[0]):
+        for j in range(n1[e]):
+            counts[first[e, j]] += 1
+        for j in range(n2[e]):
+            counts[second[e, j]] += 1
+
+
+def learn_seq(
+    first, n1, second, n2, score, time_s, mu, phi, sigma, last_s, counts, mark, prm, p_out,
+):  # fmt: skip
+    """Each event its own rating period, in order; P(first wins) before each into ``p_out``."""
+    n, k1, k2 = first.shape[0], first.shape[1], second.shape[1]
+    loc1 = np.zeros((n, k1), dtype=np.int64)
+    loc2 = np.zeros((n, k2), dtype=np.int64)
+    uniq = np.zeros(k1 + k2, dtype=np.int64)
+    acc = np.zeros((4, k1 + k2))
+    for e in range(n):
+        m = places(first, n1, second, n2, e, e + 1, mark, uniq, loc1, loc2)
         _period(e, e + 1, first, n1, second, n2, score, time_s, loc1, loc2, uniq, m,
                 mu, phi, sigma, last_s, prm, p_out, acc[0], acc[1], acc[2], acc[3])  # fmt: skip
+    count(first, n1, second, n2, counts)
 
 
 def learn_period(
-    first, n1, second, n2, score, time_s, loc1, loc2, uniq, mu, phi, sigma, last_s, prm, p_out,
+    first, n1, second, n2, score, time_s, mu, phi, sigma, last_s, counts, mark, prm, p_out,
 ):  # fmt: skip
     """All events as one rating period (predictions from the period-start state)."""
-    k = uniq.shape[0]
-    acc = np.zeros((4, max(k, 1)))
-    _period(0, first.shape[0], first, n1, second, n2, score, time_s, loc1, loc2, uniq, k,
+    n, k1, k2 = first.shape[0], first.shape[1], second.shape[1]
+    loc1 = np.zeros((n, k1), dtype=np.int64)
+    loc2 = np.zeros((n, k2), dtype=np.int64)
+    uniq = np.zeros(n * (k1 + k2), dtype=np.int64)
+    m = places(first, n1, second, n2, 0, n, mark, uniq, loc1, loc2)
+    acc = np.zeros((4, max(m, 1)))
+    _period(0, n, first, n1, second, n2, score, time_s, loc1, loc2, uniq, m,
             mu, phi, sigma, last_s, prm, p_out, acc[0], acc[1], acc[2], acc[3])  # fmt: skip
+    count(first, n1, second, n2, counts)
 
 
 def predict(first, n1, second, n2, mu, phi, prm, p_out):

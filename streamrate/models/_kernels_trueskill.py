@@ -25,6 +25,8 @@ import numpy as np
 from numba import njit
 from numba.extending import register_jitable
 
+from streamrate.models._kernels_glicko2 import count, places
+
 _LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 _SQRT_HALF = math.sqrt(0.5)
 
@@ -148,7 +150,7 @@ def _corrections(e, first, n1, second, n2, score, mu, var, prm, eps_n):
     return c, c2, v, w
 
 
-def learn_seq(first, n1, second, n2, score, mu, var, prm, eps_n, p_out):
+def learn_seq(first, n1, second, n2, score, mu, var, counts, prm, eps_n, p_out):
     """Predict, then update, one match after another; (P(win), P(draw)) into ``p_out``."""
     tau2 = prm[3] * prm[3]
     for e in range(first.shape[0]):
@@ -164,15 +166,20 @@ def learn_seq(first, n1, second, n2, score, mu, var, prm, eps_n, p_out):
                 vr = var[r] + tau2
                 mu[r] = mu[r] + direction * vr / c * v
                 var[r] = vr * (1.0 - vr / c2 * w)
+    count(first, n1, second, n2, counts)
 
 
 def learn_combined(
-    first, n1, second, n2, score, loc1, loc2, uniq, mu, var, prm, eps_n, p_out,
+    first, n1, second, n2, score, mu, var, counts, mark, prm, eps_n, p_out,
 ):  # fmt: skip
     """Predict all from the batch-start beliefs; then add every match's change in
-    precision and precision-times-mean per entity (``uniq``, places ``loc1``/``loc2``)."""
+    precision and precision-times-mean per entity."""
     tau2 = prm[3] * prm[3]
-    k = uniq.shape[0]
+    n, k1, k2 = first.shape[0], first.shape[1], second.shape[1]
+    loc1 = np.zeros((n, k1), dtype=np.int64)
+    loc2 = np.zeros((n, k2), dtype=np.int64)
+    uniq = np.zeros(n * (k1 + k2), dtype=np.int64)
+    k = places(first, n1, second, n2, 0, n, mark, uniq, loc1, loc2)
     d_prec = np.zeros(k)
     d_pm = np.zeros(k)
     for e in range(first.shape[0]):
@@ -196,6 +203,7 @@ def learn_combined(
         prec = 1.0 / prior_var + d_prec[u]
         mu[r] = (mu[r] / prior_var + d_pm[u]) / prec
         var[r] = 1.0 / prec
+    count(first, n1, second, n2, counts)
 
 
 def predict(first, n1, second, n2, mu, var, prm, eps_n, p_out):

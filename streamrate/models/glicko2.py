@@ -44,7 +44,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from streamrate.batch import EncodedBatch, count_matches, encode_events, member_places
+from streamrate.batch import EncodedBatch, encode_events, has_unknown
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError
 from streamrate.events import MatchEvent, Matchup
@@ -137,11 +137,12 @@ class Glicko2(Model):
         self.phi_ = np.full(n, self._phi0)
         self.sigma_ = np.full(n, self.initial_volatility)
         self.last_s_ = np.full(n, np.nan)
+        self._mark = np.full(n, -1, dtype=np.int64)  # scratch of the loops, not state
 
     def _fit_capacity(self) -> None:
         n, cap = len(self.entities_), len(self.mu_)
         if n > cap:
-            old = (self.mu_, self.phi_, self.sigma_, self.last_s_)
+            old = (self.mu_, self.phi_, self.sigma_, self.last_s_)  # _mark: all -1 between calls
             self._alloc(max(n, 2 * cap))
             for new, prev in zip(
                 (self.mu_, self.phi_, self.sigma_, self.last_s_), old, strict=True
@@ -178,12 +179,14 @@ class Glicko2(Model):
 
     def learn_encoded(self, b: EncodedBatch) -> Predictions:
         """Sequential learning over an encoded batch (``add=True`` encoding)."""
+        if has_unknown(b):
+            raise ValueError("learn_encoded: batch holds entities unknown to this model")
         self._fit_capacity()
         p = np.empty(len(b))
         run = _k.learn_seq_compiled if self.compiled else _k.learn_seq
-        run(b.first, b.first_size, b.second, b.second_size, b.score, b.time_s,
-            self.mu_, self.phi_, self.sigma_, self.last_s_, self._prm, p)  # fmt: skip
-        count_matches(b, self.entities_)
+        run(b.first, b.first_size, b.second, b.second_size, b.score, b.time_s, self.mu_,
+            self.phi_, self.sigma_, self.last_s_, self.entities_.counts, self._mark, self._prm,
+            p)  # fmt: skip
         return Predictions(p, np.zeros(len(b)))
 
     def learn_batch(self, events: Sequence[MatchEvent]) -> Predictions:
@@ -192,12 +195,11 @@ class Glicko2(Model):
             return Predictions(np.zeros(0), np.zeros(0))
         b = encode_events(events, self.entities_)
         self._fit_capacity()
-        uniq, loc1, loc2 = member_places(b)
         p = np.empty(len(b))
         run = _k.learn_period_compiled if self.compiled else _k.learn_period
-        run(b.first, b.first_size, b.second, b.second_size, b.score, b.time_s, loc1, loc2, uniq,
-            self.mu_, self.phi_, self.sigma_, self.last_s_, self._prm, p)  # fmt: skip
-        count_matches(b, self.entities_)
+        run(b.first, b.first_size, b.second, b.second_size, b.score, b.time_s, self.mu_,
+            self.phi_, self.sigma_, self.last_s_, self.entities_.counts, self._mark, self._prm,
+            p)  # fmt: skip
         return Predictions(p, np.zeros(len(b)))
 
     # -- persistence --------------------------------------------------------------

@@ -49,7 +49,7 @@ from typing import Any, ClassVar
 import numpy as np
 from scipy.special import ndtri
 
-from streamrate.batch import EncodedBatch, count_matches, encode_events, member_places
+from streamrate.batch import EncodedBatch, encode_events, has_unknown
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError
 from streamrate.events import MatchEvent, Matchup
@@ -115,6 +115,7 @@ class TrueSkill(Model):
     def _alloc(self, n: int) -> None:
         self.mu_ = np.full(n, self.mu)
         self.var_ = np.full(n, self.sigma * self.sigma)
+        self._mark = np.full(n, -1, dtype=np.int64)  # scratch of the loops, not state
 
     def _fit_capacity(self) -> None:
         n, cap = len(self.entities_), len(self.mu_)
@@ -159,12 +160,13 @@ class TrueSkill(Model):
 
     def learn_encoded(self, b: EncodedBatch) -> Predictions:
         """Sequential learning over an encoded batch (``add=True`` encoding)."""
+        if has_unknown(b):
+            raise ValueError("learn_encoded: batch holds entities unknown to this model")
         self._fit_capacity()
         p = np.empty((len(b), 2))
         run = _k.learn_seq_compiled if self.compiled else _k.learn_seq
         run(b.first, b.first_size, b.second, b.second_size, b.score, self.mu_, self.var_,
-            self._prm, self._margins(b), p)  # fmt: skip
-        count_matches(b, self.entities_)
+            self.entities_.counts, self._prm, self._margins(b), p)  # fmt: skip
         return Predictions(p[:, 0].copy(), p[:, 1].copy())
 
     def learn_batch(self, events: Sequence[MatchEvent]) -> Predictions:
@@ -174,12 +176,10 @@ class TrueSkill(Model):
             return self.learn_many(events)
         b = encode_events(events, self.entities_)
         self._fit_capacity()
-        uniq, loc1, loc2 = member_places(b)
         p = np.empty((len(b), 2))
         run = _k.learn_combined_compiled if self.compiled else _k.learn_combined
-        run(b.first, b.first_size, b.second, b.second_size, b.score, loc1, loc2, uniq,
-            self.mu_, self.var_, self._prm, self._margins(b), p)  # fmt: skip
-        count_matches(b, self.entities_)
+        run(b.first, b.first_size, b.second, b.second_size, b.score, self.mu_, self.var_,
+            self.entities_.counts, self._mark, self._prm, self._margins(b), p)  # fmt: skip
         return Predictions(p[:, 0].copy(), p[:, 1].copy())
 
     # -- persistence --------------------------------------------------------------
