@@ -53,7 +53,7 @@ class FeatureHasher:
         self.width = width
         self._slots: dict[str, tuple[int, float]] = {}
         self._items: dict[tuple[str, str | float], tuple[int, float]] = {}
-        self._maps: dict[tuple[tuple[str, str | float], ...], list[tuple[int, float]]] = {}
+        self._maps: dict[tuple[tuple[str, str | float], ...], Encoded] = {}
 
     def slot(self, key: str) -> tuple[int, float]:
         """Return (slot index, sign) for a hashed key; cached, as keys repeat a lot."""

@@ -25,6 +25,9 @@ import numpy as np
 from numba import njit
 from numba.extending import register_jitable
 
+# Shared with the Glicko-2 loops. numba's on-disk cache checks only the file of
+# the compiled function itself: after editing these helpers, remove the cached
+# kernels of this module (__pycache__/_kernels_trueskill*.nbi and .nbc).
 from streamrate.models._kernels_glicko2 import count, places
 
 _LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)

@@ -169,7 +169,8 @@ class Glicko2(Model):
         return Prediction(float(p[0]))
 
     def learn(self, event: MatchEvent) -> Prediction:
-        return self.learn_many([event])[0]  # type: ignore[no-any-return]
+        p = self.learn_many([event])
+        return Prediction(float(p.p_win[0]), float(p.p_draw[0]))
 
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
         """Each match its own rating period, in order (``learn`` in a loop)."""

@@ -150,7 +150,8 @@ class TrueSkill(Model):
         return Prediction(float(p[0, 0]), float(p[0, 1]))
 
     def learn(self, event: MatchEvent) -> Prediction:
-        return self.learn_many([event])[0]  # type: ignore[no-any-return]
+        p = self.learn_many([event])
+        return Prediction(float(p.p_win[0]), float(p.p_draw[0]))
 
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
         """Predict, then update, one match after another (``learn`` in a loop)."""
