@@ -13,7 +13,9 @@ memory. The parent prints:
   dict, the list and the id strings, by ``sys.getsizeof``), and the bytes of the
   saved state (``to_state()`` arrays);
 * the RSS growth from 0 to ``--entities`` entities and the peak growth while
-  they arrived, each per entity and as a ratio to the state's own bytes.
+  they arrived, each per entity and as a ratio to the state's own bytes;
+* the same with the former growth of the arrays (doubling by concatenation),
+  measured in a second child process of the same run.
 """
 
 from __future__ import annotations
@@ -23,6 +25,7 @@ import json
 import subprocess
 import sys
 from datetime import UTC, datetime, timedelta
+from typing import Any
 
 
 def _status_kb(field: str) -> int:
@@ -42,12 +45,39 @@ def _clear_peak() -> bool:
         return False
 
 
-def child(n_ent: int, dims: int, batch: int, context: str) -> dict[str, float]:
+def _former_grow(self: Any, need: int) -> None:
+    """How the matchup models grew their arrays before (doubling, by concatenation)."""
+    import numpy as np
+
+    from streamrate.models.matchup import hashed_uniform
+
+    cap = self.own_.shape[0]
+    if need <= cap:
+        return
+    new = max(need, 2 * cap, 16)
+    so, D = int(self.strength), self.width
+    own = np.zeros((new - cap, D), dtype=np.float32)
+    step = 1 << 16
+    for lo in range(cap, new, step) if self.dims else ():
+        hi = min(lo + step, new)
+        block = hashed_uniform(self.seed, lo, hi, 2 * self.dims)
+        own[lo - cap : hi - cap, so:] = self.init_scale * block
+    self.own_ = np.concatenate([self.own_, own])
+    self.acc_ = np.concatenate(
+        [self.acc_, np.full((new - cap, D), self.accum_init, dtype=np.float32)]
+    )
+    self._rows_ready = new
+
+
+def child(n_ent: int, dims: int, batch: int, context: str, former: bool) -> dict[str, float]:
     import numpy as np
 
     from streamrate.events import MatchEvent
     from streamrate.models.base import warm_up
-    from streamrate.models.matchup import BladeChest
+    from streamrate.models.matchup import BladeChest, MatchupModel
+
+    if former:
+        MatchupModel._grow = _former_grow  # type: ignore[method-assign]
 
     model = BladeChest(dims=dims, context=context)
     warm_up(model)
@@ -101,13 +131,13 @@ def child(n_ent: int, dims: int, batch: int, context: str) -> dict[str, float]:
     }
 
 
-def report(r: dict[str, float], dims: int, context: str) -> None:
+def report(r: dict[str, float], dims: int, context: str, label: str) -> None:
     n = r["entities"]
     own = r["array_bytes"] + r["id_bytes"]
     growth = (r["rss1_kb"] - r["rss0_kb"]) * 1024
     base = r["rss0_kb"] if r["peak_cleared"] else r["hwm0_kb"]
     peak = (r["hwm1_kb"] - base) * 1024
-    print(f"blade_chest d={dims} (context {context}), {n:,} entities, in a child process")
+    print(f"blade_chest d={dims} (context {context}), {n:,} entities, in a child process: {label}")
     print(f"  state's own bytes: {own / n:8.1f} per entity "
           f"(arrays {r['array_bytes'] / n:.1f}, id map {r['id_bytes'] / n:.1f}); "
           f"saved state {r['saved_bytes'] / n:.1f}")  # fmt: skip
@@ -125,15 +155,18 @@ def main() -> None:
     ap.add_argument("--batch", type=int, default=1000)
     ap.add_argument("--context", default="none", choices=("none", "stacked", "gated"))
     ap.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
+    ap.add_argument("--former", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.child:
-        print(json.dumps(child(args.entities, args.dims, args.batch, args.context)))
+        got = child(args.entities, args.dims, args.batch, args.context, args.former)
+        print(json.dumps(got))
         return
     cmd = [sys.executable, __file__, "--child", "--entities", str(args.entities),
            "--dims", str(args.dims), "--batch", str(args.batch),
            "--context", args.context]  # fmt: skip
-    out = subprocess.run(cmd, check=True, capture_output=True, text=True).stdout
-    report(json.loads(out.strip().splitlines()[-1]), args.dims, args.context)
+    for label, extra in (("chunked growth", []), ("former growth (doubling)", ["--former"])):
+        out = subprocess.run(cmd + extra, check=True, capture_output=True, text=True).stdout
+        report(json.loads(out.strip().splitlines()[-1]), args.dims, args.context, label)
 
 
 if __name__ == "__main__":
