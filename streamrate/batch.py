@@ -135,23 +135,28 @@ def _members(
     return rows[at1], size1, rows[at2], size2
 
 
-def _scaled(hit: Encoded, scale: RunningScale | None, learn: bool) -> list[tuple[int, float]]:
-    """The (slot, value) pairs of one mapping, its numbers as standard scores
-    (``scale`` given; added to the statistics first when ``learn``) or raw."""
+def scaled_items(hit: Encoded, scale: RunningScale | None) -> list[tuple[int, float]]:
+    """The (slot, value) pairs of one mapping, its numbers as standard scores from
+    ``scale`` (which this does not change) or, without one, raw."""
     pairs, numbers = hit
     if not numbers:
         return pairs
     out = list(pairs)
     for pos, name, v in numbers:
         slot, sign = out[pos]
-        if scale is None:
-            z = float(v)
-        elif learn:
-            z = scale.observe(name, v)
-        else:
-            z = scale.score(name, v)
+        z = float(v) if scale is None else scale.score(name, v)
         out[pos] = (slot, sign * z)
     return out
+
+
+def add_numbers(hits: Sequence[Encoded], scale: RunningScale | None) -> None:
+    """Add the numbers of one event's mappings to the running statistics: after all
+    of them are scored, so every number of an event is scored alike, and a model's
+    prediction while it learns is the one it gave before."""
+    if scale is not None:
+        for _, numbers in hits:
+            for _, name, v in numbers:
+                scale.add(name, v)
 
 
 def _sparse(
@@ -170,7 +175,10 @@ def _sparse(
     pad = (-1, 0.0)
     flat: list[tuple[int, float]] = []
     for m in maps:
-        flat.extend(_scaled(encoded(tuple(m.items())), scale, learn))
+        hit = encoded(tuple(m.items()))
+        flat.extend(scaled_items(hit, scale))
+        if learn and hit[1]:
+            add_numbers((hit,), scale)
         if len(m) < width:
             flat.extend([pad] * (width - len(m)))
     pairs = np.array(flat, dtype=np.float64).reshape(n, width, 2)
@@ -192,13 +200,17 @@ def _features(
     for i, e in enumerate(events):
         if not e.features:
             continue
+        hits = []
         for off, side in ((0, e.first), (k1, e.second)):
             for j, ent in enumerate(side):
                 fm = e.features.get(ent)
                 if fm:
-                    pairs = _scaled(hasher.encoded_items(tuple(fm.items())), scale, learn)
-                    for f, (slot, v) in enumerate(pairs):
+                    hit = hasher.encoded_items(tuple(fm.items()))
+                    hits.append(hit)
+                    for f, (slot, v) in enumerate(scaled_items(hit, scale)):
                         idx[i, off + j, f], val[i, off + j, f] = slot, v
+        if learn:
+            add_numbers(hits, scale)
     return idx, val
 
 

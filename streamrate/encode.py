@@ -120,20 +120,21 @@ class FeatureHasher:
 class RunningScale:
     """Running mean and deviation of each numeric field, and standard scores from them.
 
-    :meth:`observe` adds a value to its field's statistics (Welford's online
-    update, numerically stable in one pass) and returns the value's standard
-    score ``(x - mean) / deviation`` from the statistics that include it;
-    :meth:`score` does the same without adding (for questions). A field seen
-    once, or always with the same value, scores 0. Scores are clipped to
+    :meth:`score` gives a value's standard score ``(x - mean) / deviation`` from
+    its field's statistics so far; :meth:`add` adds a value to them (Welford's
+    online update, numerically stable in one pass); :meth:`observe` does both, in
+    that order. Scoring before adding means a model's prediction made while it
+    learns equals the one it gave before. Until a field has two different
+    values, its scores are 0. Scores are clipped to
     ``+-clip`` deviations and values to ``+-1e100`` before they are added, so
     every score is finite whatever the input. A field given in other units (any
     change ``a * x + b`` with ``a > 0``) gets the same scores.
 
     >>> s = RunningScale()
-    >>> [round(s.observe("year", y), 3) for y in (2004.0, 2010.0, 2016.0)]
-    [0.0, 1.0, 1.225]
-    >>> round(s.score("year", 2010.0), 3)
-    0.0
+    >>> [round(s.observe("year", y), 3) for y in (2004.0, 2010.0, 2016.0, 2013.0)]
+    [0.0, 0.0, 3.0, 0.612]
+    >>> round(s.score("year", 2010.0), 3), s.stats("year")[:2]
+    (-0.169, (4.0, 2010.75))
     """
 
     LIMIT = 1e100
@@ -170,7 +171,13 @@ class RunningScale:
         return max(-cls.LIMIT, min(cls.LIMIT, x))
 
     def observe(self, name: str, value: float) -> float:
-        """Add ``value`` to field ``name``; its standard score including it."""
+        """The standard score of ``value`` in field ``name``; then add it."""
+        z = self.score(name, value)
+        self.add(name, value)
+        return z
+
+    def add(self, name: str, value: float) -> None:
+        """Add ``value`` to the statistics of field ``name``."""
         x = self._bounded(value)
         f = self._field.get(name)
         if f is None:
@@ -184,7 +191,6 @@ class RunningScale:
         mean = self._mean[f] + delta / n
         self._count[f], self._mean[f] = n, mean
         self._m2[f] += delta * (x - mean)
-        return self._z(f, x)
 
     def score(self, name: str, value: float) -> float:
         """The standard score of ``value`` in field ``name``; changes nothing."""

@@ -183,3 +183,27 @@ def test_scores_do_not_depend_on_units(values: list[int], unit: float, offset: f
     a, b = RunningScale(), RunningScale()
     for v in values:
         assert b.observe("x", unit * v + offset) == pytest.approx(a.observe("x", v), abs=1e-6)
+
+
+def test_learning_predicts_what_predict_gave_before() -> None:
+    # The scores of an event's numbers come from the statistics before it. (Entities
+    # are known first: a new entity's seeded start is only drawn when it is learned.)
+    m = model()
+    m.learn_many(world(200, seed=12))
+    for e in world(80, seed=10):
+        before = m.predict(e)
+        assert m.learn(e) == before
+
+
+@pytest.mark.parametrize(("unit", "offset"), UNITS, ids=["seconds", "affine"])
+def test_the_batch_logistic_reference_scales_numbers_too(unit: float, offset: float) -> None:
+    from streamrate.models.logistic_batch import LogisticBatch
+
+    base, other = LogisticBatch(refit_every=200), LogisticBatch(refit_every=200)
+    p_base = base.learn_many(world(600, seed=11)).p_win
+    p_other = other.learn_many(world(600, seed=11, unit=unit, offset=offset)).p_win
+    # L-BFGS stops at its own tolerance on each design: a looser stated tolerance.
+    np.testing.assert_allclose(p_other, p_base, rtol=0, atol=1e-5)
+    raw = LogisticBatch(refit_every=200, scale_numbers=False)
+    p_raw = raw.learn_many(world(600, seed=11, unit=unit, offset=offset)).p_win
+    assert np.max(np.abs(p_raw - p_base)) > 0.01

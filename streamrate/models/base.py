@@ -144,7 +144,14 @@ class Model(ABC):
             )
 
     @classmethod
+    def upgrade_state(cls, state: ModelState) -> ModelState:
+        """A saved state of an older version that this code still reads, in the
+        current version's terms; other states as they are."""
+        return state
+
+    @classmethod
     def from_state(cls, state: ModelState) -> Model:
+        state = cls.upgrade_state(state)
         cls.check_state(state)
         try:
             model = cls(**state.params)
@@ -183,6 +190,15 @@ def with_room(arr: np.ndarray, used: int, rows: int) -> np.ndarray:
     out = np.zeros((max(rows, 2 * arr.shape[0]), *arr.shape[1:]), dtype=arr.dtype)
     out[:used] = arr[:used]
     return out
+
+
+def numbers_read_raw(cls: type[Model], state: ModelState) -> ModelState:
+    """``upgrade_state`` of a model whose version 2 began scaling numbers: a version 1
+    state loads with ``scale_numbers`` off, reading numbers raw as it was trained."""
+    if state.kind == cls.kind and state.version == 1:
+        params = {**state.params, "scale_numbers": False}
+        return ModelState(state.kind, 2, params, state.arrays)
+    return state
 
 
 def entity_arrays(table: EntityTable, **per_entity: np.ndarray) -> dict[str, np.ndarray]:

@@ -61,6 +61,7 @@ from streamrate.models.base import (
     ModelState,
     Prediction,
     Predictions,
+    numbers_read_raw,
     with_room,
 )
 
@@ -218,17 +219,8 @@ class MatchupModel(Model):
         }
 
     @classmethod
-    def check_state(cls, state: ModelState) -> None:
-        if not (state.kind == cls.kind and state.version == 1):
-            super().check_state(state)
-
-    @classmethod
-    def from_state(cls, state: ModelState) -> Model:
-        if state.kind == cls.kind and state.version == 1:
-            # Version 1 read numbers raw: keep doing so for a model trained that way.
-            params = {**state.params, "scale_numbers": False}
-            state = ModelState(state.kind, cls.state_version, params, state.arrays)
-        return super().from_state(state)
+    def upgrade_state(cls, state: ModelState) -> ModelState:
+        return numbers_read_raw(cls, state)
 
     @property
     def width(self) -> int:
