@@ -1,7 +1,9 @@
-"""Speed and memory of the matchup models on pre-encoded events.
+"""Speed and memory of the models, on pre-encoded and on pre-parsed events.
 
 Run by hand:  python bench/bench_models.py [--events 1000000] [--entities 100000]
-              [--memory-entities 1000000]
+              [--memory-entities 1000000] [--only encoded|parsed|ratings|memory]
+
+Times are CPU seconds of this process (see :func:`timed`).
 
 Everything is timed on an :class:`~streamrate.batch.EncodedBatch` built straight
 from random rows (1v1, no context), i.e. "updates on pre-parsed events". In the
@@ -15,8 +17,18 @@ same run it times, on the same events:
   AdaGrad update (the baseline of the speed ratio) and the package's own
   ``backend="numpy"`` fallback, on a slice of the events.
 
+``parsed``: every model through ``learn_many`` on pre-parsed MatchEvent objects
+(1v1, then with 2v2 and draws), with the one-pass encoder and, in the same run,
+the former encoder (tests/encode_reference.py): the per-event microseconds of
+both.
+
+``ratings``: Glicko-2 and TrueSkill, compiled, against the former plain-Python
+models with the former encoder (tests/rating_reference.py), on the same paths
+(``learn_many``, ``learn_batch`` of 100 and 1000), and the update alone.
+
 Memory: bytes per entity at d=16 with ``--memory-entities`` entities (model
-arrays + AdaGrad sums + id map), by tracemalloc.
+arrays + AdaGrad sums + id map), by tracemalloc; resident memory of a process
+holding them is measured by bench/bench_memory.py.
 """
 
 from __future__ import annotations

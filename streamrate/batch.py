@@ -107,10 +107,9 @@ def _members(
     n = len(events)
     firsts = list(map(_FIRST, events))
     seconds = list(map(_SECOND, events))
-    size1 = np.fromiter(map(len, firsts), dtype=np.int32, count=n)
-    size2 = np.fromiter(map(len, seconds), dtype=np.int32, count=n)
     get = table.lookup
-    if n == 0 or (size1.max() == 1 and size2.max() == 1):  # one against one: no padding
+    if max(map(len, firsts), default=1) == 1 == max(map(len, seconds), default=1):
+        # one against one: no sizes to read, no padding to lay out
         rows1 = np.fromiter(map(get, map(_ONLY, firsts), repeat(-1)), dtype=np.int32, count=n)
         rows2 = np.fromiter(map(get, map(_ONLY, seconds), repeat(-1)), dtype=np.int32, count=n)
         if add and n and min(rows1.min(), rows2.min()) < 0:
@@ -118,7 +117,10 @@ def _members(
             for i in np.flatnonzero((rows1 < 0) | (rows2 < 0)).tolist():
                 rows1[i] = row(firsts[i][0])
                 rows2[i] = row(seconds[i][0])
-        return rows1.reshape(n, 1), size1, rows2.reshape(n, 1), size2
+        ones = np.ones(n, dtype=np.int32)
+        return rows1.reshape(n, 1), ones, rows2.reshape(n, 1), ones.copy()
+    size1 = np.fromiter(map(len, firsts), dtype=np.int32, count=n)
+    size2 = np.fromiter(map(len, seconds), dtype=np.int32, count=n)
     ids = list(chain.from_iterable(map(add_tuples, firsts, seconds)))
     rows = np.fromiter(map(get, ids, repeat(-1)), dtype=np.int32, count=len(ids))
     if add:
@@ -176,9 +178,12 @@ def _sparse(
     flat: list[tuple[int, float]] = []
     for m in maps:
         hit = encoded(tuple(m.items()))
-        flat.extend(scaled_items(hit, scale))
-        if learn and hit[1]:
-            add_numbers((hit,), scale)
+        if hit[1]:
+            flat.extend(scaled_items(hit, scale))
+            if learn:
+                add_numbers((hit,), scale)
+        else:
+            flat.extend(hit[0])
         if len(m) < width:
             flat.extend([pad] * (width - len(m)))
     pairs = np.array(flat, dtype=np.float64).reshape(n, width, 2)
