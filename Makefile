@@ -1,6 +1,6 @@
 PYTHON ?= python3
 
-.PHONY: demo test lint install install-test
+.PHONY: demo test lint typecheck warm install install-test
 
 install:
 	$(PYTHON) -m pip install -q -e .
@@ -20,3 +20,11 @@ test: install-test
 lint:
 	$(PYTHON) -m ruff check streamrate tests bench
 	$(PYTHON) -m ruff format --check streamrate tests bench
+
+# Static types of the package (mypy with the pydantic plugin; settings in pyproject.toml).
+typecheck: install-test
+	$(PYTHON) -m mypy streamrate
+
+# Compile every model kernel into the per-user cache (e.g. while building an image).
+warm: install
+	$(PYTHON) -m streamrate warm

@@ -38,7 +38,7 @@ from streamrate import calibration as cal
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
-from streamrate.models.base import Model, ModelState, Prediction, Predictions
+from streamrate.models.base import Learned, Model, ModelState, Prediction, Predictions
 
 WINDOW_EVENTS = 5000
 """Events whose per-member forecasts are kept for comparison (and saved with the state)."""
@@ -124,7 +124,6 @@ class ChallengerSet(Model):
         self.size_ = 0
         self.head_ = 0  # row the next event goes to
         self.events_ = 0  # events learned in all
-        self.last_member_predictions_: dict[str, Predictions] = {}
 
     # -- which member answers -------------------------------------------------------
     def promote(self, label: str) -> None:
@@ -152,16 +151,22 @@ class ChallengerSet(Model):
         return self.active_model.predict(matchup)
 
     def learn(self, event: MatchEvent) -> Prediction:
-        preds = {label: m.learn(event) for label, m in self.models_.items()}
-        self._record(
-            {k: Predictions.from_list([p]) for k, p in preds.items()}, np.array([event.score])
-        )
-        return preds[self.active]
+        got = self.learn_scored([event]).served
+        return Prediction(float(got.p_win[0]), float(got.p_draw[0]))
 
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
-        preds = {label: m.learn_many(events) for label, m in self.models_.items()}
+        return self.learn_scored(events).served
+
+    def learn_scored(self, events: Sequence[MatchEvent]) -> Learned:
+        """The active member's predictions, and every member's under its label (a
+        member's own inner models as ``<label>.<inner label>``)."""
+        got = {label: m.learn_scored(events) for label, m in self.models_.items()}
+        preds = {label: g.served for label, g in got.items()}
         self._record(preds, np.array([ev.score for ev in events], dtype=np.float64))
-        return preds[self.active]
+        parts = dict(preds)
+        for label, g in got.items():
+            parts.update({f"{label}.{inner}": p for inner, p in g.parts.items()})
+        return Learned(preds[self.active], parts)
 
     def learn_batch(self, events: Sequence[MatchEvent]) -> Predictions:
         preds = {label: m.learn_batch(events) for label, m in self.models_.items()}
@@ -169,7 +174,6 @@ class ChallengerSet(Model):
         return preds[self.active]
 
     def _record(self, preds: dict[str, Predictions], score: np.ndarray) -> None:
-        self.last_member_predictions_ = preds
         k = score.size
         if k == 0:
             return
@@ -198,10 +202,6 @@ class ChallengerSet(Model):
             self.p_draw_[rows].copy(),
             self.score_[rows].copy(),
         )
-
-    def component_predictions(self, n: int) -> dict[str, Predictions]:
-        """Every member's predictions of the last ``n`` events, by label."""
-        return self.recent_member_predictions(n)
 
     def recent_member_predictions(self, n: int) -> dict[str, Predictions]:
         """Each member's predictions for the last ``n`` events learned, oldest first.
@@ -344,7 +344,7 @@ def format_compare(table: Mapping[str, Any]) -> str:
 
     ref = table["reference"]
     head = (
-        f"  {'member':<18} {'n':>6} {'log_loss':>9} {'brier':>7} {'ece':>6} {'acc':>6}  "
+        f"  {'member':<18} {'n':>6} {'log_loss':>9} {'brier':>7} {'acc':>6} {'ece':>6}  "
         f"diff vs {ref} [95% CI]"
     )
     lines = [head, "-" * len(head)]
@@ -354,7 +354,7 @@ def format_compare(table: Mapping[str, Any]) -> str:
         mark = "*" if r.get("active") else " "
         lines.append(
             f"{mark} {label[:18]:<18} {r['n']:>6} {num(r['log_loss'], 9, 4)} "
-            f"{num(r['brier'], 7, 4)} {num(r['ece'], 6, 3)} {num(r['accuracy'], 6, 3)}  {diff}"
+            f"{num(r['brier'], 7, 4)} {num(r['accuracy'], 6, 3)} {num(r['ece'], 6, 3)}  {diff}"
         )
     lines.append(f"* answers queries ({table['active']}); over the last {table['events']} events")
     lines.append("log loss in nats on the expected score; CI: paired circular block bootstrap")

@@ -10,6 +10,7 @@ dead letters.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import threading
 import time
@@ -17,6 +18,8 @@ import uuid
 from collections.abc import Callable, Iterable, Iterator
 from pathlib import Path
 from typing import Any
+
+import redis
 
 from streamrate.errors import ServiceError
 
@@ -69,11 +72,32 @@ def send_events(
     return sent
 
 
+CLIENT_ID = uuid.uuid4().hex[:12]
+"""This process's client id: the part of its reply channels the service's fair queue
+keys on (``{sr:duel}:q:reply:<client id>:<request>``)."""
+
+
+def reply_channel(requests: str, client_id: str | None = None) -> str:
+    """A fresh reply channel in the service's reply namespace (``<requests>:reply:``)."""
+    return f"{requests}:reply:{client_id or CLIENT_ID}:{uuid.uuid4().hex}"
+
+
+def _json_object(data: Any) -> dict[str, Any] | None:
+    try:
+        obj = json.loads(data)
+    except (ValueError, TypeError):
+        return None
+    return obj if isinstance(obj, dict) else None
+
+
 def ask(client: Any, channel: str, request: dict[str, Any], timeout_s: float = 5.0) -> Any:
-    """Publish ``request`` on ``channel`` and wait for the reply with its id."""
+    """Publish ``request`` on ``channel`` and wait for the reply with its id.
+
+    Messages on the reply channel that are not JSON objects with our id are skipped.
+    """
     req = dict(request)
     req.setdefault("id", uuid.uuid4().hex)
-    req.setdefault("reply_to", f"{channel}:reply:{uuid.uuid4().hex}")
+    req.setdefault("reply_to", reply_channel(channel))
     pubsub = client.pubsub(ignore_subscribe_messages=True)
     pubsub.subscribe(req["reply_to"])
     try:
@@ -84,12 +108,38 @@ def ask(client: Any, channel: str, request: dict[str, Any], timeout_s: float = 5
             msg = pubsub.get_message(timeout=min(0.1, max(deadline - time.monotonic(), 0.001)))
             if msg is None or msg.get("type") != "message":
                 continue
-            reply = json.loads(msg["data"])
-            if reply.get("id") == req["id"]:
+            reply = _json_object(msg["data"])
+            if reply is not None and reply.get("id") == req["id"]:
                 return reply
         raise ServiceError(f"no reply within {timeout_s} s")
     finally:
         pubsub.close()
+
+
+LIVE_FIELDS = {
+    "first": list,
+    "second": list,
+    "p_first_wins": float,
+    "match_id": str,
+    "model_version": str,
+}
+
+
+def live_update(data: Any) -> dict[str, Any] | None:
+    """A live-feed message as a dict, or None when it is not one (never raises)."""
+    msg = _json_object(data)
+    if msg is None:
+        return None
+    for name, kind in LIVE_FIELDS.items():
+        value = msg.get(name)
+        if kind is float:
+            if isinstance(value, bool) or not isinstance(value, int | float):
+                return None
+        elif not isinstance(value, kind):
+            return None
+    if not all(isinstance(e, str) for e in msg["first"] + msg["second"]):
+        return None
+    return msg
 
 
 def follow(
@@ -99,7 +149,10 @@ def follow(
     stop: threading.Event,
     ready: threading.Event | None = None,
 ) -> None:
-    """Call ``on_message`` with each live-feed message until ``stop`` is set."""
+    """Call ``on_message`` with each live-feed message until ``stop`` is set.
+
+    Anything on the channel that is not a live-feed message is skipped.
+    """
     pubsub = client.pubsub(ignore_subscribe_messages=True)
     pubsub.subscribe(channel)
     if ready is not None:
@@ -108,9 +161,68 @@ def follow(
         while not stop.is_set():
             msg = pubsub.get_message(timeout=0.2)
             if msg is not None and msg.get("type") == "message":
-                on_message(json.loads(msg["data"]))
+                update = live_update(msg["data"])
+                if update is not None:
+                    on_message(update)
     finally:
         pubsub.close()
+
+
+def new_watcher_id() -> str:
+    return f"w-{uuid.uuid4().hex[:16]}"
+
+
+def watch(
+    client: Any,
+    requests: str,
+    pairings: list[dict[str, Any]],
+    on_message: Callable[[dict[str, Any]], None],
+    stop: threading.Event,
+    *,
+    watcher: str | None = None,
+    ttl_s: float = 60.0,
+    ready: threading.Event | None = None,
+    timeout_s: float = 5.0,
+) -> str:
+    """Watch ``pairings`` as one watcher until ``stop``: its own live channel, renewed
+    every ``ttl_s / 3`` seconds (set again if the service forgot it), cleared at the end.
+
+    Returns the watcher id. Raises :class:`ServiceError` when the service refuses.
+    """
+    who = watcher or new_watcher_id()
+    base = {"kind": "watch", "watcher": who, "ttl_s": ttl_s}
+
+    def set_list() -> str:
+        rep = ask(client, requests, {**base, "action": "set", "pairings": pairings}, timeout_s)
+        if not rep.get("ok"):
+            raise ServiceError(str(rep.get("error")))
+        return str(rep["live_channel"])
+
+    live = set_list()
+    pubsub = client.pubsub(ignore_subscribe_messages=True)
+    pubsub.subscribe(live)
+    if ready is not None:
+        ready.set()
+    renew_every_s = ttl_s / 3
+    next_renew = time.monotonic() + renew_every_s
+    try:
+        while not stop.is_set():
+            msg = pubsub.get_message(timeout=0.2)
+            if msg is not None and msg.get("type") == "message":
+                update = live_update(msg["data"])
+                if update is not None:
+                    on_message(update)
+            if time.monotonic() >= next_renew:
+                rep = ask(client, requests, {**base, "action": "renew"}, timeout_s)
+                if rep.get("ok") and rep.get("watching") == 0 and pairings:
+                    set_list()  # the service restarted or the list expired
+                next_renew = time.monotonic() + renew_every_s
+    finally:
+        pubsub.close()
+        # Best effort: if this fails the list expires by itself after ttl_s.
+        with contextlib.suppress(ServiceError, redis.RedisError):
+            ask(client, requests, {**base, "action": "clear"}, min(timeout_s, 2.0))
+    return who
 
 
 def parse_context(items: Iterable[str]) -> dict[str, Any]:
@@ -133,6 +245,15 @@ def parse_context(items: Iterable[str]) -> dict[str, Any]:
     return out
 
 
+def never_seen(reply: dict[str, Any]) -> list[str]:
+    """Entities of a pairing reply the model has never seen (answered with a newcomer's
+    estimate)."""
+    seen = reply.get("seen")
+    if not isinstance(seen, dict):
+        return []
+    return [e for e, n in seen.items() if n == 0]
+
+
 def format_reply(reply: dict[str, Any]) -> str:
     """A short human reading of a reply (the JSON is available with --json)."""
     if not reply.get("ok"):
@@ -149,11 +270,21 @@ def format_reply(reply: dict[str, Any]) -> str:
     if reply.get("kind") == "pairing":
         seen = ", ".join(f"{k}: {v}" for k, v in reply["seen"].items())
         draw = "" if reply.get("p_draw") is None else f", P(draw) = {reply['p_draw']:.3f}"
-        return f"P(first wins) = {reply['p_first_wins']:.3f}{draw}  seen: {seen}  {ver}"
+        lines = [f"P(first wins) = {reply['p_first_wins']:.3f}{draw}  seen: {seen}  {ver}"]
+        lines += [f"never seen: {e} (newcomer estimate)" for e in never_seen(reply)]
+        return "\n".join(lines)
     if reply.get("kind") == "lobby":
         s = reply["split"]
+        if reply["method"] == "exact":
+            how = "exact: every split was scored with the model"
+        else:
+            bound = reply.get("gap_bound")
+            how = "heuristic: teams balanced by each player's mean strength, then scored"
+            if bound is not None:
+                how += f" (strength gap {reply['surrogate_gap']:.3f}, at most {bound:.3f})"
         return (
             f"{' + '.join(s['first'])}  vs  {' + '.join(s['second'])}: "
-            f"P(first wins) = {s['p_first_wins']:.3f} [{reply['method']}] {ver}"
+            f"P(first wins) = {s['p_first_wins']:.3f} [{reply['method']}] {ver}\n"
+            f"[{reply['method']}] = {how}"
         )
     return json.dumps(reply)

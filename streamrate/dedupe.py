@@ -1,4 +1,4 @@
-"""Recognising producer retries: the match ids applied recently.
+"""Recognising producer retries and conflicting reuses: the match ids applied recently.
 
 The record lives *inside* the checkpoint (see :mod:`streamrate.checkpoint`), so
 it is always exactly the set of ids applied up to the checkpoint's stream id: a
@@ -6,17 +6,24 @@ crash rolls the model, the stream position and this record back together, and
 the re-read replays the same entries in the same order, making the same
 decisions. There is no separate Redis key that could disagree with the model.
 
+Each remembered id keeps two things: the time its entry was *received* (the
+stream id's millisecond clock, never the event's own ``finished_at``, which a
+producer controls) and an 8-byte digest of its content
+(:func:`streamrate.events.event_digest`), not the payload. An id seen again with
+the same digest is a retry; with another digest it is a conflict.
+
 Memory is bounded two ways: at most ``keep`` ids (the oldest arrivals go
-first), and arrivals are dropped from the old end while they finished more than
-``window_s`` before the newest applied event. The promise: a retry is recognised
-when its original is among the last ``keep`` applied ids and finished within
-``window_s`` of the newest applied event. A retry later than that is applied
-again (documented limit; size ``keep`` for the retry horizon of the producers).
+first), and arrivals are dropped from the old end once they were received more
+than ``window_s`` before the newest received entry. Stream ids only grow, so no
+entry can move this clock by more than the stream itself moves: a far-future
+``finished_at`` cannot switch the record off. The promise: a retry (or a
+conflict) is recognised when its original is among the last ``keep`` applied ids
+and was received within ``window_s`` of the newest applied entry.
 
 >>> s = SeenIds(keep=2, window_s=3600)
->>> s.add("m-1", 0.0); s.add("m-2", 10.0); s.add("m-3", 20.0)
->>> "m-1" in s, "m-3" in s
-(False, True)
+>>> s.add("m-1", 0.0); s.add("m-2", 10.0); s.add("m-3", 20.0, b"12345678")
+>>> "m-1" in s, "m-3" in s, s.digest("m-3"), s.digest("m-2")
+(False, True, b'12345678', None)
 """
 
 from __future__ import annotations
@@ -27,14 +34,18 @@ import numpy as np
 
 from streamrate.errors import StateError
 
+DIGEST_BYTES = 8
+UNKNOWN_DIGEST = bytes(DIGEST_BYTES)
+"""Stored for ids whose content is not known (records from checkpoint version 1)."""
+
 
 class SeenIds:
-    """Recently applied match ids in arrival order, with their finish times (unix s)."""
+    """Recently applied match ids in arrival order: (received time in unix s, digest)."""
 
     def __init__(self, keep: int, window_s: float) -> None:
         self.keep = keep
         self.window_s = window_s
-        self._ids: OrderedDict[str, float] = OrderedDict()
+        self._ids: OrderedDict[str, tuple[float, bytes]] = OrderedDict()
         self._newest = float("-inf")
 
     def __contains__(self, match_id: object) -> bool:
@@ -43,36 +54,62 @@ class SeenIds:
     def __len__(self) -> int:
         return len(self._ids)
 
-    def add(self, match_id: str, finished_s: float) -> None:
+    def ids(self) -> list[str]:
+        """The remembered ids, oldest arrival first."""
+        return list(self._ids)
+
+    def digest(self, match_id: str) -> bytes | None:
+        """The remembered content digest of ``match_id``; None when absent or unknown."""
+        got = self._ids.get(match_id)
+        if got is None or got[1] == UNKNOWN_DIGEST:
+            return None
+        return got[1]
+
+    def add(self, match_id: str, received_s: float, digest: bytes = UNKNOWN_DIGEST) -> None:
         if self.keep == 0:
             return
         self._ids.pop(match_id, None)
-        self._ids[match_id] = finished_s
-        self._newest = max(self._newest, finished_s)
+        self._ids[match_id] = (received_s, digest)
+        self._newest = max(self._newest, received_s)
         while len(self._ids) > self.keep:
             self._ids.popitem(last=False)
         horizon = self._newest - self.window_s
         while self._ids:
-            first_id, first_s = next(iter(self._ids.items()))
+            first_id, (first_s, _) = next(iter(self._ids.items()))
             if first_s >= horizon:
                 break
             del self._ids[first_id]
 
     def to_arrays(self) -> dict[str, np.ndarray]:
         blob = "\n".join(self._ids).encode("utf-8")
+        n = len(self._ids)
+        values = list(self._ids.values())
         return {
             "ids": np.frombuffer(blob, dtype=np.uint8).copy(),
-            "finished_s": np.fromiter(self._ids.values(), dtype=np.float64, count=len(self._ids)),
+            "received_s": np.fromiter((t for t, _ in values), dtype=np.float64, count=n),
+            "digest": np.frombuffer(b"".join(d for _, d in values), dtype=np.uint8).copy(),
         }
 
     @classmethod
     def from_arrays(cls, keep: int, window_s: float, arrays: dict[str, np.ndarray]) -> SeenIds:
-        blob = bytes(np.asarray(arrays["ids"], dtype=np.uint8))
-        times = np.asarray(arrays["finished_s"], dtype=np.float64)
-        ids = blob.decode("utf-8").split("\n") if blob else []
-        if len(ids) != len(times):
-            raise StateError(f"checkpoint: {len(ids)} seen ids but {len(times)} times")
+        """Rebuild from :meth:`to_arrays`; :class:`StateError` when the arrays disagree."""
+        try:
+            blob = bytes(np.asarray(arrays["ids"], dtype=np.uint8))
+            times = np.asarray(arrays["received_s"], dtype=np.float64)
+            digests = bytes(np.asarray(arrays["digest"], dtype=np.uint8))
+            ids = blob.decode("utf-8").split("\n") if blob else []
+        except KeyError as exc:
+            raise StateError(f"retry record lacks the array {exc.args[0]!r}") from exc
+        except UnicodeDecodeError as exc:
+            raise StateError(f"retry record ids are not UTF-8: {exc}") from exc
+        if len(ids) != len(times) or len(digests) != DIGEST_BYTES * len(times):
+            raise StateError(
+                f"retry record is inconsistent: {len(ids)} ids, {len(times)} times, "
+                f"{len(digests)} digest bytes"
+            )
+        if times.size and not np.isfinite(times).all():
+            raise StateError("retry record holds a time that is not finite")
         out = cls(keep, window_s)
-        for i, t in zip(ids, times.tolist(), strict=True):
-            out.add(i, t)
+        for k, (i, t) in enumerate(zip(ids, times.tolist(), strict=True)):
+            out.add(i, t, digests[k * DIGEST_BYTES : (k + 1) * DIGEST_BYTES])
         return out

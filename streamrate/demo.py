@@ -18,17 +18,32 @@ import tempfile
 import threading
 import time
 from collections.abc import Callable
+from functools import partial
 from typing import Any
 
 import numpy as np
 
 from streamrate import calibration
 from streamrate.client import ask, follow, send_events
-from streamrate.config import CheckpointSettings, RedisSettings, Settings, SpaceSettings
+from streamrate.config import (
+    CheckpointSettings,
+    MetricsSettings,
+    RedisSettings,
+    Settings,
+    SpaceSettings,
+)
+from streamrate.errors import ServiceError
 from streamrate.events import MatchEvent, event_to_json
 from streamrate.models.base import Prediction
-from streamrate.service import ClientFactory, Service, redis_factory
+from streamrate.service import ClientFactory, Service, SpaceService, redis_factory
 from streamrate.simulate import simulate, world_spec
+from streamrate.warm import compile_models, warm_kernels
+
+ASK_TIMEOUT_S = 60.0
+"""A safety net for questions asked once the service says it is ready, not a race:
+the slow part of a first run (compiling) is over by then."""
+RUN_LIMIT_S = 50.0
+"""The demo stops sending after this long from the moment the service is ready."""
 
 
 class _Collector:
@@ -75,7 +90,14 @@ def run_demo(
     out: Callable[[str], None] = print,
 ) -> dict[str, Any]:
     """Run the demo; returns the summary numbers (also printed through ``out``)."""
-    t_start = time.monotonic()
+    t_begin = time.monotonic()
+    model_settings = {"context": "stacked"} if model.startswith("blade") else {}
+    out(f"[demo] loading the {model} model's kernels")
+    warm_s = warm_kernels(
+        say=lambda line: out(f"[demo] {line}"),
+        compile_all=partial(compile_models, [(model, model_settings)]),
+    )
+    out(f"[demo] model kernels ready ({warm_s:.1f} s)")
     world = simulate(world_spec("cyclic", matches=matches, entities=entities, seed=seed))
     events = world.events
     prefix = "demo"
@@ -84,7 +106,7 @@ def run_demo(
     space = SpaceSettings(
         name="duel",
         model=model,
-        model_settings={"context": "stacked"} if model.startswith("blade") else {},
+        model_settings=model_settings,
         batch_count=200,
         block_ms=100,
         checkpoint_every_events=2000,
@@ -92,7 +114,12 @@ def run_demo(
         dedupe_window_s=365 * 86400.0,
     )
     tmp = tempfile.TemporaryDirectory(prefix="streamrate-demo-")
-    settings = Settings(prefix=prefix, spaces=(space,), checkpoint=CheckpointSettings(dir=tmp.name))
+    settings = Settings(
+        prefix=prefix,
+        spaces=(space,),
+        checkpoint=CheckpointSettings(dir=tmp.name),
+        metrics=MetricsSettings(enabled=False),  # the demo prints its own summary
+    )
     keys = settings.keys(space)
     client = clients()
     if redis_url is not None:
@@ -104,18 +131,19 @@ def run_demo(
     service = Service(settings, clients, observers=[collector])
     stop = threading.Event()
     service.start(stop)
-    service.spaces[0].ready.wait(30)
-    service.spaces[0].listening.wait(30)
+    _wait_until_ready(service, service.spaces[0], out)
+    t_start = time.monotonic()
 
     # Watch three duels between frequent players and print how their odds move.
     counts: dict[str, int] = {}
     for ev in events[:500]:
-        for e in ev.entities():
-            counts[e] = counts.get(e, 0) + 1
+        for ent in ev.entities():
+            counts[ent] = counts.get(ent, 0) + 1
     top = sorted(counts, key=lambda e: (-counts[e], e))[:6]
     watched = [{"first": [top[i]], "second": [top[i + 1]]} for i in (0, 2, 4)]
-    reply = ask(clients(), keys.requests, {"kind": "watch", "action": "set", "pairings": watched})
-    out(f"[watch] following {reply['watching']} duels on {keys.live}")
+    reply = _ask(clients, keys.requests, _watch_request(watched))
+    live_channel = str(reply.get("live_channel", keys.live))
+    out(f"[watch] following {reply['watching']} duels on {live_channel}")
     last_live: dict[str, float] = {}
     live_lock = threading.Lock()
 
@@ -126,10 +154,12 @@ def run_demo(
     live_stop = threading.Event()
     live_ready = threading.Event()
     live_thread = threading.Thread(
-        target=follow, args=(clients(), keys.live, on_live, live_stop, live_ready), daemon=True
+        target=follow, args=(clients(), live_channel, on_live, live_stop, live_ready), daemon=True
     )
     live_thread.start()
-    live_ready.wait(5)
+    while not live_ready.wait(0.1):  # subscribed, so that no early message is missed
+        if not live_thread.is_alive():
+            raise ServiceError("the live feed reader stopped before it subscribed")
 
     lines = [event_to_json(ev) for ev in events]
     junk = _spoiled(events)
@@ -161,15 +191,15 @@ def run_demo(
             out(f"[live] after {consumer.live.applied:5d} matches: {odds}")
         lobby = [str(x) for x in lobby_rng.choice(pool, 8, replace=False)]
         question = {"kind": "lobby", "entities": lobby, "team_sizes": [4, 4]}
-        rep = ask(clients(), keys.requests, question)
+        rep = _ask(clients, keys.requests, question)
         s = rep["split"]
         naive = {"kind": "pairing", "first": lobby[:4], "second": lobby[4:]}
-        p_naive = ask(clients(), keys.requests, naive)["p_first_wins"]
+        p_naive = _ask(clients, keys.requests, naive)["p_first_wins"]
         out(
             f"[matchmaker] lobby of 8 -> {'+'.join(s['first'])} vs {'+'.join(s['second'])}"
             f"  P(first wins) {s['p_first_wins']:.2f} (first-come split: {p_naive:.2f})"
         )
-        if time.monotonic() - t_start > 50:
+        if time.monotonic() - t_start > RUN_LIMIT_S:
             out("[demo] time limit reached; stopping early")
             break
     sender.join(5)
@@ -192,6 +222,7 @@ def run_demo(
         "ece": calibration.expected_calibration_error(e, y),
         "log_loss_truth": calibration.log_loss(truth[: len(y)], y),
         "seconds": time.monotonic() - t_start,
+        "seconds_total": time.monotonic() - t_begin,
     }
     out("[summary] before-the-match predictions of the service, scored on the outcomes:")
     out(
@@ -199,7 +230,7 @@ def run_demo(
         f"retries skipped {summary['duplicates']}"
     )
     for _, fields in dead[:4]:
-        out(f"  dead letter: {fields[b'dead.reason'].decode()[:90]}")
+        out(f"  dead letter: {fields[b'dead.reason'].decode()}")
     out(
         f"  accuracy {summary['accuracy']:.3f}   log loss {summary['log_loss']:.4f} "
         f"(true probabilities: {summary['log_loss_truth']:.4f})   Brier {summary['brier']:.4f}"
@@ -209,11 +240,48 @@ def run_demo(
     for p, o, n in zip(curve.mean_forecast, curve.mean_outcome, curve.count, strict=True):
         if n:
             out(f"    {p:.3f} -> {o:.3f}  ({int(n)} matches)")
-    out(f"[demo] done in {summary['seconds']:.1f} s")
+    out(
+        f"[demo] done in {summary['seconds']:.1f} s "
+        f"({summary['seconds_total']:.1f} s with start-up)"
+    )
     if redis_url is not None:
         client.delete(keys.events, keys.dead, keys.ckpt)
     tmp.cleanup()
     return summary
+
+
+def _watch_request(pairings: list[dict[str, list[str]]]) -> dict[str, Any]:
+    return {"kind": "watch", "action": "set", "pairings": pairings}
+
+
+def _ask(clients: ClientFactory, channel: str, request: dict[str, Any]) -> dict[str, Any]:
+    """One question to the ready service; an error reply is an error of the demo."""
+    reply = ask(clients(), channel, request, timeout_s=ASK_TIMEOUT_S)
+    if not reply.get("ok"):
+        raise ServiceError(
+            f"the service refused a {request['kind']} question: {reply.get('error')}"
+        )
+    return dict(reply)
+
+
+def _status(space: SpaceService) -> str:
+    """The live model's status where the service reports one, else "ready" once recovered."""
+    status = getattr(space.consumer.live, "status", None)
+    return "ready" if status is None else str(getattr(status, "value", status))
+
+
+def _wait_until_ready(service: Service, space: SpaceService, out: Callable[[str], None]) -> None:
+    """Wait for the service's readiness signals (no deadline: a slow machine is not an error)."""
+    since = time.monotonic()
+    next_note = since + 10.0
+    while not (space.ready.is_set() and space.listening.is_set() and _status(space) == "ready"):
+        if not all(t.is_alive() for t in service.threads):
+            raise ServiceError("the service stopped while starting (see the log above)")
+        time.sleep(0.05)
+        if time.monotonic() > next_note:
+            next_note += 10.0
+            detail = getattr(space.consumer.live, "detail", "") or "recovering"
+            out(f"[demo] waiting for the service ({time.monotonic() - since:.0f} s): {detail}")
 
 
 def _handled_other(consumer: Any) -> int:

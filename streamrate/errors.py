@@ -6,8 +6,10 @@ Every error the package raises on purpose derives from :class:`StreamrateError`:
     ├── EventError          an event or query failed validation (names the field)
     ├── ConfigError         settings that cannot be used
     ├── StateError          a saved model state or checkpoint cannot be loaded
-    │   └── StateVersionError   written by an incompatible format version
+    │   ├── StateVersionError   written by an incompatible format version
+    │   └── CheckpointError     a checkpoint refused as input (names the file and the problem)
     └── ServiceError        the running service cannot go on (Redis, checkpoint store)
+        └── CheckpointRefusedError  the checkpoint is unreadable or not of these settings
 
 Code translates lower-level failures with ``raise ... from exc`` so that the
 cause stays visible.
@@ -38,3 +40,15 @@ class StateVersionError(StateError):
 
 class ServiceError(StreamrateError):
     """The running service cannot continue."""
+
+
+class CheckpointError(StateError):
+    """A checkpoint that is refused: too large, malformed or holding unusable values.
+
+    The message names the checkpoint (file path or Redis key) and the problem.
+    """
+
+
+class CheckpointRefusedError(ServiceError):
+    """The space's checkpoint cannot be read or was written for other model settings:
+    the service does not start (the message names the checkpoint and the ways out)."""

@@ -15,25 +15,31 @@ Example:
 
 from __future__ import annotations
 
+import hashlib
 import math
-from collections.abc import Iterator
-from datetime import datetime
+from collections.abc import Iterable, Iterator
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Annotated, Any
 
 from pydantic import (
     AfterValidator,
-    AwareDatetime,
     BaseModel,
     ConfigDict,
     Field,
+    GetCoreSchemaHandler,
+    GetJsonSchemaHandler,
     StrictFloat,
     StrictInt,
     StringConstraints,
+    TypeAdapter,
     ValidationError,
+    WithJsonSchema,
     field_validator,
     model_validator,
 )
+from pydantic.json_schema import JsonSchemaValue
+from pydantic_core import core_schema
 
 from streamrate.errors import EventError
 
@@ -49,9 +55,40 @@ MAX_FEATURES_PER_ENTITY = 16
 MAX_NUMBER_ABS = 1e9
 """Numbers beyond this magnitude are rejected: they are almost always unit mistakes."""
 
+ID_CHARS = r"[\p{L}\p{M}\p{N}\p{P}\p{S}]"
+"""The characters of an id or a category: Unicode general categories L (letters),
+M (marks), N (numbers), P (punctuation) and S (symbols), nothing else.
+
+That leaves out every separator (Zs, Zl, Zp: the space, U+00A0 no-break space,
+U+3000 ideographic space, U+2028/U+2029 line and paragraph separators), every
+control (Cc: U+0000-U+001F, U+007F-U+009F including U+0085), every format
+character (Cf: U+200B zero-width space, U+202E right-to-left override and the
+other bidirectional controls, U+FEFF byte-order mark, U+00AD soft hyphen),
+private-use (Co), surrogates (Cs) and unassigned code points (Cn). Categories
+come from the Unicode tables of the validator (pydantic-core's regex engine).
+"""
+_ID_PATTERN = f"^{ID_CHARS}+$"
+
+SCHEMA_ID_PATTERN = (
+    r"^[^\x00-\x20\x7f-\xa0\xad\u061c\u1680\u180e\u2000-\u200f\u2028-\u202f"
+    r"\u205f-\u206f\u3000\ue000-\uf8ff\ufeff\ufff9-\ufffb]+$"
+)
+r"""The id rule as published in JSON Schemas: general regex engines (Python's ``re``,
+ECMA-262 without the ``u`` flag) lack ``\p{..}`` classes, so the schema lists the
+separators, controls, invisible and private-use characters it refuses instead. It
+is the looser of the two; the service applies :data:`ID_CHARS` exactly."""
+
+
+def _id_schema(max_chars: int) -> WithJsonSchema:
+    return WithJsonSchema(
+        {"type": "string", "minLength": 1, "maxLength": max_chars, "pattern": SCHEMA_ID_PATTERN}
+    )
+
+
 EntityId = Annotated[
     str,
-    StringConstraints(min_length=1, max_length=MAX_ID_CHARS, pattern=r"^[^\x00-\x20\x7f]+$"),
+    StringConstraints(min_length=1, max_length=MAX_ID_CHARS, pattern=_ID_PATTERN),
+    _id_schema(MAX_ID_CHARS),
 ]
 FieldName = Annotated[
     str,
@@ -61,8 +98,78 @@ FieldName = Annotated[
 ]
 Category = Annotated[
     str,
-    StringConstraints(min_length=1, max_length=MAX_CATEGORY_CHARS, pattern=r"^[^\x00-\x1f\x7f]+$"),
+    StringConstraints(min_length=1, max_length=MAX_CATEGORY_CHARS, pattern=_ID_PATTERN),
+    _id_schema(MAX_CATEGORY_CHARS),
 ]
+
+_one_id_char: TypeAdapter[str] = TypeAdapter(Annotated[str, StringConstraints(pattern=_ID_PATTERN)])
+
+
+def bad_ids(ids: Iterable[str]) -> str | None:
+    """What is wrong with a list of ids read back from storage, or None when all is well.
+
+    Same rule as the event format (checked by the same validator, one distinct
+    character at a time), 1 to :data:`MAX_ID_CHARS` characters, no id twice.
+
+    >>> bad_ids(["kestrel", "marlow"]) is None, bad_ids(["kes trel"])
+    (True, "id character ' ' (U+0020) is not a letter, mark, digit, punctuation or symbol")
+    """
+    seen: set[str] = set()
+    for i in ids:
+        if not 0 < len(i) <= MAX_ID_CHARS:
+            return f"id {i[:MAX_ID_CHARS]!r} is not 1 to {MAX_ID_CHARS} characters long"
+        if i in seen:
+            return f"id {i!r} is listed twice"
+        seen.add(i)
+    chars = set().union(*seen) if seen else set()
+    for ch in chars:
+        try:
+            _one_id_char.validate_python(ch)
+        except ValidationError:
+            return (
+                f"id character {ch!r} (U+{ord(ch):04X}) is not a letter, mark, digit, "
+                "punctuation or symbol"
+            )
+    return None
+
+
+RFC3339 = (
+    r"^[0-9]{4}-[0-9]{2}-[0-9]{2}[Tt][0-9]{2}:[0-9]{2}:[0-9]{2}(\.[0-9]{1,9})?"
+    r"([Zz]|[+-][0-9]{2}:[0-9]{2})$"
+)
+"""An RFC 3339 date-time with its offset (section 5.6); leap seconds (``:60``) are refused."""
+
+
+class _Rfc3339:
+    """``finished_at`` as the wire carries it: an RFC 3339 string, never a number.
+
+    JSON input must be a string matching :data:`RFC3339` (checked in pydantic-core,
+    then parsed there); Python callers may also pass an aware ``datetime``.
+    """
+
+    @classmethod
+    def __get_pydantic_core_schema__(
+        cls, source: Any, handler: GetCoreSchemaHandler
+    ) -> core_schema.CoreSchema:
+        text = core_schema.chain_schema(
+            [
+                core_schema.str_schema(strict=True, pattern=RFC3339),
+                core_schema.datetime_schema(tz_constraint="aware"),
+            ]
+        )
+        aware = core_schema.datetime_schema(strict=True, tz_constraint="aware")
+        return core_schema.json_or_python_schema(
+            json_schema=text, python_schema=core_schema.union_schema([aware, text])
+        )
+
+    @classmethod
+    def __get_pydantic_json_schema__(
+        cls, schema: core_schema.CoreSchema, handler: GetJsonSchemaHandler
+    ) -> JsonSchemaValue:
+        return {"type": "string", "format": "date-time", "pattern": RFC3339}
+
+
+Rfc3339Time = Annotated[datetime, _Rfc3339]
 
 
 def _finite(x: float) -> float:
@@ -129,12 +236,14 @@ class MatchEvent(Matchup):
     """A finished match: who played, in what context, and the first side's score.
 
     ``score`` is 1 when the first side won, 0.5 for a draw, 0 when it lost.
-    ``finished_at`` is an RFC 3339 time with an offset. ``match_id`` is unique per
-    match; a second event with the same id is a producer retry.
+    ``finished_at`` is an RFC 3339 string with an offset (never a number).
+    ``match_id`` is unique per match: a second event with the same id and the
+    same content (:func:`event_digest`) is a producer retry; with other content
+    it is a conflict. Ids and string categories use :data:`ID_CHARS` only.
     """
 
     match_id: EntityId
-    finished_at: AwareDatetime
+    finished_at: Rfc3339Time
     score: float
 
     @field_validator("score", mode="before")
@@ -145,12 +254,25 @@ class MatchEvent(Matchup):
         return float(v)
 
 
+def _message(err: Any) -> str:
+    """One error in plain words; patterns are named by their rule, not their regex."""
+    kind = err["type"]
+    field = str(err["loc"][0]) if err["loc"] else ""
+    if field == "finished_at" and kind in ("string_type", "string_pattern_mismatch"):
+        return "must be an RFC 3339 time string with an offset, e.g. 2026-03-01T18:00:00Z"
+    if kind == "string_pattern_mismatch" and err["ctx"].get("pattern") == _ID_PATTERN:
+        return (
+            "must be letters, marks, digits, punctuation or symbols only "
+            "(no spaces, controls or invisible characters)"
+        )
+    return str(err["msg"]).removeprefix("Value error, ")
+
+
 def _describe(exc: ValidationError) -> str:
     parts = []
     for err in exc.errors(include_url=False):
         loc = ".".join(str(p) for p in err["loc"]) or "event"
-        msg = err["msg"].removeprefix("Value error, ")
-        parts.append(f"{loc}: {msg}")
+        parts.append(f"{loc}: {_message(err)}")
     return "; ".join(parts)
 
 
@@ -210,6 +332,75 @@ def read_events(path: Path | str) -> Iterator[MatchEvent]:
                 yield parse_event(line)
             except EventError as exc:
                 raise EventError(f"{path}:{lineno}: {exc}") from exc
+
+
+EARLIEST_FINISH = datetime(2000, 1, 1, tzinfo=UTC)
+"""Events that finished before this are refused by the service (a unit or clock mistake)."""
+_EARLIEST_S = EARLIEST_FINISH.timestamp()
+
+
+def time_problem(event: MatchEvent, received_ms: int, future_limit_s: float) -> str | None:
+    """Why ``finished_at`` cannot be trusted against the time the entry was received, or None.
+
+    ``received_ms`` is the stream id's clock (milliseconds); an event may finish at
+    most ``future_limit_s`` after it, and not before :data:`EARLIEST_FINISH`.
+
+    >>> ev = parse_event(b'{"match_id": "m-1", "finished_at": "9999-12-31T00:00:00Z",'
+    ...                  b' "first": ["kestrel"], "second": ["marlow"], "score": 1}')
+    >>> time_problem(ev, 1_780_000_000_000, 86400.0)[:40]
+    'finished_at: 9999-12-31T00:00:00+00:00 i'
+    """
+    t = event.finished_at.timestamp()
+    if t > received_ms / 1000 + future_limit_s:
+        received = datetime.fromtimestamp(received_ms / 1000, tz=UTC)
+        return (
+            f"finished_at: {event.finished_at.isoformat()} is more than {future_limit_s:g} s "
+            f"after the entry was received ({received.isoformat(timespec='seconds')})"
+        )
+    if t < _EARLIEST_S:
+        return f"finished_at: {event.finished_at.isoformat()} is before 2000-01-01"
+    return None
+
+
+def event_digest(event: MatchEvent) -> bytes:
+    """8-byte BLAKE2b of the event's canonical text: what "the same content" means.
+
+    Canonical: fields in a fixed order, context and feature names sorted,
+    ``finished_at`` as its instant (any offset spelling), numbers as floats, each
+    value tagged string or number. Parts are joined with control characters,
+    which no id, name or category may contain, so the text is unambiguous. Key
+    order, spacing, ``1`` against ``1.0`` and ``Z`` against ``+00:00`` do not
+    make two events differ; any other change does.
+
+    >>> a = parse_event(b'{"match_id": "m-1", "finished_at": "2026-03-01T19:00:00+01:00",'
+    ...                 b' "first": ["kestrel"], "second": ["marlow"], "score": 1}')
+    >>> b = parse_event(b'{"score": 1.0, "match_id": "m-1", "first": ["kestrel"],'
+    ...                 b' "second": ["marlow"], "finished_at": "2026-03-01T18:00:00Z"}')
+    >>> event_digest(a) == event_digest(b), len(event_digest(a))
+    (True, 8)
+    """
+    parts = [
+        event.match_id,
+        repr(event.finished_at.timestamp()),
+        "\x1f".join(event.first),
+        "\x1f".join(event.second),
+        repr(event.score),
+    ]
+    if event.context:
+        parts.append(_canonical_values(event.context))
+    if event.features:
+        parts.append(
+            "\x1c".join(f"{k}\x1b{_canonical_values(v)}" for k, v in sorted(event.features.items()))
+        )
+    text = "\x1e".join(parts)
+    return hashlib.blake2b(text.encode("utf-8"), digest_size=8).digest()
+
+
+def _canonical_values(values: dict[str, Any]) -> str:
+    return "\x1f".join(
+        f"{k}\x1ds{v}" if isinstance(v, str) else f"{k}\x1dn{float(v)!r}"
+        for k, v in sorted(values.items())
+    )
 
 
 def time_key(event: MatchEvent) -> datetime:

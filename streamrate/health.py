@@ -4,7 +4,9 @@ Two sources:
 
 * a running service's metrics endpoint (``/metrics``, text format): consumer lag
   and pending entries, dead-letter and query-error shares (cumulative since the
-  service started), checkpoint age, and per model the recent-window log loss,
+  service started), checkpoint age, the consumer's state (``bad`` unless it is
+  ready), loop errors in a row (``bad`` above 0) and its Redis connection
+  (``bad`` while unreachable), and per model the recent-window log loss,
   ECE, calibration slope, drift PSI per feature and change detections;
 * a checkpoint file: model, events applied, entities known, last stream id,
   checkpoint age, dead-letter share of the events it covers.
@@ -31,6 +33,7 @@ from pathlib import Path
 
 from prometheus_client.parser import text_string_to_metric_families
 
+from streamrate.config import MetricsSettings
 from streamrate.drift import PSI_MAJOR, PSI_MODERATE
 from streamrate.errors import ConfigError, ServiceError
 
@@ -43,6 +46,8 @@ DEAD_LETTER_ALERT_SHARE = 0.01
 CHECKPOINT_ALERT_AGE_S = 900.0
 QUERY_ERROR_ALERT_SHARE = 0.05
 MIN_WINDOW_EVENTS = 500
+LOOP_ERROR_STREAK_ALERT = 0
+"""Any loop error not yet followed by a good turn of the loop: the consumer is failing."""
 SLOPE_WATCH = (0.8, 1.25)
 """Calibration slope outside this range is worth a look (our choice, no alert)."""
 
@@ -88,6 +93,11 @@ def _samples(text: str) -> Samples:
     except ValueError as exc:
         raise ServiceError(f"the metrics text could not be parsed: {exc}") from exc
     return out
+
+
+def metric_samples(text: str) -> Samples:
+    """Samples of a metrics page by name: ``{name: [(labels, value), ...]}``."""
+    return _samples(text)
 
 
 def _by_space(samples: Samples, name: str, **match: str) -> dict[str, float]:
@@ -139,8 +149,47 @@ def from_metrics_text(text: str, now_s: float | None = None) -> list[Line]:
                  f"since start; alert above {QUERY_ERROR_ALERT_SHARE:.0%}",
                  QUERY_ERROR_ALERT_SHARE)
         )  # fmt: skip
+    lines += _consumer_lines(s)
     lines += _quality_lines(s)
     return sorted(lines, key=lambda x: x.space)  # stable: keeps the order within a space
+
+
+def _consumer_lines(s: Samples) -> list[Line]:
+    """Whether the consumer is answering, failing or cut off from Redis (services
+    that do not export these series get no such lines)."""
+    lines: list[Line] = []
+    states: dict[str, str] = {}
+    for labels, value in s.get("streamrate_consumer_state", []):
+        if value == 1:
+            states[labels.get("space", "")] = labels.get("state", "")
+    streak = _by_space(s, "streamrate_consumer_consecutive_loop_errors")
+    connected = _by_space(s, "streamrate_redis_up")
+    for space in sorted(set(states) | set(streak) | set(connected)):
+        if space in states:
+            state = states[space]
+            why = {
+                "ready": "applying events and answering",
+                "loading": "loading the checkpoint: questions get 'not ready' replies",
+                "stalled": "cannot apply events: questions get 'not ready' replies",
+            }.get(state, state)
+            lines.append(
+                Line(space, f"consumer {state}", math.nan, "", OK if state == "ready" else BAD, why)
+            )
+        if space in streak:
+            v = streak[space]
+            lines.append(
+                Line(space, "loop errors in a row", v, "",
+                     _level(v, None, LOOP_ERROR_STREAK_ALERT),
+                     "errors since the last good turn of the loop; alert above 0 for 2 min",
+                     LOOP_ERROR_STREAK_ALERT)
+            )  # fmt: skip
+        if space in connected:
+            v = connected[space]
+            lines.append(
+                Line(space, "Redis connected", v, "", OK if v >= 1 else BAD,
+                     "the consumer's connection; 0 while Redis is unreachable")
+            )  # fmt: skip
+    return lines
 
 
 def _quality_lines(s: Samples) -> list[Line]:
@@ -301,3 +350,15 @@ def health_png(path: Path | str, lines: list[Line]) -> None:
     ax.set_title(f"streamrate health: {worst(lines)}")
     fig.savefig(path, dpi=110)
     plt.close(fig)
+
+
+def metrics_url(metrics: MetricsSettings) -> str:
+    """Where a service with these metrics settings serves its page (loopback for 0.0.0.0).
+
+    >>> metrics_url(MetricsSettings(bind="0.0.0.0", port=8564))
+    'http://127.0.0.1:8564/metrics'
+    """
+    host = {"0.0.0.0": "127.0.0.1", "::": "::1", "": "127.0.0.1"}.get(metrics.bind, metrics.bind)
+    if ":" in host:
+        host = f"[{host}]"
+    return f"http://{host}:{metrics.port}/metrics"

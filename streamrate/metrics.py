@@ -17,13 +17,26 @@ configured bind address and port.
 
 from __future__ import annotations
 
+import errno
+import logging
 from collections.abc import Sequence
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, start_http_server
 
+from streamrate.errors import ServiceError
+
 EVENT_OUTCOMES = ("applied", "dead_lettered", "duplicate")
 QUERY_KINDS = ("pairing", "lobby", "watch", "invalid")
 QUERY_OUTCOMES = ("ok", "error")
+OUTAGE_ROLES = ("consumer", "queries")
+QUERY_SHED_REASONS = ("queue_full", "client_queue_full", "expensive", "too_old")
+QUERY_FAILED_STAGES = ("answer", "publish")
+QUERY_LOOPS = ("subscriber", "answerer")
+QUERY_RESUBSCRIBE_REASONS = ("connection_lost", "backlog")
+CONSUMER_STATES = ("loading", "ready", "stalled")
+"""``loading``: the checkpoint is not loaded yet; ``ready``: applying events and
+answering; ``stalled``: the consumer cannot apply events (loop errors, Redis
+unreachable). Queries get a "not ready" error reply unless ``ready``."""
 _BATCH_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5)
 _QUERY_BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1)
 
@@ -54,7 +67,26 @@ class ServiceMetrics:
         )
         self.reconnects = Counter(
             "streamrate_redis_outages_total",
-            "Times the Redis connection was lost and the service began reconnecting.",
+            "Times a Redis connection was lost and the service began reconnecting, "
+            "by the thread that lost it (the consumer or the query responder).",
+            ["space", "role"],
+            registry=r,
+        )
+        self.state = Gauge(
+            "streamrate_consumer_state",
+            "1 for the consumer's current state (loading, ready, stalled), 0 for the others.",
+            ["space", "state"],
+            registry=r,
+        )
+        self.error_streak = Gauge(
+            "streamrate_consumer_consecutive_loop_errors",
+            "Loop errors since the consumer last applied a batch without error (0 when healthy).",
+            ["space"],
+            registry=r,
+        )
+        self.redis_connected = Gauge(
+            "streamrate_redis_up",
+            "1 while the consumer's Redis connection works, 0 during an outage.",
             ["space"],
             registry=r,
         )
@@ -109,13 +141,75 @@ class ServiceMetrics:
             ["space"],
             registry=r,
         )
+        self.query_shed = Counter(
+            "streamrate_query_shed_total",
+            "Requests refused with a busy reply (or dropped when none could be sent), by reason.",
+            ["space", "reason"],
+            registry=r,
+        )
+        self.query_failed = Counter(
+            "streamrate_query_failed_total",
+            "Requests that failed inside the service: an unexpected error while answering,"
+            " or a reply that could not be published (for example a Redis permission error).",
+            ["space", "stage"],
+            registry=r,
+        )
+        self.query_restarts = Counter(
+            "streamrate_query_loop_restarts_total",
+            "Times a query loop died of an unexpected error and was started again.",
+            ["space", "loop"],
+            registry=r,
+        )
+        self.query_resubscribes = Counter(
+            "streamrate_query_resubscribes_total",
+            "Times the request subscription was renewed: its connection was lost"
+            " (Redis drops a subscriber whose output buffer overflows), or its backlog"
+            " was older than the longest useful wait.",
+            ["space", "reason"],
+            registry=r,
+        )
+        self.query_outages = Counter(
+            "streamrate_query_redis_outages_total",
+            "Times a query-side connection (subscriber or replies) lost Redis and began"
+            " reconnecting (the consumer's outages: streamrate_redis_outages_total).",
+            ["space"],
+            registry=r,
+        )
+        self.query_queue = Gauge(
+            "streamrate_query_queued_entries",
+            "Requests waiting between the subscriber and the answering thread.",
+            ["space"],
+            registry=r,
+        )
+        self.watchers = Gauge(
+            "streamrate_livefeed_watcher_entries",
+            "Watchers with a live watch list.",
+            ["space"],
+            registry=r,
+        )
         for s in spaces:
+            for reason in QUERY_SHED_REASONS:
+                self.query_shed.labels(space=s, reason=reason)
+            for stage in QUERY_FAILED_STAGES:
+                self.query_failed.labels(space=s, stage=stage)
+            for loop in QUERY_LOOPS:
+                self.query_restarts.labels(space=s, loop=loop)
+            for reason in QUERY_RESUBSCRIBE_REASONS:
+                self.query_resubscribes.labels(space=s, reason=reason)
+            self.query_queue.labels(space=s)
+            self.query_outages.labels(space=s)
+            self.watchers.labels(space=s)
             for o in EVENT_OUTCOMES:
                 self.events.labels(space=s, outcome=o)
-            for metric in (self.loop_errors, self.claimed, self.reconnects, self.live_published):
+            for metric in (self.loop_errors, self.claimed, self.live_published):
                 metric.labels(space=s)
-            for g in (self.lag, self.pending, self.checkpoint_time):
+            for role in OUTAGE_ROLES:
+                self.reconnects.labels(space=s, role=role)
+            for g in (self.lag, self.pending, self.checkpoint_time, self.error_streak):
                 g.labels(space=s)
+            self.redis_connected.labels(space=s).set(1)
+            for st in CONSUMER_STATES:
+                self.state.labels(space=s, state=st).set(1 if st == "loading" else 0)
             self.batch_seconds.labels(space=s)
             self.checkpoint_seconds.labels(space=s)
             for k in QUERY_KINDS:
@@ -125,5 +219,18 @@ class ServiceMetrics:
 
 
 def serve_metrics(registry: CollectorRegistry, bind: str, port: int) -> None:
-    """Expose ``registry`` over HTTP at ``http://bind:port/metrics`` (daemon thread)."""
-    start_http_server(port, addr=bind, registry=registry)
+    """Expose ``registry`` over HTTP at ``http://bind:port/metrics`` (daemon thread).
+
+    :class:`ServiceError` (one line, no traceback) when the address cannot be taken.
+    """
+    try:
+        start_http_server(port, addr=bind, registry=registry)
+    except OSError as exc:
+        busy = exc.errno == errno.EADDRINUSE
+        why = "is in use by another process" if busy else f"cannot be opened ({exc.strerror})"
+        raise ServiceError(
+            f"metrics address {bind}:{port} {why}: choose another with metrics.port "
+            f"(--set metrics.port=N) or turn metrics off (--set metrics.enabled=false)"
+        ) from exc
+    host = f"[{bind}]" if ":" in bind else bind
+    logging.getLogger("streamrate.service").info("metrics at http://%s:%d/metrics", host, port)

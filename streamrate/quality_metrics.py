@@ -30,17 +30,22 @@ which Prometheus comparisons treat as false, so it never fires an alert.
 
 from __future__ import annotations
 
+import logging
 import math
 import time
 from collections.abc import Callable, Mapping
 
 from prometheus_client import CollectorRegistry, Counter, Gauge
 
+from streamrate.checkpoint import PartState
 from streamrate.config import QualitySettings
 from streamrate.events import MatchEvent
 from streamrate.models.base import Prediction
 from streamrate.quality import CHANGE_DIRECTIONS, MonitorSettings, QualityMonitor, QualitySnapshot
+from streamrate.quality_state import monitor_from_state, monitor_state
 from streamrate.recalibrate import OnlineRecalibrator
+
+log = logging.getLogger("streamrate.quality")
 
 WINDOWS = ("recent", "reference")
 _QLABELS = ["space", "model", "window", "group"]
@@ -174,7 +179,8 @@ class QualityObserver:
     Scores each applied event (O(1)), counts change-detector firings at once and
     republishes the gauges when ``publish_every_s`` seconds of ``clock`` have
     passed since the last time (reading the windows costs O(window), so they are
-    read at about the pace Prometheus scrapes, not per event).
+    read at about the pace Prometheus scrapes, not per event); :meth:`tick` does
+    the same on a timer while no events arrive.
     """
 
     def __init__(
@@ -199,6 +205,7 @@ class QualityObserver:
         self.on_change = on_change
         self.clock = clock
         self._published_at = clock()
+        self._unpublished = 0  # events scored since the gauges were last set
 
     def __call__(self, event: MatchEvent, prediction: Prediction, model_name: str) -> None:
         fired = self.monitor.add(model_name, prediction.expected_score, event.score, event.context)
@@ -206,13 +213,42 @@ class QualityObserver:
             self.metrics.change_fired(self.space, model_name, direction)
             if self.on_change is not None:
                 self.on_change(model_name, direction)
+        self._unpublished += 1
+        self.tick()
+
+    def tick(self) -> None:
+        """Publish when ``publish_every_s`` has passed since the last time and events
+        came in since. The consumer calls this from its loop whether events arrive
+        or not, so the gauges are never older than about ``publish_every_s`` (a
+        burst is shown in full once the stream goes quiet, not at the next event)."""
         now = self.clock()
-        if now - self._published_at >= self.publish_every_s:
+        if self._unpublished and now - self._published_at >= self.publish_every_s:
             self._publish(now)
 
     def publish(self) -> None:
         """Set every gauge from the monitor now."""
         self._publish(self.clock())
+
+    # -- state kept in the checkpoint (streamrate.checkpoint.Stateful) ------------------
+    state_name = "quality"
+
+    def state(self) -> PartState:
+        """The windows, drift windows and change detectors, for the checkpoint."""
+        return monitor_state(self.monitor)
+
+    def load_state(self, part: PartState | None) -> None:
+        """Continue from a checkpoint's state (``None``: none saved, start empty) and
+        publish it at once, so the gauges continue the series they showed before."""
+        settings = self.monitor.settings
+        mon = None if part is None else monitor_from_state(settings, part)
+        if mon is None and part is not None:
+            log.warning(
+                "space %s: the checkpoint's quality windows were kept under other quality "
+                "settings; they start empty",
+                self.space,
+            )
+        self.monitor = mon if mon is not None else QualityMonitor(settings)
+        self.publish()
 
     def _publish(self, now: float) -> None:
         recs = self.recalibrators
@@ -220,6 +256,7 @@ class QualityObserver:
         # (recovery from a checkpoint) while the observer stays.
         self.metrics.publish(self.space, self.monitor, recs() if callable(recs) else recs)
         self._published_at = now
+        self._unpublished = 0
 
 
 def quality_observers(

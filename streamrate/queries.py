@@ -11,8 +11,11 @@ carries the same ``id``. Kinds:
   number of entities: reply the pairwise matrix ``matrix[i][j]`` = P(i beats j,
   i listed first; 0.5 on the diagonal) and the ``split`` into teams of those sizes whose
   predicted outcome is closest to even, with its probability.
-* ``watch`` - ``action`` ``set`` / ``add`` / ``clear`` and ``pairings``: the live feed
-  then publishes fresh odds of those pairings (see :mod:`streamrate.livefeed`).
+* ``watch`` - ``watcher`` (an id the client picks), ``action`` ``set`` / ``add`` /
+  ``renew`` / ``clear``, ``pairings`` and optional ``ttl_s``: the live feed then
+  publishes fresh odds of those pairings on the watcher's own channel, named in
+  the reply as ``live_channel`` (see :mod:`streamrate.livefeed`). The watch ends
+  ``ttl_s`` seconds after the watcher's last watch request unless renewed.
 * ``promote`` - ``model``: the member of a challenger set (model ``challengers``,
   :mod:`streamrate.challengers`) that answers from now on; reply ``previous``.
   Pairing and lobby replies of a challenger set name the member in ``answered_by``.
@@ -20,9 +23,11 @@ carries the same ``id``. Kinds:
   the members over the recent window (``members``: per label n, log loss, Brier,
   ECE, accuracy and the paired bootstrap interval of the log-loss difference).
 
-Anything else gets ``{"id": ..., "ok": false, "error": "<what is wrong>"}``; when
-the request is too broken to name a reply channel the error goes to
-``{sr:space}:q:errors``. Nothing is ever dropped silently.
+Replies go only to channels in the space's reply namespace: ``reply_to`` must
+start with ``{sr:space}:q:reply:``. Anything else gets
+``{"id": ..., "ok": false, "error": "<what is wrong>"}``; when the request is too
+broken to name a usable reply channel (or names one outside the namespace) the
+error goes to ``{sr:space}:q:errors``.
 
 Lobby split: up to ``lobby_exact_max`` entities every split is scored with the
 model itself (exact). Larger lobbies use a surrogate: entity strength
@@ -39,21 +44,24 @@ surrogate (logit) units.
 from __future__ import annotations
 
 import itertools
-import json
+import logging
 import math
-import time
+import re
 from collections.abc import Callable, Sequence
 from typing import Annotated, Any, Literal, Protocol
 
 import numpy as np
+import pydantic_core
 from pydantic import BaseModel, ConfigDict, Field, TypeAdapter, ValidationError
 
 from streamrate.batch import EncodedBatch
 from streamrate.challengers import ChallengerSet, compare_window
-from streamrate.errors import ConfigError
+from streamrate.errors import ConfigError, EventError
 from streamrate.events import ContextMap, EntityId, Matchup, Side
 from streamrate.models.base import Model, Prediction
 
+WatcherId = Annotated[str, Field(pattern=r"^[A-Za-z0-9_.\-]{1,64}$")]
+log = logging.getLogger("streamrate.queries")
 CorrelationId = Annotated[str, Field(min_length=1, max_length=128)]
 Channel = Annotated[str, Field(min_length=1, max_length=256, pattern=r"^[^\x00-\x20\x7f]+$")]
 _STRICT = ConfigDict(extra="forbid", frozen=True)
@@ -88,8 +96,11 @@ class WatchRequest(BaseModel):
     kind: Literal["watch"]
     id: CorrelationId
     reply_to: Channel
-    action: Literal["set", "add", "clear"]
+    action: Literal["set", "add", "renew", "clear"]
     pairings: Annotated[list[Pairing], Field(max_length=MAX_WATCH)] = Field(default_factory=list)
+    # None: the shared watcher of older clients (channel ``{sr:space}:live``).
+    watcher: WatcherId | None = None
+    ttl_s: Annotated[float, Field(gt=0)] | None = None
 
 
 MemberLabel = Annotated[str, Field(min_length=1, max_length=48)]
@@ -113,7 +124,7 @@ class CompareRequest(BaseModel):
 
 AnyRequest = PairingRequest | LobbyRequest | WatchRequest | PromoteRequest | CompareRequest
 Request = Annotated[AnyRequest, Field(discriminator="kind")]
-_REQUEST = TypeAdapter(Request)
+_REQUEST: TypeAdapter[AnyRequest] = TypeAdapter(Request)
 
 
 def request_schema() -> dict[str, Any]:
@@ -133,6 +144,16 @@ class ModelView(Protocol):
     applied: int
     changed: bool
 
+    @property
+    def status(self) -> str:
+        """``loading`` / ``ready`` / ``stalled`` (see :class:`streamrate.consumer.LiveModel`)."""
+
+    @property
+    def detail(self) -> str: ...
+
+    @property
+    def behind(self) -> int | None: ...
+
 
 def _matchup(first: Sequence[str], second: Sequence[str], context: dict[str, Any]) -> Matchup:
     # Already validated; skip a second validation in the hot path.
@@ -149,25 +170,39 @@ def pair_matrix(model: Model, ids: Sequence[str], context: dict[str, Any]) -> np
     """
     n = len(ids)
     m = np.full((n, n), 0.5)
-    if n >= 2 and hasattr(model, "encode") and hasattr(model, "predict_encoded"):
-        return _pair_matrix_encoded(model, ids, context, m)
+    fill_rows(model, ids, context, m, 0, n)
+    return m
+
+
+def fill_rows(
+    model: Model, ids: Sequence[str], context: dict[str, Any], m: np.ndarray, lo: int, hi: int
+) -> None:
+    """Fill rows ``lo:hi`` of the pair matrix ``m`` (see :func:`pair_matrix`)."""
+    n = len(ids)
+    if n < 2 or hi <= lo:
+        return
+    if hasattr(model, "encode") and hasattr(model, "predict_encoded"):
+        _fill_rows_encoded(model, ids, context, m, lo, hi)
+        return
     predict = model.predict
-    for i in range(n):
+    for i in range(lo, hi):
         a = (ids[i],)
         for j in range(n):
             if i != j:
                 m[i, j] = predict(_matchup(a, (ids[j],), context)).p_win
-    return m
 
 
-def _pair_matrix_encoded(
-    model: Any, ids: Sequence[str], context: dict[str, Any], m: np.ndarray
-) -> np.ndarray:
+def _fill_rows_encoded(
+    model: Any, ids: Sequence[str], context: dict[str, Any], m: np.ndarray, lo: int, hi: int
+) -> None:
     # Encode one pairing to learn the context slots, then broadcast the rows of
-    # every i < j pair into one batch: one vectorised prediction for the matrix.
+    # every (i, j) pair of the slice into one batch: one vectorised prediction.
     one = model.encode([_matchup((ids[0],), (ids[1],), context)], add=False)
     rows = np.array([model.entities_.get(e) for e in ids], dtype=np.int32)
-    iu, ju = np.nonzero(~np.eye(len(ids), dtype=bool))
+    n = len(ids)
+    mask = ~np.eye(n, dtype=bool)[lo:hi]
+    iu, ju = np.nonzero(mask)
+    iu = iu + lo
     k = len(iu)
     batch = EncodedBatch(
         first=rows[iu].reshape(k, 1),
@@ -180,7 +215,6 @@ def _pair_matrix_encoded(
         second_size=np.ones(k, dtype=np.int32),
     )
     m[iu, ju] = model.predict_encoded(batch).p_win
-    return m
 
 
 def _closeness(p: Prediction) -> float:
@@ -270,8 +304,21 @@ def strengths(matrix: np.ndarray) -> np.ndarray:
     return lo.sum(axis=1) / max(n - 1, 1)
 
 
-class QueryError(ValueError):
+class QueryError(EventError):
     """A request that cannot be answered; the message goes back to the asker."""
+
+
+MAX_ERROR_CHARS = 300
+"""Error texts (replies and log lines) are cut to this length: never the payload."""
+
+
+class NotReadyError(QueryError):
+    """The model is not loaded yet or the consumer cannot apply events; the reply
+    carries ``status`` (``loading`` or ``stalled``)."""
+
+    def __init__(self, status: str, detail: str) -> None:
+        super().__init__(f"not ready: {status}: {detail}")
+        self.status = status
 
 
 def _describe(exc: ValidationError) -> str:
@@ -279,11 +326,15 @@ def _describe(exc: ValidationError) -> str:
     for err in exc.errors(include_url=False):
         loc = ".".join(str(p) for p in err["loc"]) or "request"
         parts.append(f"{loc}: {err['msg'].removeprefix('Value error, ')}")
-    return "; ".join(parts[:5])
+    return "; ".join(parts[:5])[:MAX_ERROR_CHARS]
 
 
 def parse_request(raw: bytes | str, max_bytes: int) -> AnyRequest:
-    """Validate a request; :class:`QueryError` names what is wrong."""
+    """Validate a request; :class:`QueryError` names what is wrong.
+
+    The JSON parser has its own nesting limit, so deeply nested input is an
+    error like any other (no recursion in our code).
+    """
     if len(raw) > max_bytes:
         raise QueryError(f"request: {len(raw)} bytes is longer than the limit of {max_bytes}")
     try:
@@ -298,32 +349,113 @@ def parse_request(raw: bytes | str, max_bytes: int) -> AnyRequest:
     return req
 
 
+_PEEK_ID = re.compile(rb'"id"\s*:\s*"((?:[^"\\\x00-\x1f]|\\.){1,128})"')
+_PEEK_REPLY = re.compile(rb'"reply_to"\s*:\s*"([^"\\\x00-\x20\x7f]{1,256})"')
+_PEEK_KIND = re.compile(rb'"kind"\s*:\s*"([a-z]{1,16})"')
+
+
+def _text(raw: bytes | str) -> bytes:
+    return raw.encode("utf-8", "replace") if isinstance(raw, str) else raw
+
+
+def peek(raw: bytes | str) -> tuple[str | None, str | None, str | None]:
+    """(id, reply_to, kind) found by pattern, without parsing the JSON.
+
+    Cheap and linear in the size, whatever the nesting: used to route a busy or
+    error reply for a request that is not (or not yet) parsed. The first match
+    of each key wins; a request is only answered after full validation.
+    """
+    b = _text(raw)
+    found: list[str | None] = []
+    for pattern in (_PEEK_ID, _PEEK_REPLY, _PEEK_KIND):
+        m = pattern.search(b)
+        try:
+            found.append(m.group(1).decode() if m else None)
+        except UnicodeDecodeError:
+            found.append(None)
+    cid, reply, kind = found
+    if cid is not None and "\\" in cid:
+        cid = None  # an escaped id: not worth decoding by hand
+    return cid, reply, kind
+
+
 def salvage_reply_to(raw: bytes | str) -> tuple[str | None, str | None]:
     """Best-effort (id, reply_to) of a request that failed validation."""
     try:
-        data = json.loads(raw)
-    except (ValueError, UnicodeDecodeError):
-        return None, None
+        data = pydantic_core.from_json(raw)  # bounded nesting: an error, never a recursion
+    except ValueError:
+        data = None
     if not isinstance(data, dict):
-        return None, None
+        cid, reply, _ = peek(raw) if data is None else (None, None, None)
+        return cid, reply
     cid, reply = data.get("id"), data.get("reply_to")
     ok_reply = isinstance(reply, str) and 0 < len(reply) <= 256 and reply.isprintable()
-    return (cid if isinstance(cid, str) else None), (reply if ok_reply else None)
+    ok_id = isinstance(cid, str) and len(cid) <= 128
+    return (cid if ok_id else None), (reply if ok_reply else None)
+
+
+def in_namespace(reply_to: str | None, prefix: str) -> bool:
+    """A reply channel the service may publish on: the namespace and a name after it."""
+    return (
+        reply_to is not None
+        and len(reply_to) > len(prefix)
+        and reply_to.startswith(prefix)
+        and reply_to.isprintable()
+        and " " not in reply_to
+    )
+
+
+EXPENSIVE_KINDS = frozenset({"lobby", "compare"})
+"""Kinds shed first under load."""
+COMPARE_COST = 20_000  # a bootstrap over the recent window, in pair predictions
+
+
+def request_cost(req: AnyRequest, lobby_exact_max: int) -> int:
+    """Work a request asks for, in pair predictions (the unit of the cost budget)."""
+    if isinstance(req, LobbyRequest):
+        n = len(req.entities)
+        cost = n * (n - 1)
+        if n <= lobby_exact_max:
+            cost += math.comb(n, min(req.team_sizes))
+        return cost
+    if isinstance(req, WatchRequest):
+        return max(1, len(req.pairings))
+    if isinstance(req, CompareRequest):
+        return COMPARE_COST
+    return 1
 
 
 class Answerer:
     """Turns a validated request into a reply dict, reading the live model under its lock."""
 
-    def __init__(self, view: ModelView, lobby_exact_max: int, lobby_max: int) -> None:
+    def __init__(
+        self,
+        view: ModelView,
+        lobby_exact_max: int,
+        lobby_max: int,
+        pairs_per_lock: int = 2048,
+    ) -> None:
         self.view = view
         self.lobby_exact_max = lobby_exact_max
         self.lobby_max = lobby_max
+        # The matrix of a large lobby is computed in slices of about this many pair
+        # predictions, releasing the model lock between slices: the consumer applies
+        # events in the gaps instead of waiting for the whole lobby.
+        self.pairs_per_lock = pairs_per_lock
+
+    def _ready(self) -> None:
+        """Every model question passes here: no answer from a model that is not
+        loaded, or that the consumer cannot keep current."""
+        status = self.view.status
+        if status != "ready":
+            raise NotReadyError(status, self.view.detail)
 
     def _meta(self) -> dict[str, Any]:
         meta = {
             "model": self.view.model.kind,
             "model_version": self.view.version,
             "applied": self.view.applied,
+            "behind": self.view.behind,
         }
         if isinstance(self.view.model, ChallengerSet):
             meta["answered_by"] = self.view.model.active
@@ -336,6 +468,7 @@ class Answerer:
         return model
 
     def promote(self, req: PromoteRequest) -> dict[str, Any]:
+        self._ready()
         # Under the model lock: the consumer learns whole chunks under it, so the
         # switch falls between two chunks, never inside one.
         with self.view.lock:
@@ -347,10 +480,12 @@ class Answerer:
                 raise QueryError(f"model: {exc}") from exc
             if model.active != previous:
                 self.view.changed = True  # saved by the next checkpoint, events or not
+                log.info("promotion: %s answers now (was %s)", model.active, previous)
             meta = self._meta()
         return {"previous": previous, **meta}
 
     def compare(self, req: CompareRequest) -> dict[str, Any]:
+        self._ready()
         with self.view.lock:  # only the copy is made under the lock; the bootstrap is not
             window = self._challengers().window()
             meta = self._meta()
@@ -361,6 +496,7 @@ class Answerer:
         return {**table, **meta}
 
     def pairing(self, req: PairingRequest) -> dict[str, Any]:
+        self._ready()
         mu = _matchup(req.first, req.second, dict(req.context))
         with self.view.lock:
             model = self.view.model
@@ -375,6 +511,7 @@ class Answerer:
         }
 
     def lobby(self, req: LobbyRequest) -> dict[str, Any]:
+        self._ready()
         ids, (a, b) = req.entities, req.team_sizes
         if len(set(ids)) != len(ids):
             raise QueryError("entities: an entity is listed twice")
@@ -383,23 +520,30 @@ class Answerer:
         if len(ids) > self.lobby_max:
             raise QueryError(f"entities: {len(ids)} is more than the limit of {self.lobby_max}")
         ctx = dict(req.context)
-        with self.view.lock:
-            model = self.view.model
+        n = len(ids)
+        matrix = np.full((n, n), 0.5)
+        rows = max(1, self.pairs_per_lock // max(n - 1, 1))
+        meta: dict[str, Any] = {}
+        for lo in range(0, n, rows):
+            with self.view.lock:
+                if lo == 0:
+                    meta = self._meta()
+                fill_rows(self.view.model, ids, ctx, matrix, lo, min(n, lo + rows))
 
-            def predict(first: Sequence[str], second: Sequence[str]) -> Prediction:
-                return model.predict(_matchup(first, second, ctx))
+        def predict(first: Sequence[str], second: Sequence[str]) -> Prediction:
+            return self.view.model.predict(_matchup(first, second, ctx))
 
-            matrix = pair_matrix(model, ids, ctx)
-            if len(ids) <= self.lobby_exact_max:
+        if n <= self.lobby_exact_max:
+            with self.view.lock:
                 ta, tb = exact_split(ids, a, predict)
-                method, gap, bound = "exact", None, 0.0
-            else:
-                ta, tb, gap, bound = heuristic_split(strengths(matrix), a)
-                method = "heuristic"
-            first, second = [ids[i] for i in ta], [ids[i] for i in tb]
+            method, gap, bound = "exact", None, 0.0
+        else:  # the surrogate needs only the matrix: no lock
+            ta, tb, gap, bound = heuristic_split(strengths(matrix), a)
+            method = "heuristic"
+        first, second = [ids[i] for i in ta], [ids[i] for i in tb]
+        with self.view.lock:
             p = predict(first, second)
-            meta = self._meta()
-            has_draws = model.has_draws
+            has_draws = self.view.model.has_draws
         return {
             "entities": ids,
             "matrix": matrix.round(6).tolist(),
@@ -421,14 +565,29 @@ def handle(
     answerer: Answerer,
     on_watch: Callable[[WatchRequest], dict[str, Any]],
     max_bytes: int,
-    clock: Callable[[], float] = time.perf_counter,
+    *,
+    reply_prefix: str,
+    max_cost: int = 1 << 62,
 ) -> tuple[str | None, dict[str, Any], str]:
-    """Answer one raw request: (reply channel or None, reply, kind for metrics)."""
+    """Answer one raw request: (reply channel or None, reply, kind for metrics).
+
+    ``None`` as the channel means the space's errors channel: the request named
+    no usable reply channel, or one outside ``reply_prefix`` (the reply
+    namespace); such a request is refused, not answered.
+    """
     try:
         req = parse_request(raw, max_bytes)
     except QueryError as exc:
         cid, reply_to = salvage_reply_to(raw)
-        return reply_to, {"id": cid, "ok": False, "error": str(exc)}, "invalid"
+        channel = reply_to if in_namespace(reply_to, reply_prefix) else None
+        return channel, {"id": cid, "ok": False, "error": str(exc)}, "invalid"
+    if not in_namespace(req.reply_to, reply_prefix):
+        error = f"reply_to: must start with {reply_prefix!r} (the reply namespace)"
+        return None, {"id": req.id, "ok": False, "error": error}, req.kind
+    cost = request_cost(req, answerer.lobby_exact_max)
+    if cost > max_cost:
+        error = f"cost: this {req.kind} needs {cost} predictions, over the budget of {max_cost}"
+        return req.reply_to, {"id": req.id, "ok": False, "error": error}, req.kind
     try:
         if isinstance(req, PairingRequest):
             body = answerer.pairing(req)
@@ -441,5 +600,8 @@ def handle(
         else:
             body = on_watch(req)
     except QueryError as exc:
-        return req.reply_to, {"id": req.id, "ok": False, "error": str(exc)}, req.kind
+        failed = {"id": req.id, "ok": False, "error": str(exc)[:MAX_ERROR_CHARS]}
+        if isinstance(exc, NotReadyError):
+            failed["status"] = exc.status
+        return req.reply_to, failed, req.kind
     return req.reply_to, {"id": req.id, "ok": True, "kind": req.kind, **body}, req.kind

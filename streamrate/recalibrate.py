@@ -37,7 +37,7 @@ import numpy as np
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError, StateVersionError
 from streamrate.events import MatchEvent, Matchup
-from streamrate.models.base import Model, Prediction, Predictions
+from streamrate.models.base import Learned, Model, Prediction, Predictions
 
 Method = Literal["slope_intercept", "temperature"]
 P_CLIP = 1e-9
@@ -249,36 +249,31 @@ class Recalibrated(Model):
         return self.recalibrator_.apply(self.model_.predict(matchup))
 
     def learn(self, event: MatchEvent) -> Prediction:
-        raw = self.model_.learn(event)
-        self.last_raw_ = Predictions.from_list([raw])
-        out = self.recalibrator_.apply(raw)
-        self.recalibrator_.learn(raw.expected_score, event.score)
-        return out
-
-    def component_predictions(self, n: int) -> dict[str, Predictions]:
-        """The base model's own (raw) predictions of the last ``n`` learned events,
-        under the label ``<base>.raw``: scoring them keeps the quality alerts on
-        the raw model while the recalibrated numbers are served."""
-        raw = getattr(self, "last_raw_", None)
-        if raw is None or len(raw.p_win) < n or n <= 0:
-            return {}
-        return {f"{self.base}.raw": Predictions(raw.p_win[-n:], raw.p_draw[-n:])}
+        got = self.learn_scored([event]).served
+        return Prediction(float(got.p_win[0]), float(got.p_draw[0]))
 
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
-        raw = self.model_.learn_many(events)
-        self.last_raw_ = raw
+        return self.learn_scored(events).served
+
+    def learn_scored(self, events: Sequence[MatchEvent]) -> Learned:
+        """Served (recalibrated) predictions, and the base model's own (raw) ones
+        under the label ``<base>.raw``: scoring them keeps the quality alerts on
+        the raw model while the recalibrated numbers are served."""
+        if len(events) == 1:
+            raw = Predictions.from_list([self.model_.learn(events[0])])
+        else:
+            raw = self.model_.learn_many(events)
         out = []
         for i, ev in enumerate(events):
             pred = Prediction(float(raw.p_win[i]), float(raw.p_draw[i]))
             out.append(self.recalibrator_.apply(pred))
             self.recalibrator_.learn(pred.expected_score, ev.score)
-        return Predictions.from_list(out)
+        return Learned(Predictions.from_list(out), {f"{self.base}.raw": raw})
 
     def learn_batch(self, events: Sequence[MatchEvent]) -> Predictions:
         # Mini-batch semantics: every forecast of the batch uses the batch-start
         # correction, then the recalibrator learns from the whole batch.
         raw = self.model_.learn_batch(events)
-        self.last_raw_ = raw
         preds = [Prediction(float(a), float(b)) for a, b in zip(raw.p_win, raw.p_draw, strict=True)]
         out = [self.recalibrator_.apply(p) for p in preds]
         for p, ev in zip(preds, events, strict=True):

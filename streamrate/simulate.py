@@ -42,10 +42,18 @@ from streamrate.events import MatchEvent, event_to_json
 
 MAPS = ("saltflats", "ember-quarry", "glasswood", "sunken-bell")
 PATCHES = ("1.4", "1.5")
-STYLE_NAMES = ("lancer", "warden", "trickster", "sapper", "drifter", "herald", "seer")
-_KNOWN = ("kestrel", "marlow", "tindra", "oskel", "brisa", "vantor")
-_HEAD = ("ka", "mo", "ti", "os", "bri", "van", "quel", "ro", "sel", "dun", "ha", "fe", "ly", "zo")
-_TAIL = ("strel", "rvek", "nzar", "kel", "quo", "tor", "wyx", "mir", "dak", "lox", "vo", "rux")
+STYLE_NAMES = ("brannuk", "quespel", "tovrik", "zuvrel", "ornwhit", "pashvo", "glimmek")
+"""Play styles: invented words, so that no style reads as a real game's class or tier."""
+# Handles are two (rarely three) of these invented syllables, e.g. "kavrilt".
+_SYLLABLES = (
+    "bru", "dov", "fesk", "gwi", "huv", "jor", "kav", "lyx", "murn", "nev", "oqu", "pry",
+    "quon", "rilt", "sul", "tevo", "umb", "vash", "wex", "yeb", "zan", "thap", "crom", "idr",
+)  # fmt: skip
+# The syllable tables of the handle draws of earlier versions: the main random stream
+# still makes those draws (see _skip_earlier_name_draws), so a seed keeps its world.
+_EARLIER_HEAD = 14
+_EARLIER_TAIL = 12
+_EARLIER_FIXED = 6
 START = datetime(2026, 3, 1, tzinfo=UTC)
 
 
@@ -68,6 +76,10 @@ class WorldSpec:
     features: bool = False
     days: float = 60.0
     seed: int = 0
+    seasons: int = 0
+    season_shift: float = 0.6
+    turnover: float = 0.15
+    first_edge: float = 0.0
 
     def check(self) -> None:
         if self.entities < 2 * self.team_size:
@@ -86,6 +98,10 @@ class WorldSpec:
             raise ConfigError(f"styles must be between 0 and {len(STYLE_NAMES)}")
         if self.patch_at is not None and self.styles < 2:
             raise ConfigError("a balance patch shifts styles: set styles to 2 or more")
+        if self.seasons < 0 or self.season_shift < 0 or not 0.0 <= self.turnover < 1.0:
+            raise ConfigError("seasons and season_shift must be >= 0, turnover in [0, 1)")
+        if self.seasons > self.matches:
+            raise ConfigError("seasons: need at least one match per season")
 
 
 PRESETS: dict[str, WorldSpec] = {
@@ -95,6 +111,17 @@ PRESETS: dict[str, WorldSpec] = {
         styles=3, cycle_strength=1.5, map_effect=0.5, skill_spread=0.8, patch_at=0.5
     ),
     "teams": WorldSpec(team_size=3, matches=20_000, skill_spread=0.5, draw_rate=0.1),
+    "seasons": WorldSpec(
+        entities=40,
+        matches=24_000,
+        seasons=12,
+        drift=1.0,
+        season_shift=0.6,
+        turnover=0.15,
+        first_edge=0.35,
+        draw_rate=0.25,
+        days=12 * 240.0,
+    ),
 }
 """Named worlds for ``streamrate simulate --world NAME``."""
 
@@ -155,17 +182,47 @@ class World:
 
 
 def handles(n: int, rng: np.random.Generator) -> list[str]:
-    """``n`` distinct invented player handles."""
-    out: list[str] = list(_KNOWN[:n])
-    taken = set(out)
+    """``n`` distinct invented player handles, from a random stream of their own.
+
+    The handles come from a child stream of ``rng`` (``rng.spawn``), so they follow
+    the seed; the draws ``rng`` itself makes are those of earlier versions, so a seed
+    still gives the same skills, styles and matches (only the names changed).
+    """
+    (names_rng,) = rng.spawn(1)
+    _skip_earlier_name_draws(n, rng)
+    out: list[str] = []
+    taken: set[str] = set()
+    syllables = 2
+    misses = 0
     while len(out) < n:
-        name = f"{rng.choice(_HEAD)}{rng.choice(_TAIL)}"
+        picks = names_rng.integers(0, len(_SYLLABLES), syllables)
+        name = "".join(_SYLLABLES[int(i)] for i in picks)
         if name in taken:
-            name = f"{name}{int(rng.integers(2, 100))}"
+            misses += 1
+            if misses > 50:  # two syllables are getting used up: use three
+                syllables, misses = 3, 0
+            continue
+        taken.add(name)
+        out.append(name)
+    return out
+
+
+def _skip_earlier_name_draws(n: int, rng: np.random.Generator) -> None:
+    """Make the draws the handle generator of earlier versions made from ``rng``.
+
+    That generator gave six fixed handles, then drew a head and a tail syllable per
+    handle (14 and 12 of them), with a number from 2 to 99 appended on a clash; two
+    of the fixed handles could also be drawn. Only the draws matter here, not the names.
+    """
+    taken: set[tuple[int, int, int]] = {(3, 3, 0), (5, 5, 0)}  # the two drawable fixed ones
+    made = min(n, _EARLIER_FIXED)
+    while made < n:
+        name = (int(rng.integers(0, _EARLIER_HEAD)), int(rng.integers(0, _EARLIER_TAIL)), 0)
+        if name in taken:
+            name = (name[0], name[1], int(rng.integers(2, 100)))
         if name not in taken:
             taken.add(name)
-            out.append(name)
-    return out
+            made += 1
 
 
 def _style_matrix(styles: int, strength: float) -> np.ndarray:
@@ -185,6 +242,8 @@ def _mode(team_size: int) -> str:
 def simulate(spec: WorldSpec, progress: Callable[[int], None] | None = None) -> World:
     """Draw a world from ``spec`` (see the module docstring); ``progress(k)`` after each k."""
     spec.check()
+    if spec.seasons > 0:
+        return simulate_seasons(spec, progress)
     rng = np.random.default_rng(spec.seed)
     n, k = spec.entities, spec.team_size
     names = handles(n, rng)
@@ -258,6 +317,97 @@ def simulate(spec: WorldSpec, progress: Callable[[int], None] | None = None) -> 
         )
         if progress is not None and (i + 1) % 1000 == 0:
             progress(1000)
+    if progress is not None and spec.matches % 1000:
+        progress(spec.matches % 1000)
+    return World(spec, events, exp_score, p_draws)
+
+
+SEASON_PLAY_FRACTION = 2.0 / 3.0
+"""Share of each season's span in which matches are played; the rest is the break."""
+
+
+def season_label(index: int) -> str:
+    """The ``season`` context value of the ``index``-th season (0-based): ``"s01"``..."""
+    return f"s{index + 1:02d}"
+
+
+def simulate_seasons(spec: WorldSpec, progress: Callable[[int], None] | None = None) -> World:
+    """A league played in ``spec.seasons`` seasons of a roster of ``spec.entities``.
+
+    * Skills start normal with std ``skill_spread``; within a season they walk
+      slowly (``drift`` is the walk's std over the whole run, as in :func:`simulate`).
+    * Between seasons every returning skill changes strongly: it shrinks toward 0
+      and gains a fresh normal step of std ``season_shift``; the shrinkage keeps
+      the spread of skills at ``skill_spread`` on average, so seasons neither
+      spread nor bunch the field.
+    * At each new season a share ``turnover`` of the roster leaves, replaced by
+      newcomers (new ids) with skills drawn from the starting distribution.
+    * The first side has a logit edge ``first_edge`` (a home side, say); draws
+      follow Davidson's model as in :func:`simulate`; context ``season`` names the
+      season (:func:`season_label`), ``mode`` the team size.
+    * Matches of a season fall in the first :data:`SEASON_PLAY_FRACTION` of its
+      span (``days / seasons``); the rest is the break between seasons.
+
+    >>> w = simulate_seasons(WorldSpec(entities=6, matches=30, seasons=3, seed=1))
+    >>> [w.events[i].context["season"] for i in (0, 10, 29)]
+    ['s01', 's02', 's03']
+    """
+    spec.check()
+    rng = np.random.default_rng(spec.seed)
+    n, k, n_seasons = spec.entities, spec.team_size, max(spec.seasons, 1)
+    leave = math.floor(spec.turnover * n)
+    names = handles(n + leave * (n_seasons - 1), rng)
+    roster = np.arange(n)  # indices into names / skill of who plays this season
+    skill = np.zeros(len(names))
+    skill[:n] = rng.normal(0.0, spec.skill_spread, n)
+    nu = 2.0 * spec.draw_rate / (1.0 - spec.draw_rate)
+    step_sd = spec.drift / math.sqrt(spec.matches)
+    spread2 = spec.skill_spread**2
+    walk2 = spec.drift**2 / n_seasons
+    keep = math.sqrt(max(spread2 - spec.season_shift**2, 0.0) / max(spread2 + walk2, 1e-12))
+    per_season = [spec.matches // n_seasons] * n_seasons
+    per_season[-1] += spec.matches - sum(per_season)
+    span_s = spec.days * 86_400.0 / n_seasons
+    events: list[MatchEvent] = []
+    exp_score = np.empty(spec.matches)
+    p_draws = np.empty(spec.matches)
+    newcomer = n
+    i = 0
+    for season, count in enumerate(per_season):
+        if season > 0:
+            skill[roster] = keep * skill[roster] + rng.normal(0.0, spec.season_shift, n)
+            gone = rng.choice(n, leave, replace=False)
+            fresh = np.arange(newcomer, newcomer + leave)
+            newcomer += leave
+            roster[gone] = fresh
+            skill[fresh] = rng.normal(0.0, spec.skill_spread, leave)
+        gaps = rng.exponential(1.0, count)
+        offsets_s = season * span_s + np.cumsum(gaps) / gaps.sum() * span_s * SEASON_PLAY_FRACTION
+        for j in range(count):
+            if step_sd > 0.0:
+                skill[roster] += rng.normal(0.0, step_sd, n)
+            picked = roster[rng.choice(n, 2 * k, replace=False)]
+            a, b = picked[:k], picked[k:]
+            strength = skill[a].sum() - skill[b].sum() + spec.first_edge
+            pa, pb = math.exp(0.5 * strength), math.exp(-0.5 * strength)
+            total = pa + pb + nu
+            p_win, p_draw = pa / total, nu / total
+            u = rng.random()
+            score = 1.0 if u < p_win else (0.5 if u < p_win + p_draw else 0.0)
+            exp_score[i], p_draws[i] = p_win + 0.5 * p_draw, p_draw
+            events.append(
+                MatchEvent(
+                    match_id=f"q-{i + 1:06d}",
+                    finished_at=START + timedelta(seconds=float(offsets_s[j])),
+                    first=tuple(names[x] for x in a),
+                    second=tuple(names[x] for x in b),
+                    score=score,
+                    context={"season": season_label(season), "mode": _mode(k)},
+                )
+            )
+            i += 1
+            if progress is not None and i % 1000 == 0:
+                progress(1000)
     if progress is not None and spec.matches % 1000:
         progress(spec.matches % 1000)
     return World(spec, events, exp_score, p_draws)

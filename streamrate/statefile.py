@@ -20,11 +20,12 @@ from __future__ import annotations
 
 import io
 import json
+import math
 import os
 import tempfile
 import zipfile
 from pathlib import Path
-from typing import Any
+from typing import IO, Any
 
 import numpy as np
 
@@ -51,25 +52,52 @@ def state_to_bytes(state: ModelState, extra: dict[str, Any] | None = None) -> by
             raise StateError(f"array name {_META!r} is reserved")
         if np.asarray(arr).dtype == object:
             raise StateError(f"array {name!r} holds Python objects; only numbers are saved")
+    try:
+        meta_text = json.dumps(meta, sort_keys=True, allow_nan=False)
+    except ValueError as exc:  # NaN or infinity in settings or metadata: not readable back
+        raise StateError(f"state metadata must hold finite numbers only: {exc}") from exc
     buf = io.BytesIO()
-    meta_bytes = np.frombuffer(json.dumps(meta, sort_keys=True).encode("utf-8"), dtype=np.uint8)
+    meta_bytes = np.frombuffer(meta_text.encode("utf-8"), dtype=np.uint8)
     np.savez(buf, **{_META: meta_bytes}, **state.arrays)
     return buf.getvalue()
 
 
+MAX_MEMBERS = 4096
+"""Most arrays one state file may hold."""
+MAX_EXPANSION = 4
+"""Uncompressed bytes allowed per byte of file (``np.savez`` stores, so ours are about 1)."""
+EXPANSION_SLACK_BYTES = 1 << 20
+HARD_LIMIT_BYTES = 64 << 30
+"""No state file expands to more than this, whatever its size."""
+MAX_ARRAY_DIMS = 8
+_CHUNK_BYTES = 1 << 20
+_NUMBER_KINDS = "biuf"
+
+
+def uncompressed_cap(file_bytes: int) -> int:
+    """Most uncompressed bytes a state file of ``file_bytes`` may declare in all."""
+    return min(HARD_LIMIT_BYTES, MAX_EXPANSION * file_bytes + EXPANSION_SLACK_BYTES)
+
+
+def _refuse_constant(name: str) -> Any:
+    raise ValueError(f"{name} is not a finite number")
+
+
 def state_from_bytes(data: bytes) -> tuple[ModelState, dict[str, Any]]:
-    """Decode npz bytes into (state, extra metadata); :class:`StateError` if unusable."""
-    try:
-        with np.load(io.BytesIO(data), allow_pickle=False) as npz:
-            arrays = {k: npz[k] for k in npz.files}
-    except (ValueError, OSError, zipfile.BadZipFile, EOFError) as exc:
-        raise StateError(f"not a readable state file: {exc}") from exc
+    """Decode npz bytes into (state, extra metadata); :class:`StateError` if unusable.
+
+    The bytes are untrusted: every size is checked before anything is allocated
+    or decompressed (:func:`read_npz`), and the metadata may not hold NaN or
+    infinity.
+    """
+    arrays = read_npz(data)
     raw_meta = arrays.pop(_META, None)
     if raw_meta is None:
         raise StateError("not a streamrate state file: no metadata entry")
     try:
-        meta = json.loads(bytes(raw_meta.astype(np.uint8)).decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        text = bytes(raw_meta.astype(np.uint8)).decode("utf-8")
+        meta = json.loads(text, parse_constant=_refuse_constant)
+    except (UnicodeDecodeError, ValueError) as exc:
         raise StateError(f"state metadata is corrupt: {exc}") from exc
     if not isinstance(meta, dict) or meta.get("format") != FORMAT_NAME:
         raise StateError("not a streamrate state file: wrong format name")
@@ -83,6 +111,86 @@ def state_from_bytes(data: bytes) -> tuple[ModelState, dict[str, Any]]:
     except (KeyError, TypeError, ValueError) as exc:
         raise StateError(f"state metadata is incomplete: {exc}") from exc
     return state, dict(meta.get("extra") or {})
+
+
+def read_npz(data: bytes) -> dict[str, np.ndarray]:
+    """The arrays of an npz archive, read as untrusted input.
+
+    Before anything is decompressed: at most :data:`MAX_MEMBERS` members, each
+    member's stored bytes inside the file, and the declared uncompressed sizes
+    together within :func:`uncompressed_cap` of the file size. Each member is then
+    streamed into an array allocated from its ``.npy`` header, which must be a
+    plain number type whose size matches the member's declared size exactly; the
+    zip reader never yields more than the declared size, and its CRC check refuses
+    a member that lied. Memory stays within the cap, so an archive that would
+    expand a thousandfold is refused at once, not after decompressing.
+    """
+    try:
+        zf = zipfile.ZipFile(io.BytesIO(data))
+        infos = zf.infolist()
+    except (zipfile.BadZipFile, zipfile.LargeZipFile, ValueError, OSError, EOFError) as exc:
+        raise StateError(f"not a readable state file: {exc}") from exc
+    if len(infos) > MAX_MEMBERS:
+        raise StateError(f"state file has {len(infos)} members; the limit is {MAX_MEMBERS}")
+    cap = uncompressed_cap(len(data))
+    declared = 0
+    for info in infos:
+        if info.compress_size > len(data) or info.header_offset + info.compress_size > len(data):
+            raise StateError(
+                f"state file member {info.filename!r} claims {info.compress_size} stored bytes "
+                f"past the end of the {len(data)}-byte file"
+            )
+        declared += info.file_size
+    if declared > cap:
+        raise StateError(
+            f"state file members declare {declared} bytes uncompressed, more than the "
+            f"{cap} allowed for a {len(data)}-byte file (a compression bomb or a corrupt file)"
+        )
+    arrays: dict[str, np.ndarray] = {}
+    with zf:
+        for info in infos:
+            name = info.filename.removesuffix(".npy")
+            if name == info.filename or name in arrays:
+                raise StateError(f"state file member {info.filename!r} is not a single .npy array")
+            try:
+                with zf.open(info) as fh:
+                    arrays[name] = _read_npy(fh, info.file_size)
+            except StateError as exc:
+                raise StateError(f"state file array {name!r}: {exc}") from exc
+            except (zipfile.BadZipFile, ValueError, OSError, EOFError, RuntimeError) as exc:
+                raise StateError(f"not a readable state file: array {name!r}: {exc}") from exc
+    return arrays
+
+
+def _read_npy(fh: IO[bytes], size: int) -> np.ndarray:
+    version = np.lib.format.read_magic(fh)
+    if version == (1, 0):
+        shape, fortran, dtype = np.lib.format.read_array_header_1_0(fh)
+    elif version == (2, 0):
+        shape, fortran, dtype = np.lib.format.read_array_header_2_0(fh)
+    else:
+        raise StateError(f".npy format version {version} is not read")
+    if dtype.kind not in _NUMBER_KINDS or dtype.fields is not None or dtype.subdtype is not None:
+        raise StateError(f"type {dtype} is not a plain number type")
+    if len(shape) > MAX_ARRAY_DIMS or any(d < 0 for d in shape):
+        raise StateError(f"shape {shape} is not usable")
+    count = math.prod(shape)
+    payload = size - fh.tell()
+    if count * dtype.itemsize != payload:
+        raise StateError(
+            f"header declares {count} x {dtype.itemsize} bytes, the member holds {payload}"
+        )
+    arr = np.empty(count, dtype=dtype)
+    view = arr.data.cast("B")
+    got = 0
+    while got < payload:
+        n = fh.readinto(view[got : min(payload, got + _CHUNK_BYTES)])  # type: ignore[attr-defined]
+        if not n:
+            raise StateError(f"member ends after {got} of {payload} bytes")
+        got += n
+    if fh.read(1):
+        raise StateError("member holds more bytes than its header declares")
+    return arr.reshape(shape, order="F" if fortran else "C")
 
 
 def write_atomic(path: Path | str, data: bytes) -> None:

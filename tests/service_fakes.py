@@ -4,7 +4,13 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from streamrate.config import CheckpointSettings, RedisSettings, Settings, SpaceSettings
+from streamrate.config import (
+    CheckpointSettings,
+    MetricsSettings,
+    RedisSettings,
+    Settings,
+    SpaceSettings,
+)
 
 
 def fake_settings(tmp_path: Path, space: SpaceSettings) -> Settings:
@@ -13,5 +19,6 @@ def fake_settings(tmp_path: Path, space: SpaceSettings) -> Settings:
     return Settings(
         redis=RedisSettings(reconnect_min_s=0.01, reconnect_max_s=0.05),
         checkpoint=CheckpointSettings(dir=tmp_path),
+        metrics=MetricsSettings(enabled=False),  # on by default; tests must not share a port
         spaces=(space,),
     )

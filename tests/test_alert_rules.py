@@ -120,6 +120,7 @@ def test_health_report_uses_the_alert_levels() -> None:
         "StreamrateDeadLetterRateHigh": health.DEAD_LETTER_ALERT_SHARE,
         "StreamrateCheckpointTooOld": health.CHECKPOINT_ALERT_AGE_S,
         "StreamrateQueryErrors": health.QUERY_ERROR_ALERT_SHARE,
+        "StreamrateConsumerFailing": health.LOOP_ERROR_STREAK_ALERT,
     }
     alerts = _alerts()
     for name, level in levels.items():

@@ -26,6 +26,17 @@ T0 = datetime(2026, 3, 1, 18, 0, tzinfo=UTC)
 MODELS: list[tuple[str, dict[str, Any]]] = [
     ("elo", {}),
     ("elo", {"first_advantage": 35.0, "compiled": False}),
+    ("elo", {"advantage_k": 0.0}),
+    ("bayes_strength", {"period_field": "map", "period_pull": 0.2, "period_var": 0.1}),
+    (
+        "mixture",
+        {
+            "members": [
+                {"kind": "elo", "settings": {"k": 8.0}},
+                {"kind": "bayes_strength", "settings": {"compiled": False}},
+            ]
+        },
+    ),
     ("glicko2", {}),
     ("glicko2", {"period_s": 3600.0}),
     ("trueskill", {}),
@@ -34,7 +45,13 @@ MODELS: list[tuple[str, dict[str, Any]]] = [
 ]
 IDS = [f"{k}-{i}" for i, (k, _) in enumerate(MODELS)]
 # Models without a first-side term, where swapping sides must mirror the prediction.
-SYMMETRIC = [(k, s) for k, s in MODELS if k != "logistic_batch" and not s.get("first_advantage")]
+SYMMETRIC = [
+    (k, s)
+    for k, s in MODELS
+    if k not in ("logistic_batch", "bayes_strength", "mixture")  # these learn an advantage
+    and not s.get("first_advantage")
+    and (k != "elo" or s.get("advantage_k") == 0.0)  # Elo learns a first-side edge by default
+]
 
 
 def stream(seed: int, n: int, start: int = 0) -> list[MatchEvent]:
@@ -114,8 +131,9 @@ def test_learn_returns_the_prediction_made_before_the_update(
     for ev in stream(6, 10, start=300):
         before = m.predict(ev)
         got = m.learn(ev)
-        if settings_.get("period_s"):
-            # learn first inflates idle deviations, which predict (no clock) cannot.
+        if settings_.get("period_s") or kind in ("bayes_strength", "mixture"):
+            # learn first inflates idle deviations (and may start a new period),
+            # which predict (no clock) cannot.
             assert got.p_win == pytest.approx(before.p_win, abs=0.05)
         else:
             assert got == before
@@ -140,8 +158,8 @@ def test_learn_batch_predicts_from_the_batch_start_state(
     evs = stream(8, 6, start=500)
     # Every prediction of a batch comes from the state at the batch start, which
     # is what predict() sees beforehand (idle-time inflation aside).
-    if settings_.get("period_s"):
-        pytest.skip("predict() does not know the clock; covered by the glicko2 tests")
+    if settings_.get("period_s") or kind in ("bayes_strength", "mixture"):
+        pytest.skip("predict() does not know the clock; covered by the model's own tests")
     expected = [m.predict(ev) for ev in evs]
     got = m.learn_batch(evs)
     assert [got[i] for i in range(len(evs))] == expected
@@ -164,9 +182,13 @@ def test_unknown_entities_get_the_prior(kind: str, settings_: dict[str, Any]) ->
     fresh = build_model(kind, **settings_)
     m = trained(kind, settings_)
     q = Matchup(first=("ghost-a",), second=("ghost-b",))
-    if kind == "logistic_batch":
-        # Only the learned first-side intercept separates two unknowns.
+    if kind in ("logistic_batch", "bayes_strength", "mixture"):
+        # Only the learned first-side term separates two unknowns.
         assert fresh.predict(q).p_win == 0.5
+    elif kind == "elo":
+        # Two unknowns differ only by the (learned) first-side advantage.
+        prior = build_model(kind, **{**settings_, "first_advantage": float(m.advantage_[0])})
+        assert m.predict(q) == prior.predict(q)
     else:
         assert m.predict(q) == fresh.predict(q)
 

@@ -14,6 +14,7 @@ from streamrate.batch import encode_events
 from streamrate.encode import EntityTable
 from streamrate.events import MatchEvent, Matchup
 from streamrate.models.elo import Elo
+from streamrate.simulate import WorldSpec, simulate
 
 T0 = datetime(2026, 3, 1, 18, 0, tzinfo=UTC)
 PLAYERS = ["kestrel", "marlow", "tindra", "oskel", "brisa", "vantor"]
@@ -85,7 +86,7 @@ def test_recalled_fide_rows_match_their_normal_construction(lo: int, hi: int, pd
 
 
 def test_update_moves_each_member_by_the_team_delta() -> None:
-    m = Elo(k=20.0)
+    m = Elo(k=20.0, advantage_k=0.0)
     m.learn(match(("kestrel",), ("marlow",), 1.0, 0))  # kestrel 1510, marlow 1490
     assert m.rating("kestrel") == pytest.approx(1510.0)
     ev = match(("kestrel", "tindra"), ("marlow", "oskel"), 0.5, 1)
@@ -106,12 +107,35 @@ def test_first_side_advantage_is_in_rating_points() -> None:
     assert p == pytest.approx(1.0 / (1.0 + 10.0 ** (-100.0 / 400.0)))
 
 
+def test_first_side_advantage_is_learned_by_its_own_step() -> None:
+    m = Elo(k=20.0, advantage_k=4.0)
+    m.learn(match(("kestrel",), ("marlow",), 1.0, 0))  # E = 0.5: advantage 0 + 4 * 0.5
+    assert m.advantage_[0] == pytest.approx(2.0)
+    p = m.predict(Matchup(first=("tindra",), second=("oskel",))).p_win
+    assert p == pytest.approx(1.0 / (1.0 + 10.0 ** (-2.0 / 400.0)))
+
+
+@pytest.mark.parametrize(("edge_logit", "lo", "hi"), [(0.0, -25.0, 25.0), (0.5, 55.0, 120.0)])
+def test_learned_advantage_finds_the_simulated_edge(
+    edge_logit: float, lo: float, hi: float
+) -> None:
+    # A logit edge x is x * 400 / ln 10 rating points (0.5 -> 87); strengths spread
+    # around it bias a logistic fit toward 0 a little, hence the wide window.
+    world = simulate(
+        WorldSpec(entities=20, matches=6000, seasons=2, first_edge=edge_logit, seed=21)
+    )
+    m = Elo()
+    m.learn_many(world.events)
+    assert lo < m.advantage_[0] < hi
+
+
 def test_compiled_loop_gives_the_same_numbers_as_plain_python() -> None:
     evs = stream(1, 800)
     fast, slow = Elo(compiled=True), Elo(compiled=False)
     pf, ps = fast.learn_many(evs), slow.learn_many(evs)
     np.testing.assert_array_equal(pf.p_win, ps.p_win)
     np.testing.assert_array_equal(fast.ratings_, slow.ratings_)
+    np.testing.assert_array_equal(fast.advantage_, slow.advantage_)
     one = Elo()
     p1 = [one.learn(ev).p_win for ev in evs]
     np.testing.assert_array_equal(pf.p_win, p1)

@@ -203,8 +203,7 @@ def test_window_holds_the_last_events_oldest_first(window: int, chunks: list[int
     for k in chunks:
         part = DRAWS[at : at + k]
         at += k
-        cs.learn_many(part)
-        for label, p in cs.last_member_predictions_.items():
+        for label, p in cs.learn_scored(part).parts.items():
             history[label].append(p.p_win + 0.5 * p.p_draw)
         scores += [ev.score for ev in part]
     w = cs.window()
@@ -258,8 +257,10 @@ def _watch(_req: WatchRequest) -> dict[str, Any]:
 
 
 def _ask(ans: Answerer, req: dict[str, Any]) -> dict[str, Any]:
-    base = {"id": "q", "reply_to": "back"}
-    _, reply, _ = handle(json.dumps({**base, **req}), ans, _watch, 65536)
+    base = {"id": "q", "reply_to": "{sr:duel}:q:reply:back"}
+    _, reply, _ = handle(
+        json.dumps({**base, **req}), ans, _watch, 65536, reply_prefix="{sr:duel}:q:reply:"
+    )
     json.dumps(reply)
     return reply
 
@@ -322,7 +323,7 @@ def test_bad_promote_and_compare_requests_get_error_replies() -> None:
 )
 def test_schema_covers_promote_and_compare(req: dict[str, Any], valid: bool) -> None:
     # jsonschema (general-purpose Draft 2020-12 validator) checks the published schema.
-    full = {"id": "1", "reply_to": "r", **req}
+    full = {"id": "1", "reply_to": "{sr:duel}:q:reply:r", **req}
     assert jsonschema.Draft202012Validator(request_schema()).is_valid(full) is valid
     assert _ask(Answerer(_live_set(), 10, 256), req)["ok"] is valid
 

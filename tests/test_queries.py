@@ -29,6 +29,8 @@ from streamrate.queries import (
 )
 from streamrate.simulate import simulate, world_spec
 
+PREFIX = "{sr:duel}:q:reply:"
+R = PREFIX + "client-1:r"
 WORLD = simulate(world_spec("cyclic", matches=800, entities=24, seed=1)).events
 
 
@@ -44,30 +46,30 @@ def _watch(_req: WatchRequest) -> dict[str, Any]:
 
 def _ask(ans: Answerer, req: dict[str, Any] | str | bytes) -> tuple[str | None, dict[str, Any]]:
     raw = req if isinstance(req, str | bytes) else json.dumps(req)
-    channel, reply, _ = handle(raw, ans, _watch, 65536)
+    channel, reply, _ = handle(raw, ans, _watch, 65536, reply_prefix=PREFIX)
     json.dumps(reply)  # every reply must be JSON-able
     return channel, reply
 
 
 GOOD = [
-    {"kind": "pairing", "id": "1", "reply_to": "r", "first": ["kestrel"], "second": ["marlow"]},
-    {"kind": "pairing", "id": "2", "reply_to": "r", "first": ["a", "b"], "second": ["c", "d"],
+    {"kind": "pairing", "id": "1", "reply_to": R, "first": ["kestrel"], "second": ["marlow"]},
+    {"kind": "pairing", "id": "2", "reply_to": R, "first": ["a", "b"], "second": ["c", "d"],
      "context": {"map": "saltflats", "heat": 0.5}},
-    {"kind": "lobby", "id": "3", "reply_to": "r", "entities": ["a", "b", "c", "d"],
+    {"kind": "lobby", "id": "3", "reply_to": R, "entities": ["a", "b", "c", "d"],
      "team_sizes": [2, 2]},
-    {"kind": "watch", "id": "4", "reply_to": "r", "action": "set",
+    {"kind": "watch", "id": "4", "reply_to": R, "action": "set",
      "pairings": [{"first": ["a"], "second": ["b"]}]},
-    {"kind": "watch", "id": "5", "reply_to": "r", "action": "clear"},
+    {"kind": "watch", "id": "5", "reply_to": R, "action": "clear"},
 ]  # fmt: skip
 BAD = [
-    {"kind": "pairing", "id": "1", "reply_to": "r", "first": ["kestrel"]},
-    {"kind": "pairing", "id": "1", "reply_to": "r", "first": [], "second": ["b"]},
+    {"kind": "pairing", "id": "1", "reply_to": R, "first": ["kestrel"]},
+    {"kind": "pairing", "id": "1", "reply_to": R, "first": [], "second": ["b"]},
     {"kind": "pairing", "id": "1", "first": ["a"], "second": ["b"]},
-    {"kind": "lobby", "id": "1", "reply_to": "r", "entities": ["a"], "team_sizes": [1, 1]},
-    {"kind": "lobby", "id": "1", "reply_to": "r", "entities": ["a", "b"], "team_sizes": [0, 2]},
-    {"kind": "watch", "id": "1", "reply_to": "r", "action": "flip"},
-    {"kind": "poke", "id": "1", "reply_to": "r"},
-    {"kind": "pairing", "id": "1", "reply_to": "r", "first": ["a"], "second": ["b"], "x": 1},
+    {"kind": "lobby", "id": "1", "reply_to": R, "entities": ["a"], "team_sizes": [1, 1]},
+    {"kind": "lobby", "id": "1", "reply_to": R, "entities": ["a", "b"], "team_sizes": [0, 2]},
+    {"kind": "watch", "id": "1", "reply_to": R, "action": "flip"},
+    {"kind": "poke", "id": "1", "reply_to": R},
+    {"kind": "pairing", "id": "1", "reply_to": R, "first": ["a"], "second": ["b"], "x": 1},
 ]
 
 
@@ -102,8 +104,8 @@ def test_semantic_errors_name_the_field() -> None:
         ({"entities": [f"e{i}" for i in range(66)], "team_sizes": [33, 33]}, "lobby", "limit"),
     ]
     for body, kind, needle in cases:
-        channel, reply = _ask(ans, {"kind": kind, "id": "q", "reply_to": "back", **body})
-        assert channel == "back" and reply["id"] == "q" and needle in reply["error"]
+        channel, reply = _ask(ans, {"kind": kind, "id": "q", "reply_to": R + "back", **body})
+        assert channel == R + "back" and reply["id"] == "q" and needle in reply["error"]
 
 
 def test_pairing_reply_matches_the_model() -> None:
@@ -219,7 +221,7 @@ def test_large_lobby_uses_the_heuristic_and_reports_a_bound() -> None:
     ids = sorted({e for ev in WORLD for e in ev.entities()})
     _, rep = _ask(
         Answerer(live, 8, 256),
-        {"kind": "lobby", "id": "L", "reply_to": "r", "entities": ids, "team_sizes": [12, 12]},
+        {"kind": "lobby", "id": "L", "reply_to": R, "entities": ids, "team_sizes": [12, 12]},
     )
     assert rep["ok"] and rep["method"] == "heuristic"
     assert rep["surrogate_gap"] <= rep["gap_bound"] + 1e-9

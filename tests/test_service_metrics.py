@@ -21,7 +21,9 @@ def test_names_follow_the_prometheus_conventions() -> None:
     ServiceMetrics(reg, ["duel"])
     fams = _families(reg)
     assert len(fams) >= 12
-    units = ("_seconds", "_entries", "_total")
+    # Besides base units: "_errors" counts like "_entries"; "_state" is an enumeration
+    # (1 for the current value of its `state` label); "_up" is 1 or 0 (common practice).
+    units = ("_seconds", "_entries", "_total", "_errors", "_state", "_up")
     for fam in fams:
         assert fam.documentation.strip(), fam.name
         parts = fam.name.split("_")

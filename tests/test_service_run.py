@@ -114,7 +114,12 @@ def test_an_outage_is_logged_once_and_the_service_resumes(
         svc.join()
     outages = [m for m in caplog.messages if "unreachable" in m and "consumer" in m]
     assert len(outages) == 1
-    assert svc.registry.get_sample_value("streamrate_redis_outages_total", {"space": "duel"}) == 1
+    assert (
+        svc.registry.get_sample_value(
+            "streamrate_redis_outages_total", {"space": "duel", "role": "consumer"}
+        )
+        == 1
+    )
     np.testing.assert_allclose(
         c.live.model.to_state().arrays["ratings"], _reference_ratings(WORLD), rtol=1e-12
     )

@@ -33,7 +33,12 @@ arrays = st.dictionaries(
 )
 
 
-@given(arrays, st.dictionaries(st.text(max_size=5), st.integers() | st.floats(allow_nan=False)))
+@given(
+    arrays,
+    st.dictionaries(
+        st.text(max_size=5), st.integers() | st.floats(allow_nan=False, allow_infinity=False)
+    ),
+)
 def test_round_trip_is_exact(arrs: dict[str, np.ndarray], params: dict[str, object]) -> None:
     state = ModelState("demo", 3, params, arrs)
     back, extra = state_from_bytes(state_to_bytes(state, extra={"last_id": "5-0"}))

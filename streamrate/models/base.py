@@ -66,6 +66,14 @@ class Predictions(NamedTuple):
         return cls(arr[:, 0].copy(), arr[:, 1].copy())
 
 
+class Learned(NamedTuple):
+    """What learning a run of events gives: the served predictions, and by label
+    those of the models inside (each made before its model saw the outcome)."""
+
+    served: Predictions
+    parts: dict[str, Predictions]
+
+
 @dataclass
 class ModelState:
     """A model's whole state: settings (JSON-able) and arrays (numeric, no objects)."""
@@ -106,11 +114,15 @@ class Model(ABC):
         """
         return self.learn_many(events)
 
-    def component_predictions(self, n: int) -> dict[str, Predictions]:
-        """Predictions of the models inside this one for its last ``n`` learned
-        events, by label (challenger members; the raw model under a
-        recalibration), so that each is scored too. Empty for a plain model."""
-        return {}
+    def learn_scored(self, events: Sequence[MatchEvent]) -> Learned:
+        """The sequential path (``learn`` in a loop), also returning the predictions
+        of the models inside this one (challenger members; the raw model under a
+        recalibration), by label, so that each is scored too. The one way such
+        predictions leave a model: ``learn`` and ``learn_many`` of a model that
+        holds others are built on it. Empty ``parts`` for a plain model."""
+        if len(events) == 1:
+            return Learned(Predictions.from_list([self.learn(events[0])]), {})
+        return Learned(self.learn_many(events), {})
 
     def seen(self, entity_id: str) -> int:
         """How many matches an entity has been learned from (0 if never seen)."""

@@ -9,6 +9,11 @@ ratings; after a match every member of the first side gains
 ``k * (score - E)`` and every member of the second side loses the same amount
 (a draw is score 0.5). New entities start at ``initial``.
 
+The first-side advantage is learned by the same rule: it starts at
+``first_advantage`` and moves by ``advantage_k * (score - E)`` after each match
+(a stochastic gradient step on the log loss, in rating points), so a home or
+first-move edge is found without tuning; ``advantage_k = 0`` keeps it fixed.
+
 ``k`` defaults to 24: the usual chess range is 10-40, and 24 sits in the middle
 (common practice). Elo has no draw model, so ``p_draw`` is 0 and ``p_win`` is the
 expected score.
@@ -23,7 +28,7 @@ Example:
 >>> m.learn(ev).p_win
 0.5
 >>> round(m.predict(ev).p_win, 4)
-0.5345
+0.5359
 """
 
 from __future__ import annotations
@@ -37,7 +42,7 @@ from numba import njit
 
 from streamrate.batch import EncodedBatch, count_matches, encode_events
 from streamrate.encode import EntityTable
-from streamrate.errors import ConfigError
+from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
 from streamrate.models.base import (
     Model,
@@ -57,7 +62,8 @@ def _elo_loop(
     ratings: np.ndarray,
     k: float,
     scale: float,
-    advantage: float,
+    advantage: np.ndarray,
+    advantage_k: float,
     out: np.ndarray,
 ) -> None:
     """Sequential Elo over encoded events; writes the pre-update expectation to ``out``.
@@ -74,10 +80,11 @@ def _elo_loop(
         r2 = 0.0
         for j in range(n2):
             r2 += ratings[second[i, j]]
-        diff = r1 / n1 + advantage - r2 / n2
+        diff = r1 / n1 + advantage[0] - r2 / n2
         e = 1.0 / (1.0 + math.pow(10.0, -diff / scale))
         out[i] = e
         delta = k * (score[i] - e)
+        advantage[0] += advantage_k * (score[i] - e)
         for j in range(n1):
             ratings[first[i, j]] += delta
         for j in range(n2):
@@ -88,7 +95,7 @@ _elo_loop_compiled = njit(cache=True)(_elo_loop)
 
 
 class Elo(Model):
-    """Elo ratings with team means, optional first-side advantage (rating points)."""
+    """Elo ratings with team means and a learned first-side advantage (rating points)."""
 
     kind: ClassVar[str] = "elo"
 
@@ -99,6 +106,7 @@ class Elo(Model):
         initial: float = 1500.0,
         first_advantage: float = 0.0,
         compiled: bool = True,
+        advantage_k: float = 2.0,
     ) -> None:
         if not (k > 0 and math.isfinite(k)):
             raise ConfigError("elo: k must be a positive number")
@@ -111,6 +119,10 @@ class Elo(Model):
         self.initial = float(initial)
         self.first_advantage = float(first_advantage)
         self.compiled = bool(compiled)
+        if not (advantage_k >= 0 and math.isfinite(advantage_k)):
+            raise ConfigError("elo: advantage_k must be a number >= 0")
+        self.advantage_k = float(advantage_k)
+        self.advantage_ = np.array([self.first_advantage], dtype=np.float64)
         self.entities_ = EntityTable()
         self.ratings_ = np.full(16, self.initial, dtype=np.float64)
 
@@ -139,7 +151,7 @@ class Elo(Model):
     def predict(self, matchup: Matchup) -> Prediction:
         diff = (
             self._side_rating(matchup.first)
-            + self.first_advantage
+            + float(self.advantage_[0])
             - self._side_rating(matchup.second)
         )
         return Prediction(1.0 / (1.0 + math.pow(10.0, -diff / self.scale)))
@@ -158,9 +170,10 @@ class Elo(Model):
         r2 = 0.0
         for r in rows2:
             r2 += ratings[r]
-        diff = r1 / len(rows1) + self.first_advantage - r2 / len(rows2)
+        diff = r1 / len(rows1) + self.advantage_[0] - r2 / len(rows2)
         e = 1.0 / (1.0 + math.pow(10.0, -diff / self.scale))
         delta = self.k * (event.score - e)
+        self.advantage_[0] += self.advantage_k * (event.score - e)
         for r in rows1:
             ratings[r] += delta
         for r in rows2:
@@ -194,7 +207,8 @@ class Elo(Model):
             self.ratings_,
             self.k,
             self.scale,
-            self.first_advantage,
+            self.advantage_,
+            self.advantage_k,
             out,
         )
         count_matches(batch, self.entities_)
@@ -208,6 +222,8 @@ class Elo(Model):
         self._fit_capacity()
         p = np.empty(len(b), dtype=np.float64)
         delta = np.zeros(len(self.entities_), dtype=np.float64)
+        adv = float(self.advantage_[0])
+        adv_step = 0.0
         for i in range(len(b)):
             n1, n2 = int(b.first_size[i]), int(b.second_size[i])
             rows1, rows2 = b.first[i, :n1], b.second[i, :n2]
@@ -217,12 +233,14 @@ class Elo(Model):
             r2 = 0.0
             for r in rows2:
                 r2 += self.ratings_[r]
-            diff = r1 / n1 + self.first_advantage - r2 / n2
+            diff = r1 / n1 + adv - r2 / n2
             p[i] = 1.0 / (1.0 + math.pow(10.0, -diff / self.scale))
             d = self.k * (b.score[i] - p[i])
+            adv_step += self.advantage_k * (b.score[i] - p[i])
             delta[rows1] += d
             delta[rows2] -= d
         self.ratings_[: len(delta)] += delta
+        self.advantage_[0] += adv_step
         count_matches(b, self.entities_)
         return Predictions(p, np.zeros_like(p))
 
@@ -234,16 +252,24 @@ class Elo(Model):
             "initial": self.initial,
             "first_advantage": self.first_advantage,
             "compiled": self.compiled,
+            "advantage_k": self.advantage_k,
         }
 
     def _state_arrays(self) -> dict[str, np.ndarray]:
-        return entity_arrays(self.entities_, ratings=self.ratings_)
+        arrays = entity_arrays(self.entities_, ratings=self.ratings_)
+        arrays["advantage"] = self.advantage_.copy()
+        return arrays
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
         table, (ratings,) = load_entity_arrays(self.kind, arrays, ("ratings",))
         self.entities_ = table
         self.ratings_ = np.full(max(16, 2 * len(table)), self.initial, dtype=np.float64)
         self.ratings_[: len(table)] = ratings
+        # States saved before the advantage was learned lack it: it was the setting.
+        adv = np.asarray(arrays.get("advantage", [self.first_advantage]), dtype=np.float64)
+        if adv.shape != (1,) or not np.isfinite(adv[0]):
+            raise StateError("elo: array 'advantage' must hold one finite number")
+        self.advantage_ = adv.copy()
 
 
 def _any_unknown(batch: EncodedBatch) -> bool:

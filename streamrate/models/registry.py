@@ -6,8 +6,15 @@ kernel, say) is only paid by those who use it.
 
 from __future__ import annotations
 
+import contextlib
+import functools
 import importlib
+import inspect
+import typing
 from typing import Any
+
+from pydantic import TypeAdapter, ValidationError
+from pydantic.errors import PydanticSchemaGenerationError
 
 from streamrate.errors import ConfigError
 from streamrate.models.base import Model, ModelState
@@ -22,6 +29,8 @@ BUILTIN: dict[str, str] = {
     "bradley_terry": "streamrate.models.matchup:BradleyTerry",
     "blade_chest": "streamrate.models.matchup:BladeChest",
     "blade_chest_dist": "streamrate.models.matchup:BladeChestDistance",
+    "bayes_strength": "streamrate.models.bayes_strength:BayesStrength",
+    "mixture": "streamrate.models.mixture:Mixture",
     "recalibrated": "streamrate.recalibrate:Recalibrated",
     "challengers": "streamrate.challengers:ChallengerSet",
 }
@@ -38,12 +47,63 @@ def model_class(kind: str) -> type[Model]:
 
 
 def build_model(kind: str, **settings: Any) -> Model:
-    """Build a model by name; unknown settings fail with a message naming them."""
+    """Build a model by name; an unknown or mistyped setting fails with a message naming it.
+
+    >>> try:
+    ...     build_model("elo", kk=16)
+    ... except ConfigError as exc:
+    ...     print(exc)
+    unknown setting 'kk' for model elo; known: k, scale, initial, first_advantage, compiled
+    """
     cls = model_class(kind)
+    _check_settings(kind, cls, settings)
     try:
         return cls(**settings)
-    except TypeError as exc:
-        raise ConfigError(f"model {kind!r}: {exc}") from exc
+    except ConfigError:
+        raise
+    except (TypeError, ValueError) as exc:
+        raise ConfigError(f"model {kind}: {exc}") from exc
+
+
+def _check_settings(kind: str, cls: type[Model], settings: dict[str, Any]) -> None:
+    """Names against the constructor's parameters, values against their annotations."""
+    params: list[str] = []
+    hints: dict[str, Any] = {}
+    for klass in cls.__mro__:  # a subclass taking **settings passes them on to its base
+        if klass is object or "__init__" not in vars(klass):
+            continue
+        init = vars(klass)["__init__"]
+        sig = inspect.signature(init).parameters.values()
+        params += [
+            p.name
+            for p in sig
+            if p.name != "self" and p.kind in (p.POSITIONAL_OR_KEYWORD, p.KEYWORD_ONLY)
+        ]
+        # An annotation that cannot be resolved only means no type check for it.
+        with contextlib.suppress(NameError, TypeError):
+            hints = {**typing.get_type_hints(init), **hints}
+        if not any(p.kind == p.VAR_KEYWORD for p in sig):
+            break
+    for name in settings:
+        if name not in params:
+            known = ", ".join(dict.fromkeys(params)) or "none"
+            raise ConfigError(f"unknown setting {name!r} for model {kind}; known: {known}")
+    for name, value in settings.items():
+        hint = hints.get(name)
+        if hint is None:
+            continue
+        try:
+            _adapter(hint).validate_python(value)
+        except ValidationError as exc:
+            why = exc.errors(include_url=False)[0]["msg"]
+            raise ConfigError(f"model {kind}: setting {name}={value!r}: {why}") from None
+        except PydanticSchemaGenerationError:
+            continue
+
+
+@functools.cache
+def _adapter(hint: Any) -> TypeAdapter[Any]:
+    return TypeAdapter(hint)
 
 
 def model_from_state(state: ModelState) -> Model:

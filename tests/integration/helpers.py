@@ -106,6 +106,7 @@ def write_toml(path: Path, url: str, ckpt_dir: Path, store: str = "file", **spac
     body = [
         f"[redis]\nurl = {json.dumps(url)}\nreconnect_max_s = 0.5\n",
         f"[checkpoint]\nstore = {json.dumps(store)}\ndir = {json.dumps(str(ckpt_dir))}\n",
+        "[metrics]\nenabled = false\n",  # on by default; tests must not share a port
         "[[spaces]]",
     ]
     body += [f"{k} = {json.dumps(v)}" for k, v in sp.items()]

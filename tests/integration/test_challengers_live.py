@@ -17,7 +17,13 @@ from typer.testing import CliRunner
 from streamrate.challengers import ChallengerSet
 from streamrate.cli import app
 from streamrate.client import ask, send_events
-from streamrate.config import CheckpointSettings, RedisSettings, Settings, SpaceSettings
+from streamrate.config import (
+    CheckpointSettings,
+    MetricsSettings,
+    RedisSettings,
+    Settings,
+    SpaceSettings,
+)
 from streamrate.events import event_to_json
 from streamrate.models.registry import build_model, model_from_state
 from streamrate.service import Service, redis_factory
@@ -50,6 +56,7 @@ def running(redis_server: RedisServer, tmp_path: Path) -> Iterator[tuple[Service
     settings = Settings(
         redis=RedisSettings(url=redis_server.url),
         checkpoint=CheckpointSettings(dir=tmp_path / "ckpt"),
+        metrics=MetricsSettings(enabled=False),
         spaces=(space,),
     )
     service = Service(settings, redis_factory(settings.redis), CollectorRegistry())

@@ -12,7 +12,13 @@ import pytest
 from prometheus_client import CollectorRegistry
 
 from streamrate.client import ask, follow, send_events
-from streamrate.config import CheckpointSettings, RedisSettings, Settings, SpaceSettings
+from streamrate.config import (
+    CheckpointSettings,
+    MetricsSettings,
+    RedisSettings,
+    Settings,
+    SpaceSettings,
+)
 from streamrate.events import Matchup, event_to_json
 from streamrate.service import Service, redis_factory
 from streamrate.simulate import simulate, world_spec
@@ -23,6 +29,7 @@ from .helpers import MODEL, MODEL_SETTINGS, wait_for
 pytestmark = pytest.mark.integration
 WORLD = simulate(world_spec("cyclic", matches=600, entities=30, seed=4)).events
 Q = "{sr:duel}:q"
+R = "{sr:duel}:q:reply:tester:R"
 
 
 @pytest.fixture
@@ -33,6 +40,7 @@ def running(redis_server: RedisServer, tmp_path: Path) -> Iterator[tuple[Service
     settings = Settings(
         redis=RedisSettings(url=redis_server.url),
         checkpoint=CheckpointSettings(dir=tmp_path),
+        metrics=MetricsSettings(enabled=False),
         spaces=(space,),
     )
     service = Service(settings, redis_factory(settings.redis), CollectorRegistry())
@@ -101,24 +109,26 @@ def test_lobby_reply_has_matrix_and_split_of_requested_sizes(
 
 BAD = [
     ("not json at all", None),
-    (json.dumps({"kind": "pairing", "id": "b1", "reply_to": "R"}), "first"),
-    (json.dumps({"kind": "teleport", "id": "b2", "reply_to": "R"}), "kind"),
+    (json.dumps({"kind": "pairing", "id": "b1", "reply_to": R}), "first"),
+    (json.dumps({"kind": "teleport", "id": "b2", "reply_to": R}), "kind"),
     (
-        json.dumps({"kind": "pairing", "id": "b3", "reply_to": "R", "first": ["kestrel"],
+        json.dumps({"kind": "pairing", "id": "b3", "reply_to": R, "first": ["kestrel"],
                     "second": ["kestrel"]}),
         "both sides",
     ),
     (
-        json.dumps({"kind": "lobby", "id": "b4", "reply_to": "R", "entities": ["a", "b", "c"],
+        json.dumps({"kind": "lobby", "id": "b4", "reply_to": R, "entities": ["a", "b", "c"],
                     "team_sizes": [1, 1]}),
         "team_sizes",
     ),
     (
-        json.dumps({"kind": "lobby", "id": "b5", "reply_to": "R", "entities": ["a", "a"],
+        json.dumps({"kind": "lobby", "id": "b5", "reply_to": R, "entities": ["a", "a"],
                     "team_sizes": [1, 1]}),
         "twice",
     ),
     (json.dumps({"kind": "pairing", "id": "b6", "first": ["a"], "second": ["b"]}), "reply_to"),
+    (json.dumps({"kind": "pairing", "id": "b7", "reply_to": "{sr:duel}:live", "first": ["a"],
+                 "second": ["b"]}), "reply namespace"),
 ]  # fmt: skip
 
 
@@ -128,7 +138,7 @@ def test_bad_requests_get_an_error_naming_the_problem(
     _, server = running
     r = server.client()
     ps = r.pubsub(ignore_subscribe_messages=True)
-    ps.subscribe("R", "{sr:duel}:q:errors")
+    ps.subscribe(R, "{sr:duel}:q:errors", "{sr:duel}:live")
     for raw, _ in BAD:
         r.publish(Q, raw)
     replies = []
@@ -138,11 +148,17 @@ def test_bad_requests_get_an_error_naming_the_problem(
         if msg and msg["type"] == "message":
             replies.append((msg["channel"], json.loads(msg["data"])))
     assert len(replies) == len(BAD)
-    for (raw, needle), (channel, rep) in zip(BAD, replies, strict=True):
+    # Replies to different clients may come in another order (the queue is fair
+    # between clients): match them by id.
+    by_id = {rep["id"]: (channel, rep) for channel, rep in replies}
+    for raw, needle in BAD:
+        cid = None if raw.startswith("not") else json.loads(raw)["id"]
+        channel, rep = by_id[cid]
         assert rep["ok"] is False
         if needle is not None:
             assert needle in rep["error"], (raw, rep)
-        expect = b"{sr:duel}:q:errors" if raw.startswith("not") or "b6" in raw else b"R"
+        refused = raw.startswith("not") or '"b6"' in raw or '"b7"' in raw
+        expect = b"{sr:duel}:q:errors" if refused else R.encode()
         assert channel == expect
     ok = ask(r, Q, {"kind": "pairing", "first": ["a"], "second": ["b"]})
     assert ok["ok"] is True  # still answering after the bad ones
@@ -152,12 +168,13 @@ def test_watch_list_drives_the_live_feed(running: tuple[Service, RedisServer]) -
     service, server = running
     r = server.client()
     a, b = WORLD[0].first[0], WORLD[0].second[0]
-    rep = ask(r, Q, {"kind": "watch", "action": "set", "pairings": [{"first": [a], "second": [b]}]})
-    assert rep["ok"] and rep["watching"] == 1
+    pairs = [{"first": [a], "second": [b]}]
+    rep = ask(r, Q, {"kind": "watch", "action": "set", "watcher": "t1", "pairings": pairs})
+    assert rep["ok"] and rep["watching"] == 1 and rep["live_channel"] == "{sr:duel}:live:t1"
     got: list[dict[str, object]] = []
     stop, ready = threading.Event(), threading.Event()
     t = threading.Thread(
-        target=follow, args=(server.client(), "{sr:duel}:live", got.append, stop, ready)
+        target=follow, args=(server.client(), "{sr:duel}:live:t1", got.append, stop, ready)
     )
     t.start()
     ready.wait(5)
@@ -167,5 +184,28 @@ def test_watch_list_drives_the_live_feed(running: tuple[Service, RedisServer]) -
     stop.set()
     t.join()
     assert [m["match_id"] for m in got] == [e.match_id for e in touching]
-    assert ask(r, Q, {"kind": "watch", "action": "clear"})["watching"] == 0
+    assert [m["seq"] for m in got] == list(range(1, len(got) + 1))
+    assert ask(r, Q, {"kind": "watch", "action": "clear", "watcher": "t1"})["watching"] == 0
     assert service.spaces[0].watch.affected([a, b]) == []
+
+
+def test_ask_says_never_seen_and_strict_makes_it_an_error(
+    running: tuple[Service, RedisServer],
+) -> None:
+    from typer.testing import CliRunner
+
+    from streamrate.cli import app
+
+    service, server = running
+    send_events(server.client(), "{sr:duel}:events", [event_to_json(e) for e in WORLD])
+    wait_for(lambda: service.spaces[0].consumer.live.applied == len(WORLD), 30, "all applied")
+    known = WORLD[0].first[0]
+    url = ["--redis-url", server.url]
+    res = CliRunner().invoke(app, ["ask", known, "ghost", *url])
+    assert res.exit_code == 0, res.output
+    assert "never seen: ghost (newcomer estimate)" in res.stdout
+    assert f"never seen: {known}" not in res.stdout
+    strict = CliRunner().invoke(app, ["ask", known, "ghost", "--strict", *url])
+    assert strict.exit_code == 2 and "error: never seen: ghost" in strict.stderr
+    even = CliRunner().invoke(app, ["ask", "--lobby", ",".join(_entities()[:4]), *url])
+    assert even.exit_code == 0 and "[exact] = exact" in even.stdout, even.output

@@ -49,7 +49,7 @@ def _serve(cfg: Path, log: Path) -> subprocess.Popen[bytes]:
 
 
 def _resumes(log: Path) -> int:
-    return log.read_text().count("resuming after") if log.exists() else 0
+    return log.read_text().count("entries to read") if log.exists() else 0
 
 
 def _wait_started(proc: subprocess.Popen[bytes], log: Path, before: int) -> None:
@@ -174,5 +174,7 @@ def test_redis_restart_under_running_service_loses_nothing(
     ck = decode_checkpoint(redis_server.client().get("{sr:duel}:ckpt"), 10**6, 1e12)
     assert ck.applied == len(events)
     assert_same_state(ck, reference(events))
-    outages = service.registry.get_sample_value("streamrate_redis_outages_total", {"space": "duel"})
+    outages = service.registry.get_sample_value(
+        "streamrate_redis_outages_total", {"space": "duel", "role": "consumer"}
+    )
     assert outages is not None and outages >= 1

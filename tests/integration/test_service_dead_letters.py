@@ -5,14 +5,18 @@ from __future__ import annotations
 import itertools
 import json
 import tempfile
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
 from typing import Any
 
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from prometheus_client import CollectorRegistry
+from typer.testing import CliRunner
 
 from streamrate.checkpoint import FileCheckpointStore, decode_checkpoint
+from streamrate.cli import app
 from streamrate.config import Settings, SpaceSettings
 from streamrate.consumer import Consumer
 from streamrate.events import event_to_json
@@ -105,13 +109,66 @@ def test_malformed_entries_are_dead_lettered_with_reasons(
         dead = r.xrange(c.keys.dead)
         assert {f[b"dead.source_id"] for _, f in dead} == bad_ids
         by_id = dict(zip(ids, entries, strict=True))
+        cap = c.space.dead_max_payload_bytes
         for _, f in dead:
             original = by_id[f[b"dead.source_id"]]
             assert f[b"dead.reason"]
-            assert {k: v for k, v in f.items() if not k.startswith(b"dead.")} == original
+            # Values past the payload limit are kept cut, with their original length.
+            assert {k: v for k, v in f.items() if not k.startswith(b"dead.")} == {
+                k: v[:cap] for k, v in original.items()
+            }
+            for k, v in original.items():
+                if len(v) > cap:
+                    assert f[b"dead.length." + k] == str(len(v)).encode()
         assert c.counters == {"applied": 40, "dead_lettered": len(bad), "duplicate": 0}
         assert r.xpending(c.keys.events, "streamrate")["pending"] == 0
         ck = c.store.load()
         assert ck is not None
         assert_same_state(decode_checkpoint(ck, 10**6, 1e12), reference(valid))
         r.delete(c.keys.events, c.keys.dead)
+
+
+def test_dead_letters_command_lists_and_resends_after_a_fix(
+    redis_server: RedisServer, tmp_path: Path
+) -> None:
+    """An event dated an hour ahead is set aside under a 60 s future limit; after the
+    limit is raised, `streamrate dead-letters --resend` sends it back and it is applied."""
+    runner = CliRunner()
+    url = redis_server.url
+    r = redis_server.client()
+    space = SpaceSettings(name="duel", model=MODEL, block_ms=5, future_limit_s=60)
+    keys = Settings(spaces=(space,)).keys(space)
+    ahead = dict(GOOD, match_id="ahead", finished_at=(
+        datetime.now(UTC) + timedelta(hours=1)).isoformat())  # fmt: skip
+    r.xadd(keys.events, {b"event": json.dumps(ahead).encode()})
+    r.xadd(keys.events, {b"event": b'{"match_id": "broken"'})
+    r.xadd(keys.events, {b"event": b"z" * 10_000})
+
+    def run(sp: SpaceSettings) -> Consumer:
+        c = Consumer(r, sp, keys, FileCheckpointStore(tmp_path, "duel"),
+                     ServiceMetrics(CollectorRegistry(), ["duel"]),
+                     lambda: build_model(MODEL, **MODEL_SETTINGS))  # fmt: skip
+        c.recover()
+        drain(c)
+        c.checkpoint()
+        return c
+
+    assert run(space).counters["dead_lettered"] == 3
+    res = runner.invoke(app, ["dead-letters", "--redis-url", url, "--json", "--limit", "10"])
+    assert res.exit_code == 0, res.output
+    rows = [json.loads(line) for line in res.output.splitlines()]
+    assert [row["truncated"] for row in rows] == [True, False, False]
+    assert rows[2]["reason"].startswith("finished_at: ")
+    assert rows[2]["excerpt"].startswith('{"first": ')
+    text = runner.invoke(app, ["dead-letters", "--redis-url", url, "--limit", "1"])
+    assert text.exit_code == 0 and rows[0]["id"] in text.output and "[truncated]" in text.output
+    res = runner.invoke(app, ["dead-letters", "--redis-url", url, "--resend", rows[2]["id"]])
+    assert res.exit_code == 0, res.output
+    assert "re-sent 1 entries to {sr:duel}:events" in res.output
+    fixed = run(space.model_copy(update={"future_limit_s": 86_400.0}))
+    assert fixed.counters["applied"] == 1
+    res = runner.invoke(app, ["dead-letters", "--redis-url", url, "--resend-all"])
+    assert "re-sent 1 entries" in res.output and "kept truncated, not re-sent" in res.output
+    assert run(space).counters["dead_lettered"] == 4  # the broken one, set aside again
+    missing = runner.invoke(app, ["dead-letters", "--redis-url", url, "--resend", "1-1"])
+    assert missing.exit_code == 1 and "no such dead letter" in missing.output

@@ -1,0 +1,195 @@
+"""A mixture of models whose weights follow their past log loss.
+
+Several member models (the same family with different learning rates, noise or
+season pulls, or different families) all predict and learn every match. The
+mixture forecasts the weighted mean of their expected scores, with weights
+``w_i proportional to exp(-eta * L_i)``, ``L_i`` the member's cumulative log
+loss so far (exponentially weighted averaging).
+
+**Bound.** The log loss ``l(e, y) = -y ln e - (1 - y) ln(1 - e)`` is
+exp-concave for ``eta = 1`` (``exp(-l) = e^y (1 - e)^(1 - y)`` is a weighted
+geometric mean of ``e`` and ``1 - e``, concave in ``e``), also for a draw
+scored ``y = 1/2``. For exp-concave losses, exponentially weighted averaging
+with ``eta = 1`` has cumulative loss at most that of the best member plus
+``ln N`` for ``N`` members, on every sequence ('Prediction, Learning, and
+Games', Cambridge University Press 2006, chapter 3, exp-concave losses). Member
+forecasts are clipped to ``[CLIP, 1 - CLIP]`` first; the bound holds for the
+clipped losses. With ``eta < 1`` the bound is ``ln N / eta``.
+
+``p_win`` and ``p_draw`` are mixed with the same weights, so the mixed expected
+score is the weighted mean of the members' expected scores.
+
+>>> from datetime import datetime, timezone
+>>> from streamrate.events import MatchEvent
+>>> m = Mixture()
+>>> ev = MatchEvent(match_id="q-1", finished_at=datetime(2026, 3, 1, tzinfo=timezone.utc),
+...                 first=("kestrel",), second=("marlow",), score=1.0)
+>>> round(m.learn(ev).p_win, 3), len(m.weights())
+(0.5, 4)
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from typing import Any, ClassVar
+
+import numpy as np
+
+from streamrate.encode import EntityTable
+from streamrate.errors import ConfigError, StateError
+from streamrate.events import MatchEvent, Matchup
+from streamrate.models.base import Model, ModelState, Prediction, Predictions
+
+CLIP = 1e-9
+
+DEFAULT_MEMBERS: tuple[dict[str, Any], ...] = (
+    {"label": "steady", "kind": "bayes_strength",
+     "settings": {"noise_per_day": 0.0001, "prior_var": 0.3}},
+    {"label": "seasonal", "kind": "bayes_strength",
+     "settings": {"noise_per_day": 0.0003, "prior_var": 0.3, "period_field": "season",
+                  "period_pull": 0.2, "period_var": 0.05}},
+    {"label": "restless", "kind": "bayes_strength",
+     "settings": {"noise_per_day": 0.002, "period_field": "season",
+                  "period_pull": 0.3, "period_var": 0.25}},
+    {"label": "styles", "kind": "blade_chest",
+     "settings": {"dims": 8, "lr": 0.15, "lr_strength": 0.2, "context": "stacked",
+                  "init_scale": 0.1}},
+)  # fmt: skip
+"""Members of the default mixture: three amounts of forgetting (within and between
+seasons) for transitive strengths, and blade-chest vectors for cyclic styles."""
+
+
+def _clip(e: np.ndarray) -> np.ndarray:
+    return np.clip(e, CLIP, 1.0 - CLIP)
+
+
+def member_log_loss(e: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Log loss of clipped forecasts ``e`` against scores ``y`` (elementwise)."""
+    c = _clip(e)
+    return -(y * np.log(c) + (1.0 - y) * np.log1p(-c))
+
+
+class Mixture(Model):
+    """Exponentially weighted average of member models (see the module docstring)."""
+
+    kind: ClassVar[str] = "mixture"
+
+    def __init__(self, members: Sequence[dict[str, Any]] | None = None, eta: float = 1.0) -> None:
+        from streamrate.models.registry import build_model
+
+        if not (0.0 < eta <= 1.0):
+            raise ConfigError("mixture: eta must lie in (0, 1] (1 keeps the ln N bound)")
+        specs = [dict(m) for m in (DEFAULT_MEMBERS if members is None else members)]
+        if not specs:
+            raise ConfigError("mixture: give at least one member")
+        labels = []
+        for i, spec in enumerate(specs):
+            if "kind" not in spec or set(spec) - {"kind", "label", "settings"}:
+                raise ConfigError("mixture: each member is {kind, label?, settings?}")
+            spec.setdefault("label", f"m{i}")
+            spec.setdefault("settings", {})
+            labels.append(str(spec["label"]))
+        if len(set(labels)) != len(labels):
+            raise ConfigError("mixture: member labels must differ")
+        self.members = specs
+        self.eta = float(eta)
+        self.models_ = [build_model(s["kind"], **s["settings"]) for s in specs]
+        self.has_draws = any(m.has_draws for m in self.models_)  # type: ignore[misc]
+        self.loss_ = np.zeros(len(specs))  # cumulative clipped log loss per member
+        self.last_: dict[str, Predictions] = {}
+
+    @property
+    def entities_(self) -> EntityTable:  # type: ignore[override]
+        return self.models_[0].entities_
+
+    @property
+    def labels(self) -> list[str]:
+        return [str(s["label"]) for s in self.members]
+
+    def weights(self) -> np.ndarray:
+        """Current member weights (sum 1)."""
+        z = -self.eta * (self.loss_ - self.loss_.min())
+        w = np.exp(z)
+        return w / w.sum()  # type: ignore[no-any-return]
+
+    @property
+    def bound_nats(self) -> float:
+        """Most the cumulative log loss can exceed the best member's: ``ln N / eta``."""
+        return math.log(len(self.models_)) / self.eta
+
+    # -- the online API -----------------------------------------------------------
+    def predict(self, matchup: Matchup) -> Prediction:
+        w = self.weights()
+        p_win = p_draw = 0.0
+        for wi, m in zip(w, self.models_, strict=True):
+            pr = m.predict(matchup)
+            p_win += wi * float(_clip(np.array(pr.expected_score))) - wi * 0.5 * pr.p_draw
+            p_draw += wi * pr.p_draw
+        return Prediction(p_win, p_draw)
+
+    def _mix(
+        self, preds: list[Predictions], events: Sequence[MatchEvent], batch: bool
+    ) -> Predictions:
+        y = np.array([ev.score for ev in events], dtype=np.float64)
+        n = len(events)
+        p_win, p_draw = np.zeros(n), np.zeros(n)
+        losses = np.array([member_log_loss(p.expected_score, y) for p in preds])  # (N, n)
+        for i in range(n):
+            w = self.weights()
+            for k, p in enumerate(preds):
+                e = float(_clip(np.array(p.expected_score[i])))
+                p_win[i] += w[k] * (e - 0.5 * p.p_draw[i])
+                p_draw[i] += w[k] * p.p_draw[i]
+            if not batch:
+                self.loss_ += losses[:, i]
+        if batch:  # every forecast of a mini-batch uses the batch-start weights
+            self.loss_ += losses.sum(axis=1)
+        self.last_ = dict(zip(self.labels, preds, strict=True))
+        return Predictions(p_win, p_draw)
+
+    def learn(self, event: MatchEvent) -> Prediction:
+        return self.learn_many([event])[0]  # type: ignore[no-any-return]
+
+    def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
+        if not events:
+            return Predictions(np.zeros(0), np.zeros(0))
+        return self._mix([m.learn_many(events) for m in self.models_], events, batch=False)
+
+    def learn_batch(self, events: Sequence[MatchEvent]) -> Predictions:
+        if not events:
+            return Predictions(np.zeros(0), np.zeros(0))
+        return self._mix([m.learn_batch(events) for m in self.models_], events, batch=True)
+
+    def component_predictions(self, n: int) -> dict[str, Predictions]:
+        out = {}
+        for label, p in self.last_.items():
+            if 0 < n <= len(p.p_win):
+                out[f"mixture.{label}"] = Predictions(p.p_win[-n:], p.p_draw[-n:])
+        return out
+
+    # -- persistence --------------------------------------------------------------
+    def get_params(self) -> dict[str, Any]:
+        return {"members": [dict(s) for s in self.members], "eta": self.eta}
+
+    def _state_arrays(self) -> dict[str, np.ndarray]:
+        arrays: dict[str, np.ndarray] = {"loss": self.loss_.copy()}
+        for i, m in enumerate(self.models_):
+            arrays[f"member{i}.version"] = np.array([m.state_version])
+            for name, a in m.to_state().arrays.items():
+                arrays[f"member{i}.{name}"] = a
+        return arrays
+
+    def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
+        loss = np.asarray(arrays["loss"], dtype=np.float64)
+        if loss.shape != (len(self.models_),) or not np.all(np.isfinite(loss)):
+            raise StateError("mixture: array 'loss' needs one finite number per member")
+        models = []
+        for i, (spec, m) in enumerate(zip(self.members, self.models_, strict=True)):
+            prefix = f"member{i}."
+            mine = {k[len(prefix) :]: v for k, v in arrays.items() if k.startswith(prefix)}
+            version = int(np.asarray(mine.pop("version")).reshape(-1)[0])
+            state = ModelState(spec["kind"], version, m.get_params(), mine)
+            models.append(type(m).from_state(state))
+        self.models_ = models
+        self.loss_ = loss.copy()
