@@ -15,7 +15,15 @@ from pathlib import Path
 import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
-LOCAL = {"streamrate", "service_fakes", "tests", "conftest", "helpers"}
+LOCAL = {
+    "streamrate",
+    "service_fakes",
+    "tests",
+    "conftest",
+    "helpers",
+    "rating_reference",
+    "encode_reference",
+}
 
 
 def _canonical(name: str) -> str:
