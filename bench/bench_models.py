@@ -1,7 +1,9 @@
-"""Speed and memory of the matchup models on pre-encoded events.
+"""Speed and memory of the models, on pre-encoded and on pre-parsed events.
 
 Run by hand:  python bench/bench_models.py [--events 1000000] [--entities 100000]
-              [--memory-entities 1000000]
+              [--memory-entities 1000000] [--only encoded|parsed|ratings|memory]
+
+Times are CPU seconds of this process (see :func:`timed`).
 
 Everything is timed on an :class:`~streamrate.batch.EncodedBatch` built straight
 from random rows (1v1, no context), i.e. "updates on pre-parsed events". In the
@@ -15,8 +17,18 @@ same run it times, on the same events:
   AdaGrad update (the baseline of the speed ratio) and the package's own
   ``backend="numpy"`` fallback, on a slice of the events.
 
+``parsed``: every model through ``learn_many`` on pre-parsed MatchEvent objects
+(1v1, then with 2v2 and draws), with the one-pass encoder and, in the same run,
+the former encoder (tests/encode_reference.py): the per-event microseconds of
+both.
+
+``ratings``: Glicko-2 and TrueSkill, compiled, against the former plain-Python
+models with the former encoder (tests/rating_reference.py), on the same paths
+(``learn_many``, ``learn_batch`` of 100 and 1000), and the update alone.
+
 Memory: bytes per entity at d=16 with ``--memory-entities`` entities (model
-arrays + AdaGrad sums + id map), by tracemalloc.
+arrays + AdaGrad sums + id map), by tracemalloc; resident memory of a process
+holding them is measured by bench/bench_memory.py.
 """
 
 from __future__ import annotations
@@ -24,16 +36,20 @@ from __future__ import annotations
 import argparse
 import gc
 import math
+import sys
 import time
 import tracemalloc
 from collections.abc import Callable
 from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 
-from streamrate.batch import EncodedBatch
+from streamrate.batch import EncodedBatch, encode_events
 from streamrate.encode import EntityTable
 from streamrate.events import MatchEvent
+from streamrate.models.base import Model, warm_up
 from streamrate.models.matchup import BladeChest, BladeChestDistance, BradleyTerry, MatchupModel
 
 
@@ -62,11 +78,14 @@ def fill_table(table: EntityTable, n_ent: int) -> None:
 
 
 def timed(fn: Callable[[], object], repeat: int = 3) -> float:
+    """Best of ``repeat`` runs, in CPU seconds of this process: everything timed is
+    single-threaded, and on a shared machine wall time also counts the waits for
+    a core, which swing from run to run."""
     best = math.inf
     for _ in range(repeat):
-        t = time.perf_counter()
+        t = time.process_time()
         fn()
-        best = min(best, time.perf_counter() - t)
+        best = min(best, time.process_time() - t)
     return best
 
 
@@ -151,35 +170,64 @@ def model_runner(
 PLAIN: dict[str, object] = {"context": "none"}
 
 
-def make_events(n: int, n_ent: int, seed: int = 2) -> list[MatchEvent]:
-    """Pre-parsed 1v1 events with a map and a mode, as the consumer hands them on."""
+def make_events(n: int, n_ent: int, seed: int = 2, teams: bool = False) -> list[MatchEvent]:
+    """Pre-parsed 1v1 events with a map and a mode, as the consumer hands them on;
+    with ``teams`` every third match is two against two and one in ten a draw."""
     rng = np.random.default_rng(seed)
     i = rng.integers(0, n_ent, n)
     j = (i + rng.integers(1, n_ent, n)) % n_ent
+    i2 = (i + rng.integers(1, n_ent, n)) % n_ent
+    j2 = (i + rng.integers(1, n_ent, n)) % n_ent
     maps = ("saltflats", "ember-quarry", "glasswood", "sunken-bell")
     start = datetime(2026, 3, 1, tzinfo=UTC)
-    return [
-        MatchEvent(
-            match_id=f"m-{k}",
-            finished_at=start + timedelta(seconds=10 * k),
-            first=(f"quill-{i[k]}",),
-            second=(f"quill-{j[k]}",),
-            score=float(rng.random() < 0.5),
-            context={"map": maps[k % 4], "mode": "duel"},
+    out = []
+    for k in range(n):
+        first, second = (f"quill-{i[k]}",), (f"quill-{j[k]}",)
+        duo = teams and k % 3 == 0 and len({i[k], j[k], i2[k], j2[k]}) == 4
+        if duo:
+            first, second = (*first, f"quill-{i2[k]}"), (*second, f"quill-{j2[k]}")
+        score = float(rng.random() < 0.5)
+        if teams and k % 10 == 5:
+            score = 0.5
+        out.append(
+            MatchEvent(
+                match_id=f"m-{k}",
+                finished_at=start + timedelta(seconds=10 * k),
+                first=first,
+                second=second,
+                score=score,
+                context={"map": maps[k % 4], "mode": "duo" if duo else "duel"},
+            )
         )
-        for k in range(n)
-    ]
+    return out
+
+
+def _former_encoder() -> Callable[..., EncodedBatch]:
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
+    from encode_reference import reference_encode_events
+
+    def former(*args: Any, context_scale: Any = None, feature_scale: Any = None, **kw: Any) -> Any:
+        # The former encoder had no scaling of numbers; the events timed here
+        # carry categories only, where scaling changes nothing.
+        return reference_encode_events(*args, **kw)
+
+    return former
 
 
 def speed_events(n: int, n_ent: int) -> None:
     """Events/s through ``learn_many`` on pre-parsed MatchEvent objects: encoding
     (id lookups, context hashing) plus the compiled update, the path that replay
-    and the service take; timed on a second pass over the same events."""
-    from streamrate.models.elo import Elo
+    and the service take; timed on a second pass over the same events. Each path
+    runs with the package's one-pass encoder and, in the same run, with the former
+    encoder (tests/encode_reference.py) swapped in: the per-event cost of both."""
+    from streamrate.models import elo, glicko2, matchup, trueskill
 
-    events = make_events(n, n_ent)
-    makers: list[tuple[str, Callable[[], object]]] = [
-        ("elo", Elo),
+    modules = (elo, glicko2, matchup, trueskill)
+    current, former = matchup.encode_events, _former_encoder()
+    makers: list[tuple[str, Callable[[], Model]]] = [
+        ("elo", elo.Elo),
+        ("glicko2", glicko2.Glicko2),
+        ("trueskill", trueskill.TrueSkill),
         ("bradley_terry", BradleyTerry),
         *[
             (f"blade_chest d={d} (context none)", lambda d=d: BladeChest(dims=d, **PLAIN))
@@ -188,17 +236,98 @@ def speed_events(n: int, n_ent: int) -> None:
         ("blade_chest d=16 (context stacked)", lambda: BladeChest(dims=16)),
         ("blade_chest defaults (d=8, stacked)", BladeChest),
     ]
-    rates: dict[str, float] = {}
-    for name, make in makers:
-        m = make()
-        # A first pass registers the ids (and compiles); the timed second pass is
-        # the steady state of a long-running stream, where most ids are known.
-        m.learn_many(events)  # type: ignore[attr-defined]
-        rates[name] = n / timed(lambda m=m: m.learn_many(events), repeat=1)  # type: ignore[attr-defined]
-    print(f"\n{n:,} pre-parsed 1v1 MatchEvent objects (map + mode context) through learn_many")
-    print(f"{'path':<62}{'events/s':>12}{'/ elo':>8}")
-    for name, rate in rates.items():
-        print(f"{name:<62}{rate:>12,.0f}{rate / rates['elo']:>8.2f}")
+    for teams in (False, True):
+        events = make_events(n, n_ent, teams=teams)
+        rows: list[tuple[str, float, float]] = []
+        for name, make in makers:
+            cost = []
+            for encoder in (former, current):
+                for mod in modules:
+                    mod.encode_events = encoder  # type: ignore[attr-defined]
+                m = make()
+                # A first pass registers the ids (and compiles); the timed second pass
+                # is the steady state of a long-running stream, where most ids are known.
+                m.learn_many(events)
+                cost.append(timed(lambda m=m, ev=events: m.learn_many(ev), repeat=3) / n)
+            rows.append((name, cost[0], cost[1]))
+        for mod in modules:
+            mod.encode_events = current  # type: ignore[attr-defined]
+        kind = "1v1 and 2v2 (every third), draws" if teams else "1v1"
+        print(f"\n{n:,} pre-parsed {kind} MatchEvent objects (map + mode context), learn_many")
+        print(f"{'path':<44}{'events/s':>12}{'/ elo':>7}{'us/ev before':>14}{'after':>8}{'x':>6}")
+        elo_rate = 1.0 / rows[0][2]
+        for name, before, after in rows:
+            rate = 1.0 / after
+            print(f"{name:<44}{rate:>12,.0f}{rate / elo_rate:>7.2f}{before * 1e6:>14.2f}"
+                  f"{after * 1e6:>8.2f}{before / after:>6.2f}")  # fmt: skip
+
+
+def speed_ratings(n: int, n_ent: int, n_slow: int) -> None:
+    """Glicko-2 and TrueSkill on pre-parsed MatchEvent objects (encoding included):
+    the former plain-Python models (tests/rating_reference.py, with the former
+    encoder of tests/encode_reference.py: the baseline) against
+    the compiled loops and their uncompiled run, sequential and in mini-batches."""
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
+    import rating_reference
+    from rating_reference import ReferenceGlicko2, ReferenceTrueSkill
+
+    from streamrate.models.glicko2 import Glicko2
+    from streamrate.models.trueskill import TrueSkill
+
+    # "Before" is the former models with the former encoder.
+    former = _former_encoder()
+    rating_reference.encode_events = former  # type: ignore[attr-defined]
+
+    events = make_events(n, n_ent, teams=True)
+    slow = events[:n_slow]
+    print(f"\n{n:,} pre-parsed MatchEvent objects (1v1 and 2v2, some draws), {n_ent:,} entities;")
+    print(f"plain-Python and uncompiled paths on the first {n_slow:,}")
+    print("x plain: against the plain-Python model on the same path (learn_many, batch size)")
+    print(f"{'path':<62}{'events/s':>12}{'x plain':>10}")
+    for name, ref, fast in (
+        ("glicko2", ReferenceGlicko2, Glicko2),
+        ("trueskill", ReferenceTrueSkill, TrueSkill),
+    ):
+        warm_up(fast())  # compile every path (or load it from the cache) untimed
+        rows: list[tuple[str, Callable[[], Model], list[MatchEvent], int]] = [
+            ("plain Python (before), learn_many", ref, slow, 0),
+            ("plain Python (before), learn_batch 100", ref, slow, 100),
+            ("plain Python (before), learn_batch 1000", ref, slow, 1000),
+            ("uncompiled loops (fallback), learn_many", lambda f=fast: f(compiled=False), slow, 0),
+            ("compiled, learn_many", fast, events, 0),
+            ("compiled, learn_batch 100", fast, events, 100),
+            ("compiled, learn_batch 1000", fast, events, 1000),
+        ]
+        plain: dict[int, float] = {}  # the baseline rate of each path (0: learn_many)
+        batch_s: dict[str, float] = {}
+        for label, make, evs, size in rows:
+            m = make()
+            if size:
+                parts = [evs[k : k + size] for k in range(0, len(evs), size)]
+                t = timed(lambda m=m, parts=parts: [m.learn_batch(p) for p in parts], repeat=1)
+            else:
+                t = timed(lambda m=m, evs=evs: m.learn_many(evs), repeat=1)
+            rate = len(evs) / t
+            plain.setdefault(size, rate)
+            print(f"{name + ' ' + label:<62}{rate:>12,.0f}{rate / plain[size]:>10.1f}")
+            if label.endswith("learn_batch 100"):
+                batch_s[label.split(",")[0]] = t / len(evs)
+        # The update alone: batch-100 time less the encoding of the same batches
+        # (former encoder for the plain model, one-pass encoder for the compiled).
+        enc = {}
+        for label, encoder, evs in (
+            ("plain Python (before)", former, slow),
+            ("compiled", encode_events, events),
+        ):
+            parts = [evs[k : k + 100] for k in range(0, len(evs), 100)]
+            table = EntityTable()
+            t = timed(lambda parts=parts, e=encoder, tb=table: [e(p, tb) for p in parts], 1)
+            enc[label] = t / len(evs)
+        upd = {k: batch_s[k] - enc[k] for k in enc}
+        print(f"{name} batch 100, us/event: encoding {enc['plain Python (before)'] * 1e6:.2f} "
+              f"-> {enc['compiled'] * 1e6:.2f}, update alone "
+              f"{upd['plain Python (before)'] * 1e6:.2f} -> {upd['compiled'] * 1e6:.2f} "
+              f"(x{upd['plain Python (before)'] / upd['compiled']:.1f})")  # fmt: skip
 
 
 def speed(n: int, n_ent: int, n_slow: int) -> None:
@@ -272,11 +401,19 @@ def main() -> None:
     ap.add_argument("--entities", type=int, default=100_000)
     ap.add_argument("--slow-events", type=int, default=20_000)
     ap.add_argument("--parsed-events", type=int, default=200_000)
+    ap.add_argument("--rating-events", type=int, default=200_000)
+    ap.add_argument("--only", choices=("encoded", "parsed", "ratings", "memory"), default=None)
     ap.add_argument("--memory-entities", type=int, default=1_000_000)
     args = ap.parse_args()
-    speed(args.events, args.entities, args.slow_events)
-    speed_events(args.parsed_events, args.entities)
-    memory(args.memory_entities)
+    run = {
+        "encoded": lambda: speed(args.events, args.entities, args.slow_events),
+        "parsed": lambda: speed_events(args.parsed_events, args.entities),
+        "ratings": lambda: speed_ratings(args.rating_events, args.entities, args.slow_events),
+        "memory": lambda: memory(args.memory_entities),
+    }
+    for name, part in run.items():
+        if args.only in (None, name):
+            part()
 
 
 if __name__ == "__main__":

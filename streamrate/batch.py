@@ -33,15 +33,22 @@ Example:
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from datetime import datetime
+from itertools import chain, repeat
+from operator import add as add_tuples
+from operator import attrgetter, itemgetter
 
 import numpy as np
 
-from streamrate.encode import EntityTable, FeatureHasher
+from streamrate.encode import Encoded, EntityTable, FeatureHasher, RunningScale
 from streamrate.events import Matchup
 
 _NAN = math.nan
+_FIRST, _SECOND = attrgetter("first"), attrgetter("second")
+_SCORE, _FINISHED = attrgetter("score"), attrgetter("finished_at")
+_ONLY = itemgetter(0)
 _EMPTY_I = np.zeros((0, 0, 0), dtype=np.int32)
 _EMPTY_F = np.zeros((0, 0, 0), dtype=np.float64)
 
@@ -85,51 +92,81 @@ class EncodedBatch:
         return self.feat_idx.ndim == 3 and self.feat_idx.shape[0] == len(self) > 0
 
 
-def _rows(
-    sides: list[tuple[str, ...]], get: Callable[[str, int], int]
-) -> tuple[np.ndarray, np.ndarray, bool]:
-    """(rows padded with -1, sizes, whether a real member is unknown).
+def _members(
+    events: Sequence[Matchup], table: EntityTable, add: bool
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """(first rows, first sizes, second rows, second sizes) of a batch, in one pass.
 
-    ``get(id, -1)`` is the table's dict lookup itself: this runs for every
-    entity of every event, so no Python-level wrapper sits in between.
+    Ids are looked up by ``map`` over the table's own dict lookup (no Python
+    loop per event); with teams, all member ids of the batch form one
+    flat list in event order (first side, then second side) and numpy lays them
+    out padded. New ids get rows in that order, exactly as one-event-at-a-time
+    encoding would hand them out, so row numbers (and anything seeded by them)
+    do not depend on how a stream was cut into batches.
     """
-    n = len(sides)
-    width = max(map(len, sides), default=1)
-    if width == 1:
-        out = [get(s[0], -1) for s in sides]
-        unknown = -1 in out
-        return np.array(out, dtype=np.int32).reshape(n, 1), np.ones(n, dtype=np.int32), unknown
-    flat: list[int] = []
-    pad = [-1] * width
-    sizes = []
-    unknown = False
-    for s in sides:
-        k = len(s)
-        sizes.append(k)
-        members = [get(e, -1) for e in s]
-        if -1 in members:
-            unknown = True
-        flat.extend(members)
-        if k < width:
-            flat.extend(pad[k:])
-    rows = np.array(flat, dtype=np.int32).reshape(n, width)
-    return rows, np.array(sizes, dtype=np.int32), unknown
+    n = len(events)
+    firsts = list(map(_FIRST, events))
+    seconds = list(map(_SECOND, events))
+    get = table.lookup
+    if max(map(len, firsts), default=1) == 1 == max(map(len, seconds), default=1):
+        # one against one: no sizes to read, no padding to lay out
+        # list, then array: np.fromiter converts int by int, slower than np.array
+        rows1 = np.array(list(map(get, map(_ONLY, firsts), repeat(-1))), dtype=np.int32)
+        rows2 = np.array(list(map(get, map(_ONLY, seconds), repeat(-1))), dtype=np.int32)
+        if add and n and min(rows1.min(), rows2.min()) < 0:
+            row = table.row
+            for i in np.flatnonzero((rows1 < 0) | (rows2 < 0)).tolist():
+                rows1[i] = row(firsts[i][0])
+                rows2[i] = row(seconds[i][0])
+        ones = np.ones(n, dtype=np.int32)
+        return rows1.reshape(n, 1), ones, rows2.reshape(n, 1), ones.copy()
+    size1 = np.fromiter(map(len, firsts), dtype=np.int32, count=n)
+    size2 = np.fromiter(map(len, seconds), dtype=np.int32, count=n)
+    ids = list(chain.from_iterable(map(add_tuples, firsts, seconds)))
+    rows = np.array(list(map(get, ids, repeat(-1))), dtype=np.int32)
+    if add:
+        row = table.row
+        for k in np.flatnonzero(rows < 0).tolist():
+            rows[k] = row(ids[k])
+    w1, w2 = int(size1.max()), int(size2.max())
+    start = np.cumsum(size1 + size2, dtype=np.int64) - (size1 + size2)
+    pad = len(ids)
+    rows = np.append(rows, np.int32(-1))  # the padding value, at index ``pad``
+    cols1, cols2 = np.arange(w1), np.arange(w2)
+    at1 = np.where(cols1 < size1[:, None], start[:, None] + cols1, pad)
+    at2 = np.where(cols2 < size2[:, None], (start + size1)[:, None] + cols2, pad)
+    return rows[at1], size1, rows[at2], size2
 
 
-def _register(events: Sequence[Matchup], table: EntityTable) -> None:
-    # Rows are handed out in event order (first side, then second side), exactly
-    # as one-event-at-a-time encoding would, so row numbers (and anything seeded
-    # by them) do not depend on how a stream was cut into batches.
-    row = table.row
-    for e in events:
-        for x in e.first:
-            row(x)
-        for x in e.second:
-            row(x)
+def scaled_items(hit: Encoded, scale: RunningScale | None) -> list[tuple[int, float]]:
+    """The (slot, value) pairs of one mapping, its numbers as standard scores from
+    ``scale`` (which this does not change) or, without one, raw."""
+    pairs, numbers = hit
+    if not numbers:
+        return pairs
+    out = list(pairs)
+    for pos, name, v in numbers:
+        slot, sign = out[pos]
+        z = float(v) if scale is None else scale.score(name, v)
+        out[pos] = (slot, sign * z)
+    return out
+
+
+def add_numbers(hits: Sequence[Encoded], scale: RunningScale | None) -> None:
+    """Add the numbers of one event's mappings to the running statistics: after all
+    of them are scored, so every number of an event is scored alike, and a model's
+    prediction while it learns is the one it gave before."""
+    if scale is not None:
+        for _, numbers in hits:
+            for _, name, v in numbers:
+                scale.add(name, v)
 
 
 def _sparse(
-    maps: Sequence[Mapping[str, str | float]], hasher: FeatureHasher
+    maps: Sequence[Mapping[str, str | float]],
+    hasher: FeatureHasher,
+    scale: RunningScale | None = None,
+    learn: bool = False,
 ) -> tuple[np.ndarray, np.ndarray]:
     n = len(maps)
     width = max(map(len, maps), default=0)
@@ -141,7 +178,13 @@ def _sparse(
     pad = (-1, 0.0)
     flat: list[tuple[int, float]] = []
     for m in maps:
-        flat.extend(encoded(tuple(m.items())))
+        hit = encoded(tuple(m.items()))
+        if hit[1]:
+            flat.extend(scaled_items(hit, scale))
+            if learn:
+                add_numbers((hit,), scale)
+        else:
+            flat.extend(hit[0])
         if len(m) < width:
             flat.extend([pad] * (width - len(m)))
     pairs = np.array(flat, dtype=np.float64).reshape(n, width, 2)
@@ -149,7 +192,12 @@ def _sparse(
 
 
 def _features(
-    events: Sequence[Matchup], k1: int, k2: int, hasher: FeatureHasher
+    events: Sequence[Matchup],
+    k1: int,
+    k2: int,
+    hasher: FeatureHasher,
+    scale: RunningScale | None = None,
+    learn: bool = False,
 ) -> tuple[np.ndarray, np.ndarray]:
     n = len(events)
     width = max((len(f) for e in events for f in e.features.values()), default=0)
@@ -158,16 +206,17 @@ def _features(
     for i, e in enumerate(events):
         if not e.features:
             continue
-        for j, ent in enumerate(e.first):
-            fm = e.features.get(ent)
-            if fm:
-                a, b = hasher.encode(fm)
-                idx[i, j, : len(a)], val[i, j, : len(a)] = a, b
-        for j, ent in enumerate(e.second):
-            fm = e.features.get(ent)
-            if fm:
-                a, b = hasher.encode(fm)
-                idx[i, k1 + j, : len(a)], val[i, k1 + j, : len(a)] = a, b
+        hits = []
+        for off, side in ((0, e.first), (k1, e.second)):
+            for j, ent in enumerate(side):
+                fm = e.features.get(ent)
+                if fm:
+                    hit = hasher.encoded_items(tuple(fm.items()))
+                    hits.append(hit)
+                    for f, (slot, v) in enumerate(scaled_items(hit, scale)):
+                        idx[i, off + j, f], val[i, off + j, f] = slot, v
+        if learn:
+            add_numbers(hits, scale)
     return idx, val
 
 
@@ -177,39 +226,39 @@ def encode_events(
     context: FeatureHasher | None = None,
     features: FeatureHasher | None = None,
     add: bool = True,
+    context_scale: RunningScale | None = None,
+    feature_scale: RunningScale | None = None,
 ) -> EncodedBatch:
     """Encode events (or queries) into arrays.
 
     ``add=True`` gives new ids a row in ``table``; ``add=False`` leaves the table
     untouched and marks unknown ids with row ``-1`` (inside the side's size).
+
+    With a ``context_scale`` / ``feature_scale``, numbers of the context / of the
+    entity features enter as standard scores; ``add=True`` (events to learn
+    from) first adds each number to its field's statistics, event by event in
+    order, so a batch is encoded exactly as its events one at a time would be.
     """
     n = len(events)
-    firsts = [e.first for e in events]
-    seconds = [e.second for e in events]
-    get = table.lookup
-    first, first_size, unknown1 = _rows(firsts, get)
-    second, second_size, unknown2 = _rows(seconds, get)
-    if add and (unknown1 or unknown2):
-        _register(events, table)
-        first, first_size, _ = _rows(firsts, get)
-        second, second_size, _ = _rows(seconds, get)
+    first, first_size, second, second_size = _members(events, table, add)
     try:  # the common case, all finished matches; a query lacks both fields
-        score = np.array([e.score for e in events], dtype=np.float64)  # type: ignore[attr-defined]
-        time_s = np.array(
-            [e.finished_at.timestamp() for e in events],  # type: ignore[attr-defined]
-            dtype=np.float64,
+        score = np.fromiter(map(_SCORE, events), dtype=np.float64, count=n)
+        time_s = np.fromiter(
+            map(datetime.timestamp, map(_FINISHED, events)), dtype=np.float64, count=n
         )
     except AttributeError:
         score = np.array([getattr(e, "score", _NAN) for e in events], dtype=np.float64)
         times = [getattr(e, "finished_at", None) for e in events]
         time_s = np.array([_NAN if t is None else t.timestamp() for t in times], dtype=np.float64)
     if context is not None:
-        ctx_idx, ctx_val = _sparse([e.context for e in events], context)
+        ctx_idx, ctx_val = _sparse([e.context for e in events], context, context_scale, add)
     else:
         ctx_idx = np.full((n, 0), -1, dtype=np.int32)
         ctx_val = np.zeros((n, 0), dtype=np.float64)
     if features is not None:
-        feat_idx, feat_val = _features(events, first.shape[1], second.shape[1], features)
+        feat_idx, feat_val = _features(
+            events, first.shape[1], second.shape[1], features, feature_scale, add
+        )
     else:
         feat_idx, feat_val = _EMPTY_I, _EMPTY_F
     return EncodedBatch(
@@ -223,3 +272,14 @@ def count_matches(batch: EncodedBatch, table: EntityTable) -> None:
         r = rows[rows >= 0]
         if r.size:
             np.add.at(table.counts, r, 1)
+
+
+def has_unknown(batch: EncodedBatch) -> bool:
+    """Whether a real member of some event has no row (``add=False`` encoding)."""
+    for rows, sizes in ((batch.first, batch.first_size), (batch.second, batch.second_size)):
+        if rows.shape[1] == 1:
+            if rows.size and rows.min() < 0:
+                return True
+        elif np.any((rows < 0) & (np.arange(rows.shape[1]) < sizes[:, None])):
+            return True
+    return False

@@ -15,6 +15,10 @@ Two mappings live here:
   average rather than add up. crc32 is used, not ``hash()``, because it is the
   same in every process and on every machine, so a saved model reads back.
 
+A third, :class:`RunningScale`, keeps a running mean and deviation per numeric
+field so that numbers enter a model as standard scores (a year such as 2004 or
+a rating of 1800 would otherwise swamp every other input).
+
 Example:
 
 >>> h = FeatureHasher(width=16)
@@ -25,6 +29,7 @@ Example:
 
 from __future__ import annotations
 
+import math
 import zlib
 from collections.abc import Callable, Iterable, Mapping
 
@@ -35,6 +40,8 @@ from streamrate.errors import StateError
 
 IntArray = npt.NDArray[np.int32]
 FloatArray = npt.NDArray[np.float64]
+Encoded = tuple[list[tuple[int, float]], tuple[tuple[int, str, float], ...]]
+"""(slot, signed value) pairs of a mapping and (position, name, value) of its numbers."""
 
 
 class FeatureHasher:
@@ -46,7 +53,7 @@ class FeatureHasher:
         self.width = width
         self._slots: dict[str, tuple[int, float]] = {}
         self._items: dict[tuple[str, str | float], tuple[int, float]] = {}
-        self._maps: dict[tuple[tuple[str, str | float], ...], list[tuple[int, float]]] = {}
+        self._maps: dict[tuple[tuple[str, str | float], ...], Encoded] = {}
 
     def slot(self, key: str) -> tuple[int, float]:
         """Return (slot index, sign) for a hashed key; cached, as keys repeat a lot."""
@@ -71,13 +78,27 @@ class FeatureHasher:
                 self._items[(name, value)] = hit
         return hit
 
-    def encoded_items(self, items: tuple[tuple[str, str | float], ...]) -> list[tuple[int, float]]:
-        """(slot, signed value) of each pair of a whole mapping, cached by its items:
-        the same context (map, mode, patch) comes back match after match."""
+    def encoded_items(self, items: tuple[tuple[str, str | float], ...]) -> Encoded:
+        """(slot, signed value) of each pair of a whole mapping, and its numbers.
+
+        The second part lists ``(position, name, value)`` of each numeric pair;
+        the pair at that position then holds (slot, sign), for the caller to
+        multiply by the (scaled) value. Mappings of categories only are cached
+        by their items: the same context (map, mode, patch) comes back match
+        after match, while numbers rarely repeat.
+        """
         hit = self._maps.get(items)
         if hit is None:
-            hit = [self.item(name, v) for name, v in items]
-            if len(self._maps) < 100_000:
+            pairs: list[tuple[int, float]] = []
+            numbers: list[tuple[int, str, float]] = []
+            for name, v in items:
+                if isinstance(v, str):
+                    pairs.append(self.item(name, v))
+                else:
+                    pairs.append(self.slot(name))
+                    numbers.append((len(pairs) - 1, name, v))
+            hit = (pairs, tuple(numbers))
+            if not numbers and len(self._maps) < 100_000:
                 self._maps[items] = hit
         return hit
 
@@ -94,6 +115,126 @@ class FeatureHasher:
         idx, val = self.encode(values)
         np.add.at(out, idx, val)
         return out
+
+
+class RunningScale:
+    """Running mean and deviation of each numeric field, and standard scores from them.
+
+    :meth:`score` gives a value's standard score ``(x - mean) / deviation`` from
+    its field's statistics so far; :meth:`add` adds a value to them (Welford's
+    online update, numerically stable in one pass); :meth:`observe` does both, in
+    that order. Scoring before adding means a model's prediction made while it
+    learns equals the one it gave before. Until a field has two different
+    values, its scores are 0. Scores are clipped to
+    ``+-clip`` deviations and values to ``+-1e100`` before they are added, so
+    every score is finite whatever the input. A field given in other units (any
+    change ``a * x + b`` with ``a > 0``) gets the same scores.
+
+    >>> s = RunningScale()
+    >>> [round(s.observe("year", y), 3) for y in (2004.0, 2010.0, 2016.0, 2013.0)]
+    [0.0, 0.0, 3.0, 0.612]
+    >>> round(s.score("year", 2010.0), 3), s.stats("year")[:2]
+    (-0.169, (4.0, 2010.75))
+    """
+
+    LIMIT = 1e100
+
+    def __init__(self, clip: float = 5.0) -> None:
+        self.clip = clip
+        self._field: dict[str, int] = {}
+        self.names: list[str] = []
+        # Plain lists: one value at a time, Python floats beat numpy scalars.
+        self._count: list[float] = []
+        self._mean: list[float] = []
+        self._m2: list[float] = []
+
+    def __len__(self) -> int:
+        return len(self.names)
+
+    def _z(self, f: int, x: float) -> float:
+        n = self._count[f]
+        m2 = self._m2[f]
+        if n < 2.0 or m2 <= 0.0:
+            return 0.0
+        sd = math.sqrt(m2 / n)
+        if not sd > 0.0:
+            return 0.0
+        z = (x - self._mean[f]) / sd
+        return max(-self.clip, min(self.clip, z))
+
+    @classmethod
+    def _bounded(cls, value: float) -> float:
+        try:
+            x = float(value)
+        except OverflowError:  # an int too large for a float
+            x = math.inf if value > 0 else -math.inf
+        return max(-cls.LIMIT, min(cls.LIMIT, x))
+
+    def observe(self, name: str, value: float) -> float:
+        """The standard score of ``value`` in field ``name``; then add it."""
+        z = self.score(name, value)
+        self.add(name, value)
+        return z
+
+    def add(self, name: str, value: float) -> None:
+        """Add ``value`` to the statistics of field ``name``."""
+        x = self._bounded(value)
+        f = self._field.get(name)
+        if f is None:
+            f = self._field[name] = len(self.names)
+            self.names.append(name)
+            self._count.append(0.0)
+            self._mean.append(0.0)
+            self._m2.append(0.0)
+        n = self._count[f] + 1.0
+        delta = x - self._mean[f]
+        mean = self._mean[f] + delta / n
+        self._count[f], self._mean[f] = n, mean
+        self._m2[f] += delta * (x - mean)
+
+    def score(self, name: str, value: float) -> float:
+        """The standard score of ``value`` in field ``name``; changes nothing."""
+        f = self._field.get(name)
+        return 0.0 if f is None else self._z(f, self._bounded(value))
+
+    def stats(self, name: str) -> tuple[float, float, float]:
+        """(count, mean, deviation) of a field; zeros if never seen."""
+        f = self._field.get(name)
+        if f is None:
+            return 0.0, 0.0, 0.0
+        n = self._count[f]
+        return n, self._mean[f], math.sqrt(self._m2[f] / n) if n else 0.0
+
+    # -- persistence -----------------------------------------------------------------
+    def to_arrays(self, prefix: str) -> dict[str, np.ndarray]:
+        blob = "\n".join(self.names).encode("utf-8")
+        return {
+            f"{prefix}_names": np.frombuffer(blob, dtype=np.uint8).copy(),
+            f"{prefix}_stats": np.array(
+                [self._count, self._mean, self._m2], dtype=np.float64
+            ).T.reshape(-1, 3),
+        }
+
+    @classmethod
+    def from_arrays(
+        cls, arrays: Mapping[str, np.ndarray], prefix: str, clip: float = 5.0
+    ) -> RunningScale:
+        try:
+            blob = bytes(np.asarray(arrays[f"{prefix}_names"], dtype=np.uint8))
+            stats = np.asarray(arrays[f"{prefix}_stats"], dtype=np.float64)
+        except KeyError as exc:
+            raise StateError(f"saved state lacks the array {exc.args[0]!r}") from exc
+        names = blob.decode("utf-8").split("\n") if blob else []
+        if stats.shape != (len(names), 3) or len(set(names)) != len(names):
+            raise StateError(
+                f"saved state is inconsistent: {len(names)} numeric fields, statistics "
+                f"of shape {stats.shape}"
+            )
+        scale = cls(clip)
+        scale.names = names
+        scale._field = {name: i for i, name in enumerate(names)}
+        scale._count, scale._mean, scale._m2 = (stats[:, k].tolist() for k in range(3))
+        return scale
 
 
 class EntityTable:
@@ -127,7 +268,11 @@ class EntityTable:
             self._rows[entity_id] = r
             self._ids.append(entity_id)
             if r >= len(self.counts):
-                self.counts = np.concatenate([self.counts, np.zeros_like(self.counts)])
+                # np.zeros: the spare half costs no memory until written (see
+                # streamrate.models.base.with_room), unlike zeros_like + concatenate.
+                grown = np.zeros(2 * len(self.counts), dtype=np.int32)
+                grown[:r] = self.counts[:r]
+                self.counts = grown
         return r
 
     def rows(self, entity_ids: Iterable[str]) -> list[int]:

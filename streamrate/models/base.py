@@ -156,7 +156,14 @@ class Model(ABC):
             )
 
     @classmethod
+    def upgrade_state(cls, state: ModelState) -> ModelState:
+        """A saved state of an older version that this code still reads, in the
+        current version's terms; other states as they are."""
+        return state
+
+    @classmethod
     def from_state(cls, state: ModelState) -> Model:
+        state = cls.upgrade_state(state)
         cls.check_state(state)
         try:
             model = cls(**state.params)
@@ -171,6 +178,39 @@ class Model(ABC):
     def __repr__(self) -> str:
         args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items())
         return f"{type(self).__name__}({args})"
+
+
+GROW_ROWS = 1 << 16
+"""Entity arrays take memory in steps of at most this many rows."""
+
+
+def with_room(arr: np.ndarray, used: int, rows: int) -> np.ndarray:
+    """``arr`` itself if it has ``rows`` rows, else a larger array holding its first
+    ``used`` rows (the rest zero).
+
+    The larger array comes from ``np.zeros``, whose pages the OS hands out only
+    when first written: its spare rows reserve address space, not memory, and
+    only the rows in use are copied. Its length at least doubles, so copies are
+    rare; resident memory grows as rows are written.
+
+    >>> a = with_room(np.ones((3, 2)), 3, 5)
+    >>> a.shape, a[:, 0].tolist()
+    ((6, 2), [1.0, 1.0, 1.0, 0.0, 0.0, 0.0])
+    """
+    if rows <= arr.shape[0]:
+        return arr
+    out = np.zeros((max(rows, 2 * arr.shape[0]), *arr.shape[1:]), dtype=arr.dtype)
+    out[:used] = arr[:used]
+    return out
+
+
+def numbers_read_raw(cls: type[Model], state: ModelState) -> ModelState:
+    """``upgrade_state`` of a model whose version 2 began scaling numbers: a version 1
+    state loads with ``scale_numbers`` off, reading numbers raw as it was trained."""
+    if state.kind == cls.kind and state.version == 1:
+        params = {**state.params, "scale_numbers": False}
+        return ModelState(state.kind, 2, params, state.arrays)
+    return state
 
 
 def entity_arrays(table: EntityTable, **per_entity: np.ndarray) -> dict[str, np.ndarray]:

@@ -27,6 +27,10 @@ mean and deviation and puts the combined ``phi = sqrt(phi_a**2 + phi_b**2)``
 inside ``g``: ``P = 1 / (1 + exp(-g(phi) * (mu_a - mu_b)))``. No draw model:
 ``p_draw`` is 0 and a draw enters the update as score 0.5.
 
+The arithmetic lives in :mod:`._kernels_glicko2`, loops over encoded batches
+compiled with numba; ``compiled=False`` runs the same loops uncompiled (same
+numbers, far slower).
+
 >>> new = rate_period(0.0, 200 / SCALE, 0.06, [(1400 - 1500) / SCALE], [30 / SCALE], [1.0])
 >>> round(1500 + SCALE * new[0], 2)
 1563.56
@@ -40,10 +44,13 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from streamrate.batch import count_matches, encode_events
+from streamrate.batch import EncodedBatch, encode_events, has_unknown
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError
 from streamrate.events import MatchEvent, Matchup
+from streamrate.models import _kernels_glicko2 as _k
+from streamrate.models._kernels_glicko2 import finish, g, logistic
+from streamrate.models._kernels_glicko2 import new_volatility as _new_volatility
 from streamrate.models.base import (
     Model,
     Prediction,
@@ -52,59 +59,22 @@ from streamrate.models.base import (
     load_entity_arrays,
 )
 
+__all__ = ["CENTER", "SCALE", "Glicko2", "expected", "g", "new_volatility", "rate_period"]
+
 SCALE = 173.7178
 """Ratio between the displayed rating scale and the internal Glicko-2 scale."""
 CENTER = 1500.0
 
 
-def g(phi: float) -> float:
-    return 1.0 / math.sqrt(1.0 + 3.0 * phi * phi / (math.pi * math.pi))
-
-
-def _logistic(x: float) -> float:
-    # Two branches so that exp never overflows, however far apart the ratings.
-    if x >= 0:
-        return 1.0 / (1.0 + math.exp(-x))
-    ex = math.exp(x)
-    return ex / (1.0 + ex)
-
-
 def expected(mu: float, mu_j: float, phi_j: float) -> float:
-    return _logistic(g(phi_j) * (mu - mu_j))
+    return logistic(g(phi_j) * (mu - mu_j))
 
 
 def new_volatility(
     phi: float, sigma: float, delta: float, v: float, tau: float, tolerance: float = 1e-6
 ) -> float:
     """Step 5: solve for the new volatility by the Illinois (regula falsi) iteration."""
-    a = math.log(sigma * sigma)
-    phi2 = phi * phi
-    tau2 = tau * tau
-
-    def f(x: float) -> float:
-        ex = math.exp(x)
-        return ex * (delta * delta - phi2 - v - ex) / (2.0 * (phi2 + v + ex) ** 2) - (x - a) / tau2
-
-    big_a = a
-    if delta * delta > phi2 + v:
-        big_b = math.log(delta * delta - phi2 - v)
-    else:
-        k = 1
-        while f(a - k * tau) < 0:
-            k += 1
-        big_b = a - k * tau
-    f_a, f_b = f(big_a), f(big_b)
-    for _ in range(200):  # converges in a handful of steps; the cap guards the loop
-        if abs(big_b - big_a) <= tolerance:
-            break
-        big_c = big_a + (big_a - big_b) * f_a / (f_b - f_a)
-        f_c = f(big_c)
-        if f_c * f_b <= 0:
-            big_a, f_a = big_b, f_b
-        else:
-            f_a = f_a / 2.0
-        big_b, f_b = big_c, f_c
-    return math.exp(big_a / 2.0)
+    return _new_volatility(phi, sigma, delta, v, tau, tolerance)
 
 
 def rate_period(
@@ -124,23 +94,10 @@ def rate_period(
     total = 0.0
     for m_j, p_j, s in zip(opp_mu, opp_phi, scores, strict=True):
         gj = g(p_j)
-        e = _logistic(gj * (mu - m_j))
+        e = logistic(gj * (mu - m_j))
         inv_v += gj * gj * e * (1.0 - e)
         total += gj * (s - e)
-    return _finish(mu, phi, sigma, inv_v, total, tau, tolerance)
-
-
-def _finish(
-    mu: float, phi: float, sigma: float, inv_v: float, total: float, tau: float, tolerance: float
-) -> tuple[float, float, float]:
-    if inv_v <= 0.0:
-        # Results so certain they carry no information: only the deviation grows.
-        return mu, math.sqrt(phi * phi + sigma * sigma), sigma
-    v = 1.0 / inv_v
-    sigma_new = new_volatility(phi, sigma, v * total, v, tau, tolerance)
-    phi_star = math.sqrt(phi * phi + sigma_new * sigma_new)
-    phi_new = 1.0 / math.sqrt(1.0 / (phi_star * phi_star) + inv_v)
-    return mu + phi_new * phi_new * total, phi_new, sigma_new
+    return finish(mu, phi, sigma, inv_v, total, tau, tolerance)
 
 
 class Glicko2(Model):
@@ -156,6 +113,7 @@ class Glicko2(Model):
         tau: float = 0.5,
         period_s: float = 0.0,
         tolerance: float = 1e-6,
+        compiled: bool = True,
     ) -> None:
         if not (initial_deviation > 0 and initial_volatility > 0 and tau > 0):
             raise ConfigError("glicko2: deviation, volatility and tau must be positive")
@@ -167,8 +125,10 @@ class Glicko2(Model):
         self.tau = float(tau)
         self.period_s = float(period_s)
         self.tolerance = float(tolerance)
+        self.compiled = bool(compiled)
         self._mu0 = (self.initial_rating - CENTER) / SCALE
         self._phi0 = self.initial_deviation / SCALE
+        self._prm = np.array([self._mu0, self._phi0, self.tau, self.tolerance, self.period_s])
         self.entities_ = EntityTable()
         self._alloc(16)
 
@@ -177,11 +137,12 @@ class Glicko2(Model):
         self.phi_ = np.full(n, self._phi0)
         self.sigma_ = np.full(n, self.initial_volatility)
         self.last_s_ = np.full(n, np.nan)
+        self._mark = np.full(n, -1, dtype=np.int64)  # scratch of the loops, not state
 
     def _fit_capacity(self) -> None:
         n, cap = len(self.entities_), len(self.mu_)
         if n > cap:
-            old = (self.mu_, self.phi_, self.sigma_, self.last_s_)
+            old = (self.mu_, self.phi_, self.sigma_, self.last_s_)  # _mark: all -1 between calls
             self._alloc(max(n, 2 * cap))
             for new, prev in zip(
                 (self.mu_, self.phi_, self.sigma_, self.last_s_), old, strict=True
@@ -199,34 +160,35 @@ class Glicko2(Model):
             float(self.sigma_[r]),
         )
 
-    def _side(self, rows: Sequence[int]) -> tuple[float, float]:
-        """Mean mu of a side and the deviation of that mean."""
-        mu = 0.0
-        var = 0.0
-        for r in rows:
-            if r < 0:
-                mu += self._mu0
-                var += self._phi0 * self._phi0
-            else:
-                mu += float(self.mu_[r])
-                var += float(self.phi_[r]) ** 2
-        n = len(rows)
-        return mu / n, math.sqrt(var) / n
-
-    @staticmethod
-    def _p_win(side_a: tuple[float, float], side_b: tuple[float, float]) -> float:
-        phi = math.sqrt(side_a[1] ** 2 + side_b[1] ** 2)
-        return _logistic(g(phi) * (side_a[0] - side_b[0]))
-
     # -- the online API -----------------------------------------------------------
     def predict(self, matchup: Matchup) -> Prediction:
-        get = self.entities_.get
-        a = self._side([get(e) for e in matchup.first])
-        b = self._side([get(e) for e in matchup.second])
-        return Prediction(self._p_win(a, b))
+        b = encode_events([matchup], self.entities_, add=False)
+        p = np.empty(1)
+        run = _k.predict_compiled if self.compiled else _k.predict
+        run(b.first, b.first_size, b.second, b.second_size, self.mu_, self.phi_, self._prm, p)
+        return Prediction(float(p[0]))
 
     def learn(self, event: MatchEvent) -> Prediction:
-        return self.learn_batch([event])[0]
+        p = self.learn_many([event])
+        return Prediction(float(p.p_win[0]), float(p.p_draw[0]))
+
+    def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
+        """Each match its own rating period, in order (``learn`` in a loop)."""
+        if not events:
+            return Predictions(np.zeros(0), np.zeros(0))
+        return self.learn_encoded(encode_events(events, self.entities_))
+
+    def learn_encoded(self, b: EncodedBatch) -> Predictions:
+        """Sequential learning over an encoded batch (``add=True`` encoding)."""
+        if has_unknown(b):
+            raise ValueError("learn_encoded: batch holds entities unknown to this model")
+        self._fit_capacity()
+        p = np.empty(len(b))
+        run = _k.learn_seq_compiled if self.compiled else _k.learn_seq
+        run(b.first, b.first_size, b.second, b.second_size, b.score, b.time_s, self.mu_,
+            self.phi_, self.sigma_, self.last_s_, self.entities_.counts, self._mark, self._prm,
+            p)  # fmt: skip
+        return Predictions(p, np.zeros(len(b)))
 
     def learn_batch(self, events: Sequence[MatchEvent]) -> Predictions:
         """One rating period: predict all events from the batch-start state, then rate."""
@@ -234,65 +196,12 @@ class Glicko2(Model):
             return Predictions(np.zeros(0), np.zeros(0))
         b = encode_events(events, self.entities_)
         self._fit_capacity()
-        n = len(b)
-        sides = [
-            (b.first[i, : b.first_size[i]].tolist(), b.second[i, : b.second_size[i]].tolist())
-            for i in range(n)
-        ]
-        if self.period_s > 0:
-            self._inflate_idle(sides, b.time_s)
-        p = np.empty(n)
-        # Per entity: sum of g^2 E (1 - E) (that is 1/v) and of g (s - E).
-        inv_v: dict[int, float] = {}
-        total: dict[int, float] = {}
-        for i, (rows_a, rows_b) in enumerate(sides):
-            side_a, side_b = self._side(rows_a), self._side(rows_b)
-            p[i] = self._p_win(side_a, side_b)
-            s = float(b.score[i])
-            for rows, (m_own, _), (m_j, p_j), score in (
-                (rows_a, side_a, side_b, s),
-                (rows_b, side_b, side_a, 1.0 - s),
-            ):
-                gj = g(p_j)
-                # The expectation is the side's, as in the prediction: every member
-                # shares the result of the team (for one entity a side, this is the
-                # published step 3 exactly).
-                e = _logistic(gj * (m_own - m_j))
-                for r in rows:
-                    inv_v[r] = inv_v.get(r, 0.0) + gj * gj * e * (1.0 - e)
-                    total[r] = total.get(r, 0.0) + gj * (score - e)
-        updates = {
-            r: _finish(
-                float(self.mu_[r]),
-                float(self.phi_[r]),
-                float(self.sigma_[r]),
-                inv_v[r],
-                total[r],
-                self.tau,
-                self.tolerance,
-            )
-            for r in inv_v
-        }
-        for r, (mu, phi, sigma) in updates.items():
-            self.mu_[r], self.phi_[r], self.sigma_[r] = mu, phi, sigma
-        for i, (rows_a, rows_b) in enumerate(sides):
-            for r in rows_a + rows_b:
-                self.last_s_[r] = np.fmax(self.last_s_[r], b.time_s[i])
-        count_matches(b, self.entities_)
-        return Predictions(p, np.zeros(n))
-
-    def _inflate_idle(self, sides: list[tuple[list[int], list[int]]], time_s: np.ndarray) -> None:
-        first_time: dict[int, float] = {}
-        for i, (rows_a, rows_b) in enumerate(sides):
-            for r in rows_a + rows_b:
-                first_time[r] = min(first_time.get(r, math.inf), float(time_s[i]))
-        for r, t in first_time.items():
-            last = float(self.last_s_[r])
-            if math.isnan(last) or t <= last:
-                continue
-            periods = (t - last) / self.period_s
-            phi2 = float(self.phi_[r]) ** 2 + periods * float(self.sigma_[r]) ** 2
-            self.phi_[r] = min(math.sqrt(phi2), self._phi0)
+        p = np.empty(len(b))
+        run = _k.learn_period_compiled if self.compiled else _k.learn_period
+        run(b.first, b.first_size, b.second, b.second_size, b.score, b.time_s, self.mu_,
+            self.phi_, self.sigma_, self.last_s_, self.entities_.counts, self._mark, self._prm,
+            p)  # fmt: skip
+        return Predictions(p, np.zeros(len(b)))
 
     # -- persistence --------------------------------------------------------------
     def get_params(self) -> dict[str, Any]:
@@ -303,6 +212,7 @@ class Glicko2(Model):
             "tau": self.tau,
             "period_s": self.period_s,
             "tolerance": self.tolerance,
+            "compiled": self.compiled,
         }
 
     def _state_arrays(self) -> dict[str, np.ndarray]:

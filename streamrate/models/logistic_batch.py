@@ -40,10 +40,11 @@ try:  # installed alongside scipy/scikit-learn almost everywhere; optional here
 except ImportError:  # pragma: no cover
     threadpool_limits = None
 
-from streamrate.encode import EntityTable, FeatureHasher
+from streamrate.batch import add_numbers, scaled_items
+from streamrate.encode import EntityTable, FeatureHasher, RunningScale
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
-from streamrate.models.base import Model, Prediction, Predictions
+from streamrate.models.base import Model, ModelState, Prediction, Predictions, numbers_read_raw
 
 
 def fit_logistic(
@@ -86,6 +87,9 @@ class LogisticBatch(Model):
     """Logistic regression on entity, context and entity-feature columns, refit in batch."""
 
     kind: ClassVar[str] = "logistic_batch"
+    # Version 2 added the running statistics of numeric fields (scale_numbers);
+    # a version 1 state still loads, with numbers read raw as it was trained.
+    state_version: ClassVar[int] = 2
 
     def __init__(
         self,
@@ -94,6 +98,7 @@ class LogisticBatch(Model):
         context_width: int = 64,
         feature_width: int = 16,
         max_iter: int = 500,
+        scale_numbers: bool = True,
     ) -> None:
         if refit_every < 1 or max_iter < 1:
             raise ConfigError("logistic_batch: refit_every and max_iter must be at least 1")
@@ -106,6 +111,11 @@ class LogisticBatch(Model):
         self.context_width = int(context_width)
         self.feature_width = int(feature_width)
         self.max_iter = int(max_iter)
+        self.scale_numbers = bool(scale_numbers)
+        # Numbers enter the design as running standard scores (see RunningScale);
+        # a row keeps the scores of the moment it was recorded.
+        self.context_scale_ = RunningScale()
+        self.feature_scale_ = RunningScale()
         self._context = FeatureHasher(self.context_width)
         self._features = FeatureHasher(self.feature_width)
         self._entity_col0 = 1 + self.context_width + self.feature_width
@@ -118,21 +128,32 @@ class LogisticBatch(Model):
         self._y: list[float] = []
 
     # -- design rows ---------------------------------------------------------------
-    def _row(self, m: Matchup, rows1: Sequence[int], rows2: Sequence[int]) -> tuple[list, list]:
-        """Sparse design row (columns, values); entity rows of -1 are left out."""
+    def _row(
+        self, m: Matchup, rows1: Sequence[int], rows2: Sequence[int], learn: bool = False
+    ) -> tuple[list, list]:
+        """Sparse design row (columns, values); entity rows of -1 are left out.
+        ``learn``: the row is recorded, its numbers join the running statistics."""
         cols: list[int] = [0]
         vals: list[float] = [1.0]
-        idx, val = self._context.encode(m.context)
-        cols.extend((idx + 1).tolist())
-        vals.extend(val.tolist())
+        ctx = self.context_scale_ if self.scale_numbers else None
+        hit = self._context.encoded_items(tuple(m.context.items()))
+        for slot, v in scaled_items(hit, ctx):
+            cols.append(slot + 1)
+            vals.append(v)
         f0 = 1 + self.context_width
+        feat = self.feature_scale_ if self.scale_numbers else None
+        hits = []
         for side, sign in ((m.first, 1.0), (m.second, -1.0)):
             for e in side:
                 fm = m.features.get(e)
                 if fm:
-                    idx, val = self._features.encode(fm)
-                    cols.extend((idx + f0).tolist())
-                    vals.extend((sign * val).tolist())
+                    hits.append(self._features.encoded_items(tuple(fm.items())))
+                    for slot, v in scaled_items(hits[-1], feat):
+                        cols.append(slot + f0)
+                        vals.append(sign * v)
+        if learn:  # scored first, then added (see streamrate.batch.add_numbers)
+            add_numbers((hit,), ctx)
+            add_numbers(hits, feat)
         for rows, sign in ((rows1, 1.0), (rows2, -1.0)):
             for r in rows:
                 if r >= 0:
@@ -180,7 +201,8 @@ class LogisticBatch(Model):
         return Prediction(self._p(*self._row(matchup, rows1, rows2)))
 
     def learn(self, event: MatchEvent) -> Prediction:
-        return self.learn_batch([event])[0]
+        p = self.learn_batch([event])
+        return Prediction(float(p.p_win[0]), float(p.p_draw[0]))
 
     def learn_batch(self, events: Sequence[MatchEvent]) -> Predictions:
         """Predict all from the current fit, record all, refit if a refit falls due."""
@@ -189,7 +211,7 @@ class LogisticBatch(Model):
         for i, ev in enumerate(events):
             rows1 = self.entities_.rows(ev.first)
             rows2 = self.entities_.rows(ev.second)
-            cols, vals = self._row(ev, rows1, rows2)
+            cols, vals = self._row(ev, rows1, rows2, learn=True)
             p[i] = self._p(cols, vals)
             self._cols.extend(cols)
             self._vals.extend(vals)
@@ -208,7 +230,12 @@ class LogisticBatch(Model):
             "context_width": self.context_width,
             "feature_width": self.feature_width,
             "max_iter": self.max_iter,
+            "scale_numbers": self.scale_numbers,
         }
+
+    @classmethod
+    def upgrade_state(cls, state: ModelState) -> ModelState:
+        return numbers_read_raw(cls, state)
 
     def _state_arrays(self) -> dict[str, np.ndarray]:
         arrays = self.entities_.to_arrays()
@@ -218,6 +245,8 @@ class LogisticBatch(Model):
         arrays["target"] = np.asarray(self._y, dtype=np.float64)
         arrays["coef"] = self.coef_.copy()
         arrays["fits"] = np.array([self.fits_], dtype=np.int64)
+        arrays.update(self.context_scale_.to_arrays("context_scale"))
+        arrays.update(self.feature_scale_.to_arrays("feature_scale"))
         return arrays
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
@@ -239,6 +268,9 @@ class LogisticBatch(Model):
         )
         if not ok:
             raise StateError("logistic_batch: saved design arrays are inconsistent")
+        if "context_scale_names" in arrays or self.scale_numbers:
+            self.context_scale_ = RunningScale.from_arrays(arrays, "context_scale")
+            self.feature_scale_ = RunningScale.from_arrays(arrays, "feature_scale")
         self.entities_ = table
         self._indptr = indptr.tolist()
         self._cols = cols.tolist()

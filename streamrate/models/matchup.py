@@ -52,10 +52,18 @@ from typing import Any, ClassVar
 import numpy as np
 
 from streamrate.batch import EncodedBatch, count_matches, encode_events
-from streamrate.encode import EntityTable, FeatureHasher
+from streamrate.encode import EntityTable, FeatureHasher, RunningScale
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
-from streamrate.models.base import Model, Prediction, Predictions
+from streamrate.models.base import (
+    GROW_ROWS,
+    Model,
+    ModelState,
+    Prediction,
+    Predictions,
+    numbers_read_raw,
+    with_room,
+)
 
 CONTEXT_MODES = ("none", "stacked", "gated")
 PRIOR_MAPS = ("identity", "tanh")
@@ -109,7 +117,10 @@ class MatchupModel(Model):
     ``feature_width`` hashed entity-feature slots (0: off), ``feature_slots``
     features kept per entity, ``prior_map`` "identity"/"tanh"; ``forget_per_day``
     decay rate of idle entities' own offsets; ``seed``; ``backend``
-    "auto"/"numba"/"numpy".
+    "auto"/"numba"/"numpy"; ``scale_numbers`` numbers of the context and of the
+    features enter as standard scores from a running mean and deviation per
+    field (:class:`~streamrate.encode.RunningScale`, kept in the state), so that
+    their units do not matter.
 
     Defaults were picked on synthetic worlds (tests and bench): with 60 entities
     and 3000-4000 matches, blade-chest d=8..16 reaches prequential log loss near
@@ -118,6 +129,9 @@ class MatchupModel(Model):
     """
 
     kind: ClassVar[str] = "matchup"
+    # Version 2 added the running statistics of numeric fields (scale_numbers);
+    # a version 1 state still loads, with numbers read raw as it was trained.
+    state_version: ClassVar[int] = 2
     form: ClassVar[int] = 0  # 0: inner, 1: distance
 
     def __init__(
@@ -141,6 +155,7 @@ class MatchupModel(Model):
         forget_per_day: float = 0.0,
         seed: int = 0,
         backend: str = "auto",
+        scale_numbers: bool = True,
     ) -> None:
         if dims < 0 or (dims == 0 and not strength):
             raise ConfigError("dims must be >= 0, and dims == 0 needs strength=True")
@@ -169,6 +184,7 @@ class MatchupModel(Model):
         self.feature_width, self.feature_slots = int(feature_width), int(feature_slots)
         self.prior_map, self.forget_per_day = prior_map, float(forget_per_day)
         self.seed, self.backend = int(seed), backend
+        self.scale_numbers = bool(scale_numbers)
         self.has_draws = self.draws  # type: ignore[misc]
         self._k = _kernels(backend)
         self._ctx = FeatureHasher(context_width) if context_width else None
@@ -199,7 +215,12 @@ class MatchupModel(Model):
             "forget_per_day": self.forget_per_day,
             "seed": self.seed,
             "backend": self.backend,
+            "scale_numbers": self.scale_numbers,
         }
+
+    @classmethod
+    def upgrade_state(cls, state: ModelState) -> ModelState:
+        return numbers_read_raw(cls, state)
 
     @property
     def width(self) -> int:
@@ -238,6 +259,7 @@ class MatchupModel(Model):
     # -- state ----------------------------------------------------------------------
     def _fresh_state(self) -> None:
         D, d, C = self.width, self.dims, self.context_width
+        self._rows_ready = 0  # rows of the entity arrays initialised so far
         self.own_ = np.zeros((0, D), dtype=np.float32)
         self.acc_ = np.zeros((0, D), dtype=np.float32)
         self.last_s_ = np.zeros(0, dtype=np.float64)
@@ -253,37 +275,54 @@ class MatchupModel(Model):
         self.AH_ = np.full(self.H_.shape, self.accum_init)
         self.asc_ = np.full(2, self.accum_init)
         self.clock_s_ = math.nan
+        self.context_scale_ = RunningScale()
+        self.feature_scale_ = RunningScale()
 
     def _grow(self, need: int) -> None:
-        cap = self.own_.shape[0]
-        if need <= cap:
+        """Make rows ``0..need`` usable.
+
+        Rows are initialised (random start, AdaGrad sums) in steps of at most
+        :data:`GROW_ROWS`, so memory is taken in chunks as entities arrive. The
+        arrays themselves are reserved ahead by :func:`with_room`, whose spare
+        rows are pages the OS has not handed out yet: a larger reserve copies
+        only the rows in use, and the peak stays near twice the arrays in use
+        instead of the three copies of growing by concatenation.
+        """
+        ready = self._rows_ready
+        if need <= ready:
             return
-        new = max(need, 2 * cap, 16)
-        so, D = int(self.strength), self.width
-        own = np.zeros((new - cap, D), dtype=np.float32)
-        step = 1 << 16  # in chunks, so the float64 temporaries stay small
-        for lo in range(cap, new, step) if self.dims else ():
-            hi = min(lo + step, new)
-            block = hashed_uniform(self.seed, lo, hi, 2 * self.dims)
-            own[lo - cap : hi - cap, so:] = self.init_scale * block
-        self.own_ = np.concatenate([self.own_, own])
-        self.acc_ = np.concatenate(
-            [self.acc_, np.full((new - cap, D), self.accum_init, dtype=np.float32)]
-        )
+        hi = max(need, min(2 * ready, ready + GROW_ROWS), 16)
+        so = int(self.strength)
+        self.own_ = with_room(self.own_, ready, hi)
+        self.acc_ = with_room(self.acc_, ready, hi)
+        self.acc_[ready:hi] = self.accum_init
+        for lo in range(ready, hi, GROW_ROWS) if self.dims else ():
+            top = min(lo + GROW_ROWS, hi)  # float64 temporaries of one step at most
+            block = hashed_uniform(self.seed, lo, top, 2 * self.dims)
+            self.own_[lo:top, so:] = self.init_scale * block
         if self.forget_per_day > 0:
-            self.last_s_ = np.concatenate([self.last_s_, np.full(new - cap, np.nan)])
+            self.last_s_ = with_room(self.last_s_, ready, hi)
+            self.last_s_[ready:hi] = np.nan
         if self.feature_width:
-            self.feat_idx_ = np.concatenate(
-                [self.feat_idx_, np.full((new - cap, self.feature_slots), -1, dtype=np.int32)]
-            )
-            self.feat_val_ = np.concatenate(
-                [self.feat_val_, np.zeros((new - cap, self.feature_slots), dtype=np.float32)]
-            )
+            self.feat_idx_ = with_room(self.feat_idx_, ready, hi)
+            self.feat_idx_[ready:hi] = -1
+            self.feat_val_ = with_room(self.feat_val_, ready, hi)
+        self._rows_ready = hi
 
     # -- encoded API ------------------------------------------------------------------
     def encode(self, events: Sequence[Matchup], add: bool = True) -> EncodedBatch:
         """Events as arrays for :meth:`learn_encoded` / :meth:`predict_encoded`."""
-        return encode_events(events, self.entities_, self._ctx, self._feat, add=add)
+        if not self.scale_numbers:
+            return encode_events(events, self.entities_, self._ctx, self._feat, add=add)
+        return encode_events(
+            events,
+            self.entities_,
+            self._ctx,
+            self._feat,
+            add=add,
+            context_scale=self.context_scale_,
+            feature_scale=self.feature_scale_,
+        )
 
     def _args(self, b: EncodedBatch) -> tuple[np.ndarray, ...]:
         c = np.ascontiguousarray
@@ -422,6 +461,8 @@ class MatchupModel(Model):
             "asc": self.asc_,
             "clock_s": np.array([self.clock_s_]),
             **self.entities_.to_arrays(),
+            **self.context_scale_.to_arrays("context_scale"),
+            **self.feature_scale_.to_arrays("feature_scale"),
         }
         if self.forget_per_day > 0:
             arrays["last_s"] = self.last_s_[:n].copy()
@@ -460,7 +501,11 @@ class MatchupModel(Model):
                     f"expected {np.dtype(dtype)}{list(shape)}"
                 )
             got[name] = np.array(arr, dtype=dtype)
+        if "context_scale_names" in arrays or self.scale_numbers:
+            self.context_scale_ = RunningScale.from_arrays(arrays, "context_scale")
+            self.feature_scale_ = RunningScale.from_arrays(arrays, "feature_scale")
         self.entities_ = table
+        self._rows_ready = n
         self.own_, self.acc_ = got["own"], got["acc"]
         self.W_, self.AW_, self.G_, self.AG_ = got["W"], got["AW"], got["G"], got["AG"]
         self.H_, self.AH_, self.sc_, self.asc_ = got["H"], got["AH"], got["sc"], got["asc"]

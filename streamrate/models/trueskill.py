@@ -32,6 +32,10 @@ beliefs; the updates are combined by adding their changes in precision and
 precision-times-mean (multiplying the messages, as in message passing), so a
 batch of one is exactly ``learn``.
 
+The arithmetic lives in :mod:`._kernels_trueskill`, loops over encoded batches
+compiled with numba; ``compiled=False`` runs the same loops uncompiled (same
+numbers, far slower).
+
 >>> round(v_win(0.0, 0.0), 6), round(w_win(0.0, 0.0), 6)
 (0.797885, 0.63662)
 """
@@ -43,12 +47,14 @@ from collections.abc import Sequence
 from typing import Any, ClassVar
 
 import numpy as np
-from scipy.special import log_ndtr, ndtr, ndtri
+from scipy.special import ndtri
 
-from streamrate.batch import count_matches, encode_events
+from streamrate.batch import EncodedBatch, encode_events, has_unknown
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError
 from streamrate.events import MatchEvent, Matchup
+from streamrate.models import _kernels_trueskill as _k
+from streamrate.models._kernels_trueskill import draw_terms, v_win, w_win
 from streamrate.models.base import (
     Model,
     Prediction,
@@ -57,54 +63,18 @@ from streamrate.models.base import (
     load_entity_arrays,
 )
 
-_LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
-
-
-def _log_pdf(x: float) -> float:
-    return -0.5 * x * x - _LOG_SQRT_2PI
-
-
-def v_win(t: float, eps: float) -> float:
-    """Mean of X ~ N(0,1) given X > eps - t, i.e. N(t-eps) / Phi(t-eps) (a win)."""
-    x = t - eps
-    # In log space: Phi(x) underflows long before the ratio does.
-    return math.exp(_log_pdf(x) - float(log_ndtr(x)))
-
-
-def w_win(t: float, eps: float) -> float:
-    """Variance shrinkage for a win: v * (v + t - eps), kept within [0, 1]."""
-    x = t - eps
-    v = v_win(t, eps)
-    return min(max(v * (v + x), 0.0), 1.0)
-
-
-def _draw_terms(t: float, eps: float) -> tuple[float, float]:
-    """(v, w) for a draw at t >= 0: X ~ N(0,1) truncated to [-eps - t, eps - t]."""
-    a, b = -eps - t, eps - t
-    width = b - a
-    if width < 1e-6:
-        # A band this narrow pins the variable to its middle; the exact moments
-        # differ by O(width**2) while the general formula below would cancel badly.
-        return 0.5 * (a + b), 1.0 - width * width / 12.0
-    log_b, log_a = float(log_ndtr(b)), float(log_ndtr(a))
-    # log(Phi(b) - Phi(a)) without cancellation or underflow (a <= b <= eps).
-    log_z = log_b + math.log(-math.expm1(log_a - log_b))
-    pa = math.exp(_log_pdf(a) - log_z)
-    pb = math.exp(_log_pdf(b) - log_z)
-    v = pa - pb
-    w = v * v + b * pb - a * pa
-    return v, min(max(w, 0.0), 1.0)
+__all__ = ["TrueSkill", "draw_margin", "v_draw", "v_win", "w_draw", "w_win"]
 
 
 def v_draw(t: float, eps: float) -> float:
     """Mean shift for a draw: (N(-eps-t) - N(eps-t)) / (Phi(eps-t) - Phi(-eps-t))."""
-    v, _ = _draw_terms(abs(t), eps)
+    v, _ = draw_terms(abs(t), eps)
     return v if t >= 0 else -v
 
 
 def w_draw(t: float, eps: float) -> float:
     """Variance shrinkage for a draw (even in t)."""
-    return _draw_terms(abs(t), eps)[1]
+    return draw_terms(abs(t), eps)[1]
 
 
 def draw_margin(draw_probability: float, n_players: int, beta: float) -> float:
@@ -125,6 +95,7 @@ class TrueSkill(Model):
         beta: float = 25.0 / 6.0,
         tau: float = 25.0 / 300.0,
         draw_probability: float = 0.1,
+        compiled: bool = True,
     ) -> None:
         if not (sigma > 0 and beta > 0 and tau >= 0 and math.isfinite(mu)):
             raise ConfigError("trueskill: sigma, beta must be > 0, tau >= 0, mu finite")
@@ -135,12 +106,16 @@ class TrueSkill(Model):
         self.beta = float(beta)
         self.tau = float(tau)
         self.draw_probability = float(draw_probability)
+        self.compiled = bool(compiled)
+        self._prm = np.array([self.mu, self.sigma * self.sigma, self.beta, self.tau])
+        self._eps_n = np.zeros(1)
         self.entities_ = EntityTable()
         self._alloc(16)
 
     def _alloc(self, n: int) -> None:
         self.mu_ = np.full(n, self.mu)
         self.var_ = np.full(n, self.sigma * self.sigma)
+        self._mark = np.full(n, -1, dtype=np.int64)  # scratch of the loops, not state
 
     def _fit_capacity(self) -> None:
         n, cap = len(self.entities_), len(self.mu_)
@@ -149,6 +124,15 @@ class TrueSkill(Model):
             self._alloc(max(n, 2 * cap))
             self.mu_[:cap], self.var_[:cap] = mu, var
 
+    def _margins(self, b: EncodedBatch) -> np.ndarray:
+        """Draw margins by number of players, long enough for every match of ``b``."""
+        most = b.first.shape[1] + b.second.shape[1]
+        if most >= len(self._eps_n):
+            self._eps_n = np.array(
+                [draw_margin(self.draw_probability, n, self.beta) for n in range(most + 1)]
+            )
+        return self._eps_n
+
     def belief(self, entity_id: str) -> tuple[float, float]:
         """(mu, sigma) of an entity; the prior if never seen."""
         r = self.entities_.get(entity_id)
@@ -156,108 +140,48 @@ class TrueSkill(Model):
             return self.mu, self.sigma
         return float(self.mu_[r]), math.sqrt(float(self.var_[r]))
 
-    def _side(self, rows: Sequence[int], extra_var: float) -> tuple[float, float]:
-        mu = 0.0
-        var = 0.0
-        for r in rows:
-            if r < 0:
-                mu += self.mu
-                var += self.sigma * self.sigma + extra_var
-            else:
-                mu += float(self.mu_[r])
-                var += float(self.var_[r]) + extra_var
-        return mu, var
-
-    def _predict_rows(self, rows_a: Sequence[int], rows_b: Sequence[int]) -> Prediction:
-        n = len(rows_a) + len(rows_b)
-        mu_a, var_a = self._side(rows_a, 0.0)
-        mu_b, var_b = self._side(rows_b, 0.0)
-        c = math.sqrt(n * self.beta * self.beta + var_a + var_b)
-        eps = draw_margin(self.draw_probability, n, self.beta)
-        d = mu_a - mu_b
-        p_win = float(ndtr((d - eps) / c))
-        p_loss = float(ndtr((-d - eps) / c))
-        return Prediction(p_win, max(0.0, 1.0 - p_win - p_loss))
-
     # -- the online API -----------------------------------------------------------
     def predict(self, matchup: Matchup) -> Prediction:
-        get = self.entities_.get
-        return self._predict_rows([get(e) for e in matchup.first], [get(e) for e in matchup.second])
+        b = encode_events([matchup], self.entities_, add=False)
+        p = np.empty((1, 2))
+        run = _k.predict_compiled if self.compiled else _k.predict
+        run(b.first, b.first_size, b.second, b.second_size, self.mu_, self.var_, self._prm,
+            self._margins(b), p)  # fmt: skip
+        return Prediction(float(p[0, 0]), float(p[0, 1]))
 
     def learn(self, event: MatchEvent) -> Prediction:
-        return self.learn_batch([event])[0]
+        p = self.learn_many([event])
+        return Prediction(float(p.p_win[0]), float(p.p_draw[0]))
 
-    def _event_update(
-        self, rows_a: list[int], rows_b: list[int], score: float
-    ) -> list[tuple[int, float, float]]:
-        """(row, new mu, new variance) for every player of one match, from the current state."""
-        tau2 = self.tau * self.tau
-        n = len(rows_a) + len(rows_b)
-        mu_a, var_a = self._side(rows_a, tau2)
-        mu_b, var_b = self._side(rows_b, tau2)
-        c2 = n * self.beta * self.beta + var_a + var_b
-        c = math.sqrt(c2)
-        eps = draw_margin(self.draw_probability, n, self.beta) / c
-        if score == 0.5:
-            t = (mu_a - mu_b) / c
-            v, w = v_draw(t, eps), w_draw(t, eps)
-        else:
-            sign = 1.0 if score == 1.0 else -1.0
-            t = sign * (mu_a - mu_b) / c
-            v, w = v_win(t, eps), w_win(t, eps)
-            if sign < 0:
-                v = -v
-        out = []
-        for rows, direction in ((rows_a, 1.0), (rows_b, -1.0)):
-            for r in rows:
-                var = float(self.var_[r]) + tau2
-                out.append(
-                    (
-                        r,
-                        float(self.mu_[r]) + direction * var / c * v,
-                        var * (1.0 - var / c2 * w),
-                    )
-                )
-        return out
+    def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
+        """Predict, then update, one match after another (``learn`` in a loop)."""
+        if not events:
+            return Predictions(np.zeros(0), np.zeros(0))
+        return self.learn_encoded(encode_events(events, self.entities_))
+
+    def learn_encoded(self, b: EncodedBatch) -> Predictions:
+        """Sequential learning over an encoded batch (``add=True`` encoding)."""
+        if has_unknown(b):
+            raise ValueError("learn_encoded: batch holds entities unknown to this model")
+        self._fit_capacity()
+        p = np.empty((len(b), 2))
+        run = _k.learn_seq_compiled if self.compiled else _k.learn_seq
+        run(b.first, b.first_size, b.second, b.second_size, b.score, self.mu_, self.var_,
+            self.entities_.counts, self._prm, self._margins(b), p)  # fmt: skip
+        return Predictions(p[:, 0].copy(), p[:, 1].copy())
 
     def learn_batch(self, events: Sequence[MatchEvent]) -> Predictions:
         """Predict all from the batch-start beliefs, then combine all updates at once."""
-        if not events:
-            return Predictions(np.zeros(0), np.zeros(0))
+        if len(events) <= 1:
+            # A single match: take the update as computed (no round trip through precisions).
+            return self.learn_many(events)
         b = encode_events(events, self.entities_)
         self._fit_capacity()
-        n = len(b)
-        p_win, p_draw = np.empty(n), np.empty(n)
-        tau2 = self.tau * self.tau
-        # Changes in natural parameters (precision, precision * mean) per entity.
-        d_prec: dict[int, float] = {}
-        d_pm: dict[int, float] = {}
-        updates = []
-        for i in range(n):
-            rows_a = b.first[i, : b.first_size[i]].tolist()
-            rows_b = b.second[i, : b.second_size[i]].tolist()
-            p_win[i], p_draw[i] = self._predict_rows(rows_a, rows_b)
-            updates.extend(self._event_update(rows_a, rows_b, float(b.score[i])))
-        if n == 1:
-            # A single match: take the update as computed (no round trip through precisions).
-            for r, mu_new, var_new in updates:
-                self.mu_[r], self.var_[r] = mu_new, var_new
-        else:
-            # Changes in natural parameters (precision, precision * mean) per entity.
-            d_prec: dict[int, float] = {}
-            d_pm: dict[int, float] = {}
-            for r, mu_new, var_new in updates:
-                prior_var = float(self.var_[r]) + tau2
-                prior_mu = float(self.mu_[r])
-                d_prec[r] = d_prec.get(r, 0.0) + 1.0 / var_new - 1.0 / prior_var
-                d_pm[r] = d_pm.get(r, 0.0) + mu_new / var_new - prior_mu / prior_var
-            for r, dp in d_prec.items():
-                prior_var = float(self.var_[r]) + tau2
-                prec = 1.0 / prior_var + dp
-                self.mu_[r] = (float(self.mu_[r]) / prior_var + d_pm[r]) / prec
-                self.var_[r] = 1.0 / prec
-        count_matches(b, self.entities_)
-        return Predictions(p_win, p_draw)
+        p = np.empty((len(b), 2))
+        run = _k.learn_combined_compiled if self.compiled else _k.learn_combined
+        run(b.first, b.first_size, b.second, b.second_size, b.score, self.mu_, self.var_,
+            self.entities_.counts, self._mark, self._prm, self._margins(b), p)  # fmt: skip
+        return Predictions(p[:, 0].copy(), p[:, 1].copy())
 
     # -- persistence --------------------------------------------------------------
     def get_params(self) -> dict[str, Any]:
@@ -267,6 +191,7 @@ class TrueSkill(Model):
             "beta": self.beta,
             "tau": self.tau,
             "draw_probability": self.draw_probability,
+            "compiled": self.compiled,
         }
 
     def _state_arrays(self) -> dict[str, np.ndarray]:
