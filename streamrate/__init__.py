@@ -24,6 +24,7 @@ __version__ = "0.1.0"
 __all__ = [
     "ConfigError",
     "EventError",
+    "LocalReader",
     "MatchEvent",
     "Matchup",
     "Settings",
@@ -38,6 +39,7 @@ if TYPE_CHECKING:
     from streamrate.errors import ConfigError, EventError, StreamrateError
     from streamrate.events import MatchEvent, Matchup
     from streamrate.models.registry import build_model
+    from streamrate.replica import LocalReader
 
 # name -> module; imported on first use so that `import streamrate` stays light.
 _LAZY = {
@@ -49,6 +51,7 @@ _LAZY = {
     "Settings": "streamrate.config",
     "load_settings": "streamrate.config",
     "build_model": "streamrate.models.registry",
+    "LocalReader": "streamrate.replica",
 }
 
 

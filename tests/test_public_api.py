@@ -20,6 +20,7 @@ PUBLIC = {
     "StreamrateError",
     "ConfigError",
     "EventError",
+    "LocalReader",  # the in-process reader for matchmakers
 }
 
 
