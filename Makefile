@@ -15,6 +15,7 @@ demo: install
 # The whole test suite (integration tests start their own redis-server).
 test: install-test
 	$(PYTHON) -m ruff check streamrate tests bench
+	$(PYTHON) -m mypy streamrate
 	$(PYTHON) -m pytest
 
 lint:

@@ -417,11 +417,6 @@ def _pairing_problem(first: list[str], second: list[str], ctx: dict[str, Any]) -
     return None
 
 
-def _fail(message: str) -> typer.Exit:
-    typer.echo(f"error: {message}", err=True)
-    return typer.Exit(2)
-
-
 @app.command()
 def ask(
     first: Annotated[str | None, typer.Argument(help="First side: ids joined by commas.")] = None,

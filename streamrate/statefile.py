@@ -58,7 +58,8 @@ def state_to_bytes(state: ModelState, extra: dict[str, Any] | None = None) -> by
         raise StateError(f"state metadata must hold finite numbers only: {exc}") from exc
     buf = io.BytesIO()
     meta_bytes = np.frombuffer(meta_text.encode("utf-8"), dtype=np.uint8)
-    np.savez(buf, **{_META: meta_bytes}, **state.arrays)
+    members: dict[str, Any] = {_META: meta_bytes, **state.arrays}
+    np.savez(buf, **members)
     return buf.getvalue()
 
 

@@ -22,13 +22,14 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
+
+from streamrate.models._jit import kernel, leaf
 
 THETA_CLIP = 30.0
 """Logits are clipped to +-30 so that probabilities stay strictly inside (0, 1)."""
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _gather(
     e, rows, n, off, feat_idx, feat_val, own, last_t, fs_idx, fs_val, W, ctx_idx, ctx_val,
     cfg, hyp, now, od, base, q, cols, vals, ncols, V,
@@ -93,7 +94,7 @@ def _gather(
             V[t] += base[m, t] * inv
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _event(
     e, first, second, n1, n2, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
     own, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp,
@@ -157,7 +158,7 @@ def _event(
         out[0], out[1], out[2] = pw, 0.0, 1.0 - pw
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _grads(
     e, first, second, n1, n2, ctx_idx, ctx_val, score, cfg, hyp,
     od, base, q, cols, vals, ncols, VA, VB, EA, EB, gate, out,
@@ -256,7 +257,7 @@ def _grads(
     return nW, nC
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _apply_cols(P, A, g, lst, n, lr, l2):
     """AdaGrad step on the touched columns of a shared matrix; clears their gradients."""
     for k in range(n):
@@ -268,7 +269,7 @@ def _apply_cols(P, A, g, lst, n, lr, l2):
             g[t, col] = 0.0
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _apply_shared(W, AW, G, AG, H, AH, sc, asc, gW, gG, gH, gsc, markW, listW, nW,
                   markC, listC, nC, cfg, hyp):  # fmt: skip
     lr_s, l2_s = hyp[1], hyp[3]
@@ -289,7 +290,7 @@ def _apply_shared(W, AW, G, AG, H, AH, sc, asc, gW, gG, gH, gsc, markW, listW, n
             gsc[i] = 0.0
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _store_member(r, now, od, g, own, acc, last_t, lr, lr_s, so):
     """AdaGrad step of one entity's own offsets from ``od`` (decayed) by gradient ``g``.
 
@@ -304,7 +305,7 @@ def _store_member(r, now, od, g, own, acc, last_t, lr, lr_s, so):
         last_t[r] = now
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _store_features(r, e, m, fs_idx, fs_val, feat_idx, feat_val):
     """Keep the features given for member slot ``m`` of event ``e`` as entity ``r``'s."""
     if fs_idx.shape[0] == 0 or feat_idx.shape[0] == 0 or feat_idx.shape[2] == 0:
@@ -325,7 +326,7 @@ def _store_features(r, e, m, fs_idx, fs_val, feat_idx, feat_val):
 # atomic reference counting on ~30 arrays, which costs more than the arithmetic.
 
 
-@njit(cache=True)
+@kernel
 def _scratch(first, second, ctx_idx, feat_idx, fs_idx, W, G, H, cfg):
     d, so = cfg[0], cfg[1]
     D = so + 2 * d
@@ -356,7 +357,7 @@ def _scratch(first, second, ctx_idx, feat_idx, fs_idx, W, G, H, cfg):
     )
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _learn_seq_loop(
     first, second, n1, n2, score, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
     own, acc, last_t, fs_idx, fs_val, W, AW, G, AG, H, AH, sc, asc, cfg, hyp, p_out,
@@ -396,7 +397,7 @@ def _learn_seq_loop(
             hyp[5] = now
 
 
-@njit(cache=True)
+@kernel
 def learn_seq(
     first, second, n1, n2, score, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
     own, acc, last_t, fs_idx, fs_val, W, AW, G, AG, H, AH, sc, asc, cfg, hyp, p_out,
@@ -411,7 +412,7 @@ def learn_seq(
     )  # fmt: skip
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _predict_loop(
     first, second, n1, n2, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
     own, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp, p_out,
@@ -427,7 +428,7 @@ def _predict_loop(
         p_out[e, 1] = out[1]
 
 
-@njit(cache=True)
+@kernel
 def predict_seq(
     first, second, n1, n2, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
     own, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp, p_out,
@@ -441,7 +442,7 @@ def predict_seq(
     )  # fmt: skip
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _minibatch_loop(
     first, second, n1, n2, score, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
     own, acc, last_t, fs_idx, fs_val, W, AW, G, AG, H, AH, sc, asc, cfg, hyp, p_out,
@@ -505,7 +506,7 @@ def _minibatch_loop(
             hyp[5] = now
 
 
-@njit(cache=True)
+@kernel
 def learn_minibatch(
     first, second, n1, n2, score, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
     own, acc, last_t, fs_idx, fs_val, W, AW, G, AG, H, AH, sc, asc, cfg, hyp, p_out,

@@ -10,12 +10,12 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
 
+from streamrate.models._jit import kernel, leaf
 from streamrate.models._kernels import THETA_CLIP, _apply_cols
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _solo_loop(
     first, second, score, ctx_idx, ctx_val, time_s, own, acc, last_t, H, AH, sc, asc,
     cfg, hyp, p_out, od, g, gH, gsc, markC, listC,
@@ -134,7 +134,7 @@ def _solo_loop(
             hyp[5] = now
 
 
-@njit(cache=True)
+@kernel
 def learn_solo(
     first, second, score, ctx_idx, ctx_val, time_s, own, acc, last_t, H, AH, sc, asc,
     cfg, hyp, p_out,

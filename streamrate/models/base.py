@@ -60,6 +60,10 @@ class Predictions(NamedTuple):
             return Prediction(float(self.p_win[i]), float(self.p_draw[i]))
         return tuple.__getitem__(self, i)
 
+    def one(self, i: int) -> Prediction:
+        """The ``i``-th prediction (typed; ``preds[i]`` gives the same)."""
+        return Prediction(float(self.p_win[i]), float(self.p_draw[i]))
+
     @classmethod
     def from_list(cls, preds: Sequence[Prediction]) -> Predictions:
         arr = np.array(preds, dtype=np.float64).reshape(-1, 2)

@@ -216,7 +216,7 @@ class BayesStrength(Model):
         return Prediction(1.0 / (1.0 + math.exp(-m / math.sqrt(1.0 + PROBIT * big_v))))
 
     def learn(self, event: MatchEvent) -> Prediction:
-        return self.learn_many([event])[0]  # type: ignore[no-any-return]
+        return self.learn_many([event]).one(0)
 
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
         out = np.empty(len(events))

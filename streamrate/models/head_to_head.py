@@ -68,7 +68,7 @@ class HeadToHead(Model):
         return Prediction(self._p(*self._key(first, second)))
 
     def learn(self, event: MatchEvent) -> Prediction:
-        return self.learn_batch([event])[0]
+        return self.learn_batch([event]).one(0)
 
     def learn_batch(self, events: Sequence[MatchEvent]) -> Predictions:
         """Predict all events from the tallies at the batch start, then add the results."""
@@ -81,13 +81,13 @@ class HeadToHead(Model):
             p[i] = self._p(key, forward)
             keys.append((key, forward, ev.score, first + second))
         for key, forward, score, rows in keys:
-            i = self.pairs_.get(key)
-            if i is None:
-                i = self.pairs_[key] = len(self.games_)
+            slot = self.pairs_.get(key)
+            if slot is None:
+                slot = self.pairs_[key] = len(self.games_)
                 self.wins_.append(0.0)
                 self.games_.append(0)
-            self.wins_[i] += score if forward else 1.0 - score
-            self.games_[i] += 1
+            self.wins_[slot] += score if forward else 1.0 - score
+            self.games_[slot] += 1
             self.entities_.counts[rows] += 1
         return Predictions(p, np.zeros_like(p))
 

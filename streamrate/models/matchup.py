@@ -376,7 +376,8 @@ class MatchupModel(Model):
             from streamrate.models._kernels_solo import learn_solo
 
             learn_solo(
-                a[0], a[1], *a[4:8], st[0], st[1], st[2], st[9], st[10], st[11], st[12],
+                a[0], a[1], a[4], a[5], a[6], a[7],
+                st[0], st[1], st[2], st[9], st[10], st[11], st[12],
                 self._cfg(), hyp, out,
             )  # fmt: skip
         else:
@@ -448,7 +449,7 @@ class MatchupModel(Model):
     def _state_arrays(self) -> dict[str, np.ndarray]:
         n = len(self.entities_)
         self._grow(n)
-        arrays = {
+        arrays: dict[str, np.ndarray] = {
             "own": self.own_[:n].copy(),
             "acc": self.acc_[:n].copy(),
             "W": self.W_,

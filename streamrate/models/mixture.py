@@ -149,7 +149,7 @@ class Mixture(Model):
         return Predictions(p_win, p_draw)
 
     def learn(self, event: MatchEvent) -> Prediction:
-        return self.learn_many([event])[0]  # type: ignore[no-any-return]
+        return self.learn_many([event]).one(0)
 
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
         if not events:
