@@ -38,6 +38,7 @@ from streamrate.calibration import (
     ECE_BINS,
     PROB_EPS,
     accuracy,
+    bin_index,
     brier,
     calibration_slope_intercept,
     expected_calibration_error,
@@ -68,6 +69,19 @@ class QualitySnapshot:
     ece: float
     slope: float
     intercept: float
+
+
+@dataclass(frozen=True)
+class BinnedWindow:
+    """A window's reliability diagram over every equal-width bin, empty ones included.
+
+    Bins are those of :func:`streamrate.calibration.bin_index`; an empty bin has
+    count 0 and NaN means.
+    """
+
+    forecast_mean: Array
+    outcome_mean: Array
+    count: npt.NDArray[np.int64]
 
 
 class RollingQuality:
@@ -115,6 +129,27 @@ class RollingQuality:
 
     def __len__(self) -> int:
         return self.size_
+
+    def binned(self) -> BinnedWindow:
+        """Mean forecast, mean outcome and event count of each of the ``n_bins`` bins now.
+
+        >>> rq = RollingQuality(window_n=3, n_bins=2)
+        >>> for p, y in [(0.2, 0.0), (0.3, 1.0), (0.9, 1.0)]:
+        ...     _ = rq.add(p, y)
+        >>> b = rq.binned()
+        >>> b.count.tolist(), b.forecast_mean.round(2).tolist(), b.outcome_mean.tolist()
+        ([2, 1], [0.25, 0.9], [0.5, 1.0])
+        """
+        p, y = self.values()
+        idx = bin_index(p, self.n_bins)
+        count = np.bincount(idx, minlength=self.n_bins).astype(np.int64)
+        full = count > 0
+
+        def means(weights: Array) -> Array:
+            sums = np.bincount(idx, weights=weights, minlength=self.n_bins)
+            return np.divide(sums, count, out=np.full(self.n_bins, math.nan), where=full)
+
+        return BinnedWindow(means(p), means(y), count)
 
     def snapshot(self, with_slope: bool = True) -> QualitySnapshot:
         """All statistics of the window now (NaN where undefined)."""

@@ -10,7 +10,11 @@ registry. Labels and their closed sets:
   ``reference_n`` events before those),
 * ``group`` -- ``all``, or one of the top-K values of the grouping context field,
   or ``other`` (see :class:`streamrate.quality.GroupLabels`),
-* ``feature`` -- ``p_win`` (the predicted expected score) or a configured context field.
+* ``feature`` -- ``p_win`` (the predicted expected score) or a configured context field,
+* ``bin`` -- ``"0"`` .. ``"9"``, the equal-width forecast bins of the reliability
+  diagram (bin ``i`` holds forecasts in ``(i/10, (i+1)/10]``, bin 0 also 0); only
+  the recent window is binned, and every bin of a window is set at each
+  publication, so the ten series appear together (an empty bin: 0 events, NaN means).
 
 A statistic that is undefined (empty window, degenerate fit) is exported as NaN,
 which Prometheus comparisons treat as false, so it never fires an alert.
@@ -41,7 +45,13 @@ from streamrate.checkpoint import PartState
 from streamrate.config import QualitySettings
 from streamrate.events import MatchEvent
 from streamrate.models.base import Prediction
-from streamrate.quality import CHANGE_DIRECTIONS, MonitorSettings, QualityMonitor, QualitySnapshot
+from streamrate.quality import (
+    CHANGE_DIRECTIONS,
+    BinnedWindow,
+    MonitorSettings,
+    QualityMonitor,
+    QualitySnapshot,
+)
 from streamrate.quality_state import monitor_from_state, monitor_state
 from streamrate.recalibrate import OnlineRecalibrator
 
@@ -91,6 +101,9 @@ _QUALITY_GAUGES: tuple[tuple[str, str, str], ...] = (
     ),
     ("n_events", "streamrate_quality_window_events", "Events currently held in the window."),
 )
+_BIN_LABELS = [*_QLABELS, "bin"]
+BINNED_WINDOWS = ("recent",)
+"""Windows whose reliability diagram is exported bin by bin."""
 
 
 class QualityMetrics:
@@ -102,6 +115,26 @@ class QualityMetrics:
             attr: Gauge(name, text, _QLABELS, registry=registry)
             for attr, name, text in _QUALITY_GAUGES
         }
+        self.bin_forecast = Gauge(
+            "streamrate_quality_bin_forecast_ratio",
+            "Mean forecast (expected score of the first side) of the window's events in each "
+            "of 10 equal-width forecast bins; NaN for an empty bin.",
+            _BIN_LABELS,
+            registry=registry,
+        )
+        self.bin_observed = Gauge(
+            "streamrate_quality_bin_observed_ratio",
+            "Observed frequency (mean score of the first side, a draw counting 0.5) of the "
+            "window's events in each of 10 equal-width forecast bins; NaN for an empty bin.",
+            _BIN_LABELS,
+            registry=registry,
+        )
+        self.bin_events = Gauge(
+            "streamrate_quality_bin_events",
+            "Events of the window in each of 10 equal-width forecast bins.",
+            _BIN_LABELS,
+            registry=registry,
+        )
         self.psi = Gauge(
             "streamrate_drift_psi",
             "Population Stability Index, recent window against reference window.",
@@ -153,6 +186,8 @@ class QualityMetrics:
             for group, pair in mq.windows_.items():
                 for window, rq in zip(WINDOWS, (pair.recent, pair.reference), strict=True):
                     self._set_quality(space, model, window, group, rq.snapshot())
+                    if window in BINNED_WINDOWS:
+                        self._set_bins(space, model, window, group, rq.binned())
             for feature, value in mq.drift_.psi().items():
                 self.psi.labels(space=space, model=model, feature=feature).set(value)
             for d, ph in mq.change_.items():
@@ -171,6 +206,17 @@ class QualityMetrics:
             gauge.labels(space=space, model=model, window=window, group=group).set(
                 value if math.isfinite(value) else math.nan
             )
+
+    def _set_bins(
+        self, space: str, model: str, window: str, group: str, binned: BinnedWindow
+    ) -> None:
+        for i, (fc, ob, n) in enumerate(
+            zip(binned.forecast_mean, binned.outcome_mean, binned.count, strict=True)
+        ):
+            lbl = {"space": space, "model": model, "window": window, "group": group, "bin": str(i)}
+            self.bin_forecast.labels(**lbl).set(float(fc))
+            self.bin_observed.labels(**lbl).set(float(ob))
+            self.bin_events.labels(**lbl).set(int(n))
 
 
 class QualityObserver:

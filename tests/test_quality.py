@@ -30,6 +30,7 @@ from streamrate.quality import (
     WindowPair,
 )
 from streamrate.quality_metrics import QualityMetrics, QualityObserver
+from tests.reliability_bins import assert_bins_equal_batch, exported_bins
 
 
 def _binary_data(n: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
@@ -288,6 +289,69 @@ def test_observer_publishes_gauges_equal_to_the_window_statistics() -> None:
     assert groups == {ALL_GROUP, "saltflats", OTHER_GROUP}
     for fam in reg.collect():
         assert fam.documentation.strip(), fam.name
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    window_n=st.integers(1, 30),
+    events=st.lists(
+        st.tuples(
+            # bin edges and both ends on purpose: (a, b] bins, the first closed at 0
+            st.one_of(st.floats(0.0, 1.0), st.sampled_from([0.0, 0.1, 0.2, 0.5, 0.9, 1.0])),
+            st.sampled_from([0.0, 0.5, 1.0]),
+            st.sampled_from(["saltflats", "glasswood"]),
+        ),
+        min_size=1,
+        max_size=60,
+    ),
+)
+def test_observer_exports_the_recent_windows_bins_as_the_batch_reliability_curve(
+    window_n: int, events: list[tuple[float, float, str]]
+) -> None:
+    reg = CollectorRegistry()
+    settings = MonitorSettings(
+        recent_n=window_n, reference_n=5, group_field="map", group_top_k=1, group_warmup_n=1
+    )
+    obs = QualityObserver(QualityMonitor(settings), QualityMetrics(reg), "duel", publish_every_s=0)
+    for i, (p, y, game_map) in enumerate(events):
+        obs(_event(i, y, game_map), Prediction(p, 0.0), "elo")
+    labels = {"space": "duel", "model": "elo", "window": "recent"}
+    p_all = np.array([e[0] for e in events])
+    y_all = np.array([e[1] for e in events])
+    assert_bins_equal_batch(reg, {**labels, "group": "all"}, p_all[-window_n:], y_all[-window_n:])
+    # the first event chose the group; it is counted in "all" only
+    top = events[0][2]
+    mine = np.array([k for k, e in enumerate(events) if k > 0 and e[2] == top], dtype=int)
+    if mine.size:
+        last = mine[-window_n:]
+        assert_bins_equal_batch(reg, {**labels, "group": top}, p_all[last], y_all[last])
+    # only the recent window is binned
+    assert (
+        reg.get_sample_value(
+            "streamrate_quality_bin_events",
+            {**labels, "window": "reference", "group": "all", "bin": "0"},
+        )
+        is None
+    )
+
+
+def test_bins_of_an_emptied_group_stay_exported_and_fill_in_order() -> None:
+    reg = CollectorRegistry()
+    obs = QualityObserver(
+        QualityMonitor(MonitorSettings(recent_n=4)), QualityMetrics(reg), "duel", 0
+    )
+    labels = {"space": "duel", "model": "elo", "window": "recent", "group": "all"}
+    for i, p in enumerate([0.05, 0.95, 0.95, 0.55]):
+        obs(_event(i, 1.0, "saltflats"), Prediction(p, 0.0), "elo")
+    rows = exported_bins(reg, labels)
+    assert [r[2] for r in rows] == [1, 0, 0, 0, 0, 1, 0, 0, 0, 2]
+    assert rows[9][:2] == (pytest.approx(0.95), 1.0)
+    for p in [0.35] * 4:  # the window moves on: the old bins empty out, still exported
+        obs(_event(9, 0.0, "saltflats"), Prediction(p, 0.0), "elo")
+    rows = exported_bins(reg, labels)
+    assert [r[2] for r in rows] == [0, 0, 0, 4, 0, 0, 0, 0, 0, 0]
+    assert rows[3][:2] == (pytest.approx(0.35), 0.0)
+    assert all(math.isnan(r[0]) and math.isnan(r[1]) for i, r in enumerate(rows) if i != 3)
 
 
 def test_observer_counts_change_detections_at_once() -> None:

@@ -22,6 +22,7 @@ from streamrate.events import MatchEvent, event_to_json
 from streamrate.models.base import Prediction
 from streamrate.service import Service
 from streamrate.simulate import simulate, world_spec
+from tests.reliability_bins import assert_bins_equal_batch
 
 WORLD = simulate(world_spec("cyclic", matches=400, entities=20, seed=5)).events
 
@@ -77,6 +78,7 @@ def test_running_service_publishes_quality_of_what_it_predicted(tmp_path: Path) 
     assert get("streamrate_quality_log_loss", ref) == pytest.approx(
         log_loss(p[-300:-100], y[-300:-100])
     )
+    assert_bins_equal_batch(registry, labels, p[-100:], y[-100:])
     psi = get("streamrate_drift_psi", {"space": "duel", "model": "elo", "feature": "map"})
     assert psi is not None and 0.0 <= psi < 0.25  # maps are drawn uniformly
     counter = {"space": "duel", "model": "elo", "direction": "up"}

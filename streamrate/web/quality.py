@@ -6,9 +6,10 @@ count; the reference window's log loss; PSI per drift feature; the Page-Hinkley
 statistic per direction and how often it fired. A bounded history of the recent
 log loss per model feeds the board's small charts.
 
-The reliability diagram drawn from these is the fitted calibration curve
-``P(y) = sigmoid(a + b logit p)`` (slope ``b``, intercept ``a``): the service
-exports those, not per-bin counts.
+The reliability diagram is drawn from the recent window's ten equal-width bins
+(``bins``: per bin its mean forecast, observed share and event count, the
+means ``None`` for an empty bin), beside the fitted calibration curve
+``P(y) = sigmoid(a + b logit p)`` (slope ``b``, intercept ``a``).
 
 >>> text = '''# TYPE streamrate_quality_log_loss gauge
 ... streamrate_quality_log_loss{space="duel",model="elo",window="recent",group="all"} 0.65
@@ -39,6 +40,11 @@ _FIELDS = {
     "accuracy": "streamrate_quality_accuracy_ratio",
     "n": "streamrate_quality_window_events",
 }
+_BIN_FIELDS = {
+    "forecast": "streamrate_quality_bin_forecast_ratio",
+    "observed": "streamrate_quality_bin_observed_ratio",
+    "n": "streamrate_quality_bin_events",
+}
 
 
 def _num(v: float) -> float | None:
@@ -54,6 +60,16 @@ def read_quality(text: str, space: str) -> dict[str, Any]:
             if labels.get("space") != space or any(labels.get(k) != w for k, w in _RECENT.items()):
                 continue
             models.setdefault(labels["model"], {"model": labels["model"]})[field] = _num(v)
+    bins: dict[tuple[str, int], dict[str, Any]] = {}
+    for field, name in _BIN_FIELDS.items():
+        for labels, v in s.get(name, []):
+            if labels.get("space") != space or any(labels.get(k) != w for k, w in _RECENT.items()):
+                continue
+            if labels["model"] in models and labels.get("bin", "").isdigit():
+                key = (labels["model"], int(labels["bin"]))
+                bins.setdefault(key, {"bin": key[1]})[field] = _num(v)
+    for (model, _), row in sorted(bins.items()):
+        models[model].setdefault("bins", []).append(row)
     for labels, v in s.get("streamrate_quality_log_loss", []):
         ok = labels.get("window") == "reference" and labels.get("group") == "all"
         if ok and labels.get("space") == space and labels["model"] in models:

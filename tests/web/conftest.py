@@ -102,6 +102,9 @@ class Stack:
             self.web.stop()
             self.web = None
 
+    def metrics_url(self) -> str:
+        return f"http://127.0.0.1:{self.metrics_port}/metrics"
+
     def url(self, path: str) -> str:
         return f"http://127.0.0.1:{self.web_port}{path}"
 

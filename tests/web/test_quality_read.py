@@ -33,6 +33,17 @@ def test_read_quality_matches_the_registry() -> None:
                             ("ece", "streamrate_quality_ece"),
                             ("slope", "streamrate_quality_calibration_slope")):  # fmt: skip
             assert m[field] == reg.get_sample_value(name, lbl)
+        assert [b["bin"] for b in m["bins"]] == list(range(10))
+        for b in m["bins"]:
+            blbl = {**lbl, "bin": str(b["bin"])}
+            n = reg.get_sample_value("streamrate_quality_bin_events", blbl)
+            assert b["n"] == n
+            for field, name in (("forecast", "streamrate_quality_bin_forecast_ratio"),
+                                ("observed", "streamrate_quality_bin_observed_ratio")):  # fmt: skip
+                want = reg.get_sample_value(name, blbl)
+                assert b[field] == want if n else (b[field] is None and math.isnan(want or 0.0))
+        # each model forecast two values in the recent window: two non-empty bins
+        assert sum(1 for b in m["bins"] if b["n"]) == 2
         ref = {**lbl, "window": "reference"}
         assert m["reference_log_loss"] == reg.get_sample_value("streamrate_quality_log_loss", ref)
     features = {(r["model"], r["feature"]) for r in got["psi"]}

@@ -10,11 +10,13 @@ import contextlib
 import socket
 import tempfile
 import threading
+import urllib.request
 from collections.abc import Iterator
 from typing import Any
 
 import pytest
 
+from streamrate.web.quality import read_quality
 from tests.integration.helpers import wait_for
 
 from .conftest import Stack, busiest_pair, chromium_or_skip, world
@@ -181,7 +183,24 @@ def test_board_follows_pairings_and_resumes_after_a_drop_without_a_gap(
         wait_for(lambda: page.locator("#models tr[data-model='elo']").count() == 1, 20, "quality")
         cells = page.locator("#models tr[data-model='elo'] td").all_inner_texts()
         assert 0.3 < float(cells[2]) < 1.0  # a log loss in nats
-        assert page.locator("#reliability path[data-model='elo']").count() == 1
+        assert page.locator("#reliability path[data-model='elo']:not(.bins-line)").count() == 1
+
+        # the binned diagram: one point per non-empty bin of the recent window, as exported
+        def exported() -> list[tuple[str, str]]:
+            text = urllib.request.urlopen(stack.metrics_url(), timeout=5).read().decode()
+            elo = next(m for m in read_quality(text, "duel")["models"] if m["model"] == "elo")
+            return [(str(b["bin"]), str(int(b["n"]))) for b in elo["bins"] if b["n"]]
+
+        def drawn() -> list[tuple[str, str]]:
+            found: list[list[str]] = page.evaluate(
+                "[...document.querySelectorAll(\"#reliability circle.bin[data-model='elo']\")]"
+                ".map((c) => [c.dataset.bin, c.dataset.n])"
+            )
+            return [(b, n) for b, n in found]
+
+        wait_for(lambda: drawn() == exported(), 20, "the binned reliability points")
+        assert 2 <= len(drawn()) <= 10
+        assert sum(int(n) for _, n in drawn()) == 200  # the recent window, every event once
     finally:
         proxy.close()
 

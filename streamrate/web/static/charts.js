@@ -1,4 +1,4 @@
-// Small SVG charts drawn by hand: a line over time, a sparkline, a reliability diagram.
+// Small SVG charts drawn by hand: a line over time, a sparkline, a binned reliability diagram.
 "use strict";
 
 const Charts = (() => {
@@ -80,7 +80,9 @@ const Charts = (() => {
   const sigmoid = (z) => 1 / (1 + Math.exp(-z));
   const logit = (p) => Math.log(p / (1 - p));
 
-  // models: [{model, slope, intercept}]; draws sigmoid(a + b logit p) against the diagonal
+  // models: [{model, slope, intercept, bins: [{bin, forecast, observed, n}]}]; draws each
+  // model's non-empty bins as points (area proportional to the events in the bin) joined by
+  // a thin line, the fitted curve sigmoid(a + b logit p) dashed, and the diagonal
   function reliability(svg, models) {
     clear(svg);
     const [w, h] = size(svg);
@@ -107,7 +109,24 @@ const Charts = (() => {
         xy.push([x(p), y(sigmoid(m.intercept + m.slope * logit(p)))]);
       }
       el("path", { d: path(xy), fill: "none", stroke: PALETTE[i % PALETTE.length],
-        "stroke-width": 2.2, "data-model": m.model }, svg);
+        "stroke-width": 1.4, "stroke-dasharray": "6 3", opacity: 0.7, "data-model": m.model }, svg);
+    });
+    const shown = (b) => b.n > 0 && b.forecast != null && b.observed != null;
+    const most = Math.max(1, ...models.flatMap((m) => (m.bins || []).filter(shown).map((b) => b.n)));
+    models.forEach((m, i) => {
+      const colour = PALETTE[i % PALETTE.length];
+      const bins = (m.bins || []).filter(shown);
+      if (bins.length > 1) {
+        el("path", { d: path(bins.map((b) => [x(b.forecast), y(b.observed)])), fill: "none",
+          stroke: colour, "stroke-width": 1.2, class: "bins-line", "data-model": m.model }, svg);
+      }
+      for (const b of bins) {
+        const c = el("circle", { cx: x(b.forecast), cy: y(b.observed), r: 2.5 + 7 * Math.sqrt(b.n / most),
+          fill: colour, "fill-opacity": 0.55, stroke: colour, "stroke-width": 1.2, class: "bin",
+          "data-model": m.model, "data-bin": b.bin, "data-n": b.n }, svg);
+        el("title", {}, c).textContent = `${m.model}, forecasts ${b.bin / 10}\u2013${(b.bin + 1) / 10}: ` +
+          `${b.n} events, mean forecast ${b.forecast.toFixed(3)}, observed ${b.observed.toFixed(3)}`;
+      }
     });
   }
 
