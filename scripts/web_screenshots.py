@@ -149,7 +149,7 @@ def main() -> None:
             overlay = ctx.new_page()
             overlay.goto(
                 f"{base}/overlay?p={top[0]}:{top[1]}&ctx=map=saltflats&ctx=stage=final"
-                "&a=Kestrel%20Crew&b=Marlow%20Five&title=win%20probability"
+                "&a=Vashthap%20Crew&b=Nevjor%20Five&title=win%20probability"
             )
             send_events(client, keys.events, lines[2500:], rate_per_s=300.0, chunk=20)
             wait_for(lambda: live.applied >= len(lines), 120)
