@@ -1,6 +1,6 @@
 """Applying events to a model: the one step the writer and every replica share.
 
-The writer (:class:`streamrate.consumer.Consumer`) and a replica
+The writer (:class:`streamrate.stream.writer.Writer`) and a replica
 (:class:`streamrate.replica.follower.Follower`) both call
 :meth:`Applier.apply` on a chunk of events, in the same order, so their models
 go through the same arithmetic: predict then learn under the model lock, the
