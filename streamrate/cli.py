@@ -463,7 +463,7 @@ def ask(
     from streamrate.client import format_reply, never_seen, parse_context
     from streamrate.connect import RedisClients, explain
     from streamrate.errors import StreamrateError
-    from streamrate.queries import request_schema
+    from streamrate.serve.queries import request_schema
 
     if schema:
         typer.echo(json.dumps(request_schema(), indent=2))

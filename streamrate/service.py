@@ -37,16 +37,16 @@ from streamrate.checkpoint import CheckpointStore, FileCheckpointStore, RedisChe
 from streamrate.config import RedisSettings, Settings, SpaceSettings
 from streamrate.connect import RedisClients
 from streamrate.errors import CheckpointRefusedError
-from streamrate.livefeed import WatchRegistry
 from streamrate.metrics import ReplicaMetrics, ServiceMetrics, serve_metrics
 from streamrate.models.base import Model
 from streamrate.models.registry import build_model
 from streamrate.quality_metrics import QualityMetrics, QualityObserver, quality_observers
-from streamrate.queries import MAX_WATCH
 from streamrate.recalibrate import OnlineRecalibrator, recalibrators_of
 from streamrate.replica.request_stream import StreamResponder
 from streamrate.replica.space import ReplicaSpace
-from streamrate.responder import Responder
+from streamrate.serve.livefeed import WatchRegistry
+from streamrate.serve.queries import MAX_WATCH
+from streamrate.serve.responder import Responder
 from streamrate.stream.apply import Observer
 from streamrate.stream.writer import Writer
 
@@ -293,7 +293,7 @@ class SpaceService:
                     return
                 outage.failed(exc, threading.Event())
 
-    # -- query threads (streamrate.responder) -------------------------------------------
+    # -- query threads (streamrate.serve.responder) -------------------------------------
     def respond(self, stop: threading.Event) -> None:
         rs = self.settings.redis
         reconnects = self.metrics.reconnects.labels(space=self.space.name, role="queries")

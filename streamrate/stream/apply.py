@@ -18,8 +18,8 @@ from dataclasses import dataclass, field
 from typing import Any, Literal
 
 from streamrate.events import MatchEvent
-from streamrate.livefeed import WatchRegistry, live_messages
 from streamrate.models.base import Model, Prediction, Predictions
+from streamrate.serve.livefeed import WatchRegistry, live_messages
 
 Observer = Callable[[MatchEvent, Prediction, str], None]
 """Called after each applied event with (event, prediction made before learning, model kind);

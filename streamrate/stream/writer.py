@@ -65,9 +65,9 @@ from streamrate.checkpoint import CheckpointStore, load_parts
 from streamrate.config import SpaceKeys, SpaceSettings
 from streamrate.dedupe import SeenIds
 from streamrate.errors import StreamrateError
-from streamrate.livefeed import WatchRegistry
 from streamrate.metrics import CONSUMER_STATES, ServiceMetrics
 from streamrate.models.base import Model, warm_up
+from streamrate.serve.livefeed import WatchRegistry
 from streamrate.stream.applied_log import AppliedLogWriter
 from streamrate.stream.apply import Applier, LiveModel, Observer, Status, redis_publisher
 from streamrate.stream.checkpoints import Checkpointer, describe_store, load_checked, refusal
