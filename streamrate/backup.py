@@ -47,10 +47,10 @@ from streamrate.config import Settings, SpaceSettings
 from streamrate.errors import ServiceError, StreamrateError
 from streamrate.metrics import ServiceMetrics
 from streamrate.models.registry import build_model
-from streamrate.quality_metrics import QualityMetrics, quality_observers
 from streamrate.statefile import write_atomic
 from streamrate.stream.reader import id_key
 from streamrate.stream.writer import Writer
+from streamrate.watch.quality_metrics import QualityMetrics, quality_observers
 
 WRITER_IDLE_S = 10.0
 """A group member that read within this many seconds counts as a running writer."""

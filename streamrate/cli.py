@@ -778,7 +778,7 @@ def health(
     Thresholds are those of the Prometheus alert rules.
     """
     from streamrate.config import load_settings
-    from streamrate.health import (
+    from streamrate.watch.health import (
         BAD,
         fetch_metrics,
         format_report,

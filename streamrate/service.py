@@ -40,7 +40,6 @@ from streamrate.errors import CheckpointRefusedError
 from streamrate.metrics import ReplicaMetrics, ServiceMetrics, serve_metrics
 from streamrate.models.base import Model
 from streamrate.models.registry import build_model
-from streamrate.quality_metrics import QualityMetrics, QualityObserver, quality_observers
 from streamrate.recalibrate import OnlineRecalibrator, recalibrators_of
 from streamrate.replica.request_stream import StreamResponder
 from streamrate.replica.space import ReplicaSpace
@@ -49,6 +48,7 @@ from streamrate.serve.queries import MAX_WATCH
 from streamrate.serve.responder import Responder
 from streamrate.stream.apply import Observer
 from streamrate.stream.writer import Writer
+from streamrate.watch.quality_metrics import QualityMetrics, QualityObserver, quality_observers
 
 log = logging.getLogger("streamrate.service")
 REDIS_DOWN = (redis.ConnectionError, redis.TimeoutError)
