@@ -6,7 +6,7 @@ decodes. A restore installs such a file as the space's checkpoint, but first:
 
 * refuses one that the service would refuse at start: another model, other
   settings, another format, or malformed (the very checks of
-  :meth:`streamrate.consumer.Consumer.load_checkpoint`, run on the file);
+  :meth:`streamrate.stream.writer.Writer.load_checkpoint`, run on the file);
 * refuses while a writer of the space is running (a member of the consumer
   group read within ``idle_s`` seconds: a running service reads every
   ``block_ms``), unless forced; the writer would overwrite the restored
@@ -44,12 +44,13 @@ from streamrate.checkpoint import (
     decode_checkpoint,
 )
 from streamrate.config import Settings, SpaceSettings
-from streamrate.consumer import Consumer, id_key
 from streamrate.errors import ServiceError, StreamrateError
 from streamrate.metrics import ServiceMetrics
 from streamrate.models.registry import build_model
-from streamrate.quality_metrics import QualityMetrics, quality_observers
 from streamrate.statefile import write_atomic
+from streamrate.stream.reader import id_key
+from streamrate.stream.writer import Writer
+from streamrate.watch.quality_metrics import QualityMetrics, quality_observers
 
 WRITER_IDLE_S = 10.0
 """A group member that read within this many seconds counts as a running writer."""
@@ -113,10 +114,10 @@ class _Held:
         raise ServiceError("the restore check does not write")
 
 
-def check_fits(settings: Settings, space: SpaceSettings, client: Any, data: bytes) -> Consumer:
+def check_fits(settings: Settings, space: SpaceSettings, client: Any, data: bytes) -> Writer:
     """Load ``data`` exactly as the service would at start; :class:`BackupError` if refused."""
     registry = CollectorRegistry()
-    consumer = Consumer(
+    consumer = Writer(
         client,
         space,
         settings.keys(space),

@@ -458,7 +458,7 @@ def ask(
     from streamrate.client import format_reply, never_seen, parse_context
     from streamrate.connect import RedisClients, explain
     from streamrate.errors import StreamrateError
-    from streamrate.queries import request_schema
+    from streamrate.serve.queries import request_schema
 
     if schema:
         typer.echo(json.dumps(request_schema(), indent=2))
@@ -773,7 +773,7 @@ def health(
     Thresholds are those of the Prometheus alert rules.
     """
     from streamrate.config import load_settings
-    from streamrate.health import (
+    from streamrate.watch.health import (
         BAD,
         fetch_metrics,
         format_report,

@@ -151,7 +151,7 @@ def mask_url(url: str | None) -> str | None:
 
 
 class QualitySettings(BaseModel):
-    """Live forecast-quality and drift statistics (:mod:`streamrate.quality`), in events."""
+    """Live forecast-quality and drift statistics (:mod:`streamrate.watch.quality`), in events."""
 
     model_config = _FROZEN
     enabled: bool = True

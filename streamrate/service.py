@@ -7,7 +7,7 @@ process as before) does that and also answers from the request stream;
 ``responder`` runs a replica per space (:mod:`streamrate.replica.space`) that
 follows the writer's applied log and answers from the request stream.
 
-Per model space two threads run: the consumer (:mod:`streamrate.consumer`) and
+Per model space two threads run: the writer (:mod:`streamrate.stream.writer`) and
 the query responder (pub/sub, its own Redis connection, reads the live model
 under its lock). ``SIGTERM``/``SIGINT`` set a stop flag: the consumer finishes
 the batch in hand, writes a final checkpoint, acknowledges and the process
@@ -36,18 +36,19 @@ from prometheus_client import CollectorRegistry
 from streamrate.checkpoint import CheckpointStore, FileCheckpointStore, RedisCheckpointStore
 from streamrate.config import RedisSettings, Settings, SpaceSettings
 from streamrate.connect import RedisClients
-from streamrate.consumer import Consumer, Observer
 from streamrate.errors import CheckpointRefusedError
-from streamrate.livefeed import WatchRegistry
 from streamrate.metrics import ReplicaMetrics, ServiceMetrics, serve_metrics
 from streamrate.models.base import Model
 from streamrate.models.registry import build_model
-from streamrate.quality_metrics import QualityMetrics, QualityObserver, quality_observers
-from streamrate.queries import MAX_WATCH
 from streamrate.recalibrate import OnlineRecalibrator, recalibrators_of
 from streamrate.replica.request_stream import StreamResponder
 from streamrate.replica.space import ReplicaSpace
-from streamrate.responder import Responder
+from streamrate.serve.livefeed import WatchRegistry
+from streamrate.serve.queries import MAX_WATCH
+from streamrate.serve.responder import Responder
+from streamrate.stream.apply import Observer
+from streamrate.stream.writer import Writer
+from streamrate.watch.quality_metrics import QualityMetrics, QualityObserver, quality_observers
 
 log = logging.getLogger("streamrate.service")
 REDIS_DOWN = (redis.ConnectionError, redis.TimeoutError)
@@ -176,7 +177,7 @@ class SpaceService:
         else:
             store = FileCheckpointStore(settings.checkpoint.dir, space.name)
         builder = model_builder or (lambda: build_model(space.model, **space.model_settings))
-        self.consumer = Consumer(
+        self.consumer = Writer(
             client,
             space,
             self.keys,
@@ -292,7 +293,7 @@ class SpaceService:
                     return
                 outage.failed(exc, threading.Event())
 
-    # -- query threads (streamrate.responder) -------------------------------------------
+    # -- query threads (streamrate.serve.responder) -------------------------------------
     def respond(self, stop: threading.Event) -> None:
         rs = self.settings.redis
         reconnects = self.metrics.reconnects.labels(space=self.space.name, role="queries")
@@ -306,7 +307,7 @@ class SpaceService:
         self.responder.run(stop, outage_of)
 
 
-def _live_recalibrators(consumer: Consumer) -> dict[str, OnlineRecalibrator]:
+def _live_recalibrators(consumer: Writer) -> dict[str, OnlineRecalibrator]:
     return recalibrators_of(consumer.live.model)
 
 

@@ -39,9 +39,9 @@ from streamrate.checkpoint import CheckpointStore
 from streamrate.config import ReplicaSettings, SpaceKeys, SpaceSettings
 from streamrate.errors import AppliedLogError, CheckpointRefusedError
 from streamrate.events import parse_event
-from streamrate.livefeed import WatchRegistry
 from streamrate.metrics import CONSUMER_STATES, ReplicaMetrics, ServiceMetrics
 from streamrate.models.base import Model, warm_up
+from streamrate.serve.livefeed import WatchRegistry
 from streamrate.stream.applied_log import LogEntry, id_key, parse_entry
 from streamrate.stream.apply import Applier, LiveModel, Status, now_ms
 from streamrate.stream.checkpoints import describe_store, load_checked

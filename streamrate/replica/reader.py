@@ -35,9 +35,9 @@ from streamrate.connect import RedisClients
 from streamrate.errors import ServiceError
 from streamrate.models.base import Model
 from streamrate.models.registry import build_model
-from streamrate.queries import Answerer, LobbyRequest, QueryError
 from streamrate.replica import fastpath
 from streamrate.replica.follower import Follower
+from streamrate.serve.queries import Answerer, LobbyRequest, QueryError
 
 
 class Answer(NamedTuple):

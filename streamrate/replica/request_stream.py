@@ -41,8 +41,8 @@ import redis
 
 from streamrate.config import ReplicaSettings, SpaceKeys, SpaceSettings
 from streamrate.metrics import ServiceMetrics
-from streamrate.queries import peek
-from streamrate.responder import Responder, busy_reply
+from streamrate.serve.queries import peek
+from streamrate.serve.responder import Responder, busy_reply
 from streamrate.stream.apply import now_ms
 
 log = logging.getLogger("streamrate.queries")

@@ -15,13 +15,13 @@ from typing import Any
 
 from streamrate.checkpoint import CheckpointStore, FileCheckpointStore, RedisCheckpointStore
 from streamrate.config import Settings, SpaceSettings
-from streamrate.livefeed import WatchRegistry
 from streamrate.metrics import ReplicaMetrics, ServiceMetrics
 from streamrate.models.registry import build_model
-from streamrate.queries import MAX_WATCH
 from streamrate.replica.follower import Follower
 from streamrate.replica.request_stream import StreamResponder
-from streamrate.responder import Responder
+from streamrate.serve.livefeed import WatchRegistry
+from streamrate.serve.queries import MAX_WATCH
+from streamrate.serve.responder import Responder
 
 ClientFactory = Callable[[], Any]
 

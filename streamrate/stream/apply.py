@@ -1,6 +1,6 @@
 """Applying events to a model: the one step the writer and every replica share.
 
-The writer (:class:`streamrate.consumer.Consumer`) and a replica
+The writer (:class:`streamrate.stream.writer.Writer`) and a replica
 (:class:`streamrate.replica.follower.Follower`) both call
 :meth:`Applier.apply` on a chunk of events, in the same order, so their models
 go through the same arithmetic: predict then learn under the model lock, the
@@ -18,8 +18,8 @@ from dataclasses import dataclass, field
 from typing import Any, Literal
 
 from streamrate.events import MatchEvent
-from streamrate.livefeed import WatchRegistry, live_messages
 from streamrate.models.base import Model, Prediction, Predictions
+from streamrate.serve.livefeed import WatchRegistry, live_messages
 
 Observer = Callable[[MatchEvent, Prediction, str], None]
 """Called after each applied event with (event, prediction made before learning, model kind);

@@ -1,15 +1,23 @@
-"""Loading a checkpoint that fits the settings: shared by the writer and replicas.
+"""Checkpoints: loading one that fits the settings (writer and replicas), and the
+writer's cadence of saving, acknowledging and trimming (:class:`Checkpointer`).
 
 :func:`load_checked` reads the store, decodes and checks the blob
 (:func:`streamrate.checkpoint.decode_checkpoint`) and refuses one written for
 another model, other settings or another state format, with one
 :class:`~streamrate.errors.CheckpointRefusedError` naming the checkpoint and
 the ways out. The writer stops on it; a replica reports it and waits.
+
+Exactly-once rests on the writer's side of this module: an entry is
+acknowledged only after a durable checkpoint covers it, and the checkpoint holds
+the model, the last handled stream id, the retry record and the applied-log
+position as one atomic value. Only the writer checkpoints, acknowledges and
+trims; a replica only loads.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable
+import time
+from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 from streamrate.checkpoint import (
@@ -18,11 +26,18 @@ from streamrate.checkpoint import (
     FileCheckpointStore,
     RedisCheckpointStore,
     decode_checkpoint,
+    encode_checkpoint,
+    parts_of,
 )
 from streamrate.config import SpaceSettings
+from streamrate.dedupe import SeenIds
 from streamrate.errors import CheckpointRefusedError, StreamrateError
+from streamrate.metrics import ServiceMetrics
 from streamrate.models.base import Model
 from streamrate.models.registry import model_from_state
+from streamrate.stream.applied_log import AppliedLogWriter
+from streamrate.stream.apply import LiveModel, Observer
+from streamrate.stream.reader import ACK_CHUNK, StreamReader, id_key
 
 RUNTIME_SETTINGS = frozenset({"compiled", "active"})
 """Model settings that do not change what a checkpoint means (how kernels run;
@@ -123,3 +138,105 @@ def settings_diff(saved: dict[str, Any], asked: dict[str, Any], limit: int = 3) 
 def _short(value: Any, width: int = 60) -> str:
     text = repr(value)
     return text if len(text) <= width else text[: width - 3] + "..."
+
+
+class Checkpointer:
+    """The writer's checkpoints: when one is due, saving it, then acknowledging
+    the entries it covers and trimming what no checkpoint needs any more.
+
+    Handled entries are announced with :meth:`handled` (counted towards the
+    cadence) or :meth:`covered` (re-delivered, only to acknowledge); nothing is
+    acknowledged before :meth:`save` has stored a checkpoint covering it.
+    """
+
+    def __init__(
+        self,
+        store: CheckpointStore,
+        reader: StreamReader,
+        log: AppliedLogWriter,
+        live: LiveModel,
+        observers: Sequence[Observer],
+        metrics: ServiceMetrics,
+        space: SpaceSettings,
+        clock: Callable[[], float],
+        log_min_entries: int,
+    ) -> None:
+        self.store, self.reader, self.log, self.live = store, reader, log, live
+        self.observers, self.metrics, self.space, self.clock = observers, metrics, space, clock
+        self.log_min_entries = log_min_entries
+        self._lbl = {"space": space.name}
+        self.ckpt_id = "0-0"  # stream id the newest durable checkpoint covers
+        self.log_id = "0-0"  # applied-log position of the loaded/last checkpoint
+        self.prev_log_id = "0-0"  # ... and of the one before (the log is kept back to it)
+        self.to_ack: list[bytes] = []
+        self.since = 0  # entries handled since the last checkpoint
+        self.last_at = clock()
+
+    def restart(self, ckpt_id: str, log_id: str) -> None:
+        """After loading the checkpoint covering ``ckpt_id``: nothing awaits an ack."""
+        self.ckpt_id, self.log_id, self.prev_log_id = ckpt_id, log_id, log_id
+        self.to_ack, self.since = [], 0
+        self.last_at = self.clock()
+
+    def handled(self, ids: Sequence[bytes]) -> None:
+        """Entries handled (applied, dead-lettered or skipped): ack after the next save."""
+        self.to_ack.extend(ids)
+        self.since += len(ids)
+
+    def covered(self, ids: Sequence[bytes]) -> None:
+        """Entries re-delivered that a checkpoint already covers: ack them."""
+        self.to_ack.extend(ids)
+
+    def due(self) -> bool:
+        """Every ``checkpoint_every_events`` entries, or ``checkpoint_every_s`` seconds
+        when anything awaits a checkpoint or an ack."""
+        sp = self.space
+        due_n = self.since >= sp.checkpoint_every_events
+        due_t = self.clock() - self.last_at >= sp.checkpoint_every_s
+        return due_n or (due_t and bool(self.since or self.to_ack or self.live.changed))
+
+    def save(self, last_id: str, seen: SeenIds, counters: Mapping[str, int]) -> None:
+        """Store model + ``last_id`` + retry record durably, then ack what it covers."""
+        t0 = time.perf_counter()
+        live = self.live
+        if self.since or self.ckpt_id != last_id or live.changed:
+            with live.lock:
+                state = live.model.to_state()
+                live.changed = False
+                applied = live.applied
+                promoted, live.promoted = live.promoted, []
+            for model in promoted:  # in the state above: logged before it is saved
+                self.log.promote(applied, model)
+            log_id = self.log.flush()
+            blob = encode_checkpoint(
+                Checkpoint(
+                    state,
+                    last_id,
+                    applied,
+                    seen,
+                    dict(counters),
+                    parts=parts_of(self.observers),
+                    log_id=log_id,
+                )
+            )
+            self.store.save(blob)
+            self.ckpt_id = last_id
+            self.prev_log_id, self.log_id = self.log_id, log_id
+            self.since = 0
+            self.metrics.checkpoint_seconds.labels(**self._lbl).observe(time.perf_counter() - t0)
+            self.metrics.checkpoint_time.labels(**self._lbl).set(time.time())
+        self.last_at = self.clock()
+        while self.to_ack:
+            part = self.to_ack[:ACK_CHUNK]
+            self.reader.ack(part)
+            del self.to_ack[: len(part)]
+        self._trim()
+        self.log.trim(self.prev_log_id, self.log_min_entries)
+
+    def _trim(self) -> None:
+        if self.space.retention_s is None or self.ckpt_id == "0-0":
+            return
+        horizon_ms = int(time.time() * 1000 - self.space.retention_s * 1000)
+        ck = id_key(self.ckpt_id)
+        min_id = ck if ck[0] < horizon_ms else (horizon_ms, 0)  # never past the checkpoint
+        self.reader.trim(f"{min_id[0]}-{min_id[1]}")

@@ -28,7 +28,7 @@ from collections import deque
 from typing import Any
 
 from streamrate.errors import StreamrateError
-from streamrate.health import fetch_metrics, metric_samples
+from streamrate.watch.health import fetch_metrics, metric_samples
 
 _RECENT = {"window": "recent", "group": "all"}
 _FIELDS = {

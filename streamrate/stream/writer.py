@@ -1,0 +1,385 @@
+"""The writer of a space: the steps of the data path, wired once.
+
+One writer owns one model space. Its loop, one batch at a time::
+
+    reader.read()            XREADGROUP (own pending after the cursor, then ">")
+      -> split_fresh          entries already covered: only acknowledged
+      -> decider.decide()     valid / dead letters (with reasons) / retries skipped
+      -> dead.write()         the dead-letter stream
+      -> applier.learn()      predict then learn, in stream order, under the model lock
+         log.chunk()          the applied log, for the replicas
+         applier.notify()     observers (quality windows, drift)
+    checkpoints.due()        every N entries or T seconds:
+      -> checkpoints.save()   model + last id + retry record, durably; then XACK, trim
+
+Writer and replica differ in one place, the wiring below: both apply events
+through :class:`~streamrate.stream.apply.Applier`; only the writer reads the
+event stream, decides, dead-letters, writes the applied log, checkpoints and
+acknowledges. A replica (:class:`streamrate.replica.follower.Follower`) reads
+the applied log and applies what it says, nothing else.
+
+================  ===========================  =============================
+step              writer (this module)         replica
+================  ===========================  =============================
+read              ``reader.StreamReader``      the applied log
+decide            ``decide.Decider``           (the writer decided)
+apply             ``apply.Applier``            ``apply.Applier``
+dead letters      ``decide.DeadLetters``       never
+applied log       ``AppliedLogWriter``         reads it
+checkpoint, ack   ``checkpoints.Checkpointer`` loads only
+================  ===========================  =============================
+
+Exactly-once rests on three facts: (1) an entry is acknowledged only after a
+durable checkpoint covers it; (2) the checkpoint holds the model, the last
+handled stream id and the retry record as one atomic value; (3) after a start,
+a reconnect or an error the writer re-reads its own pending entries after its
+last handled id before reading new ones, so entries delivered but never seen
+(a lost reply) are not skipped. Dead letters are written with the source
+entry's id as their own id, so a replay does not write them twice.
+
+Start-up: the checkpoint is loaded (queries get "not ready" meanwhile, see
+:class:`LiveModel`); one that is unreadable or written for other model settings
+stops the start (:class:`~streamrate.errors.CheckpointRefusedError`). With no
+checkpoint the group is set to ``start_from`` (default: the first retained entry).
+
+One writer is active per space. Entries left pending by another consumer name
+are taken over with ``XAUTOCLAIM`` once idle for ``claim_idle_ms``: at start
+before anything new is read (stream order kept), later as they turn up (then
+applied late, and counted).
+
+The model version (``live.version``) and the last handled id are written in one
+place, :meth:`Writer._at`.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import threading
+import time
+from collections.abc import Callable, Sequence
+
+import redis
+
+from streamrate.checkpoint import CheckpointStore, load_parts
+from streamrate.config import SpaceKeys, SpaceSettings
+from streamrate.dedupe import SeenIds
+from streamrate.errors import StreamrateError
+from streamrate.metrics import CONSUMER_STATES, ServiceMetrics
+from streamrate.models.base import Model, warm_up
+from streamrate.serve.livefeed import WatchRegistry
+from streamrate.stream.applied_log import AppliedLogWriter
+from streamrate.stream.apply import Applier, LiveModel, Observer, Status, redis_publisher
+from streamrate.stream.checkpoints import Checkpointer, describe_store, load_checked, refusal
+from streamrate.stream.decide import DeadLetters, Decider, Decision, split_fresh
+from streamrate.stream.reader import Entry, StreamReader, id_key
+
+log = logging.getLogger("streamrate.consumer")
+BEHIND_EVERY_S = 2.0
+"""How often ``behind`` (the group's lag) is refreshed while the loop runs."""
+PROGRESS_EVERY_S = 30.0
+"""How often the writer logs its progress (events applied, entries behind)."""
+
+
+class Writer:
+    """The consumer-group member that learns for one space (Redis client, store,
+    clock injected)."""
+
+    def __init__(
+        self,
+        client: redis.Redis,
+        space: SpaceSettings,
+        keys: SpaceKeys,
+        store: CheckpointStore,
+        metrics: ServiceMetrics,
+        build_model: Callable[[], Model],
+        watch: WatchRegistry | None = None,
+        observers: Sequence[Observer] = (),
+        clock: Callable[[], float] = time.monotonic,
+        log_min_entries: int = 1000,
+    ) -> None:
+        self.space, self.keys, self.store, self.metrics = space, keys, store, metrics
+        self.build_model = build_model
+        self.watch = watch if watch is not None else WatchRegistry(0, 0)
+        self.observers: list[Observer] = list(observers)
+        self.clock = clock
+        self.live = LiveModel(build_model())
+        # The wiring: what makes this a writer and not a replica.
+        self.reader = StreamReader(client, space, keys)
+        self.decider = Decider(
+            SeenIds(space.dedupe_keep_ids, space.dedupe_window_s),
+            space.event_field,
+            space.future_limit_s,
+        )
+        self.dead = DeadLetters(
+            client, keys.dead, space.dead_max_payload_bytes, space.dead_max_entries
+        )
+        self.applier = Applier(
+            self.live, self.watch, keys.live_of, redis_publisher(client), self.observers
+        )
+        self.log = AppliedLogWriter(client, keys.applied, keys.epoch)  # for the replicas
+        self.checkpoints = Checkpointer(
+            store, self.reader, self.log, self.live, self.observers, metrics, space, clock,
+            log_min_entries,
+        )  # fmt: skip
+        self.last_id = "0-0"  # the last handled stream id (see _at)
+        self.counters = {"applied": 0, "dead_lettered": 0, "duplicate": 0}
+        self._lbl = {"space": space.name}
+        self._top_in_hand = ""  # highest id of the batch being handled (careful mode)
+        self.last_claim_at = clock()
+        self.behind_at = -math.inf
+        self.loaded = False  # a checkpoint (or the empty start) has been installed
+        self.progress_at = clock()
+        self.progress_applied = 0
+        self.mark("loading", "the checkpoint is not loaded yet")
+
+    # -- status -----------------------------------------------------------------
+    def mark(self, status: Status, detail: str) -> None:
+        """Set the status the queries see (and its gauge)."""
+        self.live.status, self.live.detail = status, detail
+        for st in CONSUMER_STATES:
+            self.metrics.state.labels(space=self.space.name, state=st).set(int(st == status))
+
+    def describe_store(self) -> str:
+        """Where the checkpoint lives, in words (for messages)."""
+        return describe_store(self.store)
+
+    def _at(self, version: str) -> None:
+        """The one place the last handled id and the model version are written."""
+        self.last_id = self.live.version = version
+
+    # -- start-up ---------------------------------------------------------------
+    def load_checkpoint(self) -> bool:
+        """Install the stored checkpoint (True) or an empty model when there is none
+        (False); :class:`CheckpointRefusedError` when it is unreadable or was
+        written for another model, other settings or in another format."""
+        got = load_checked(self.store, self.space, self.build_model)
+        if got is None:
+            self._install(self.build_model(), "0-0", 0)
+            load_parts(self.observers, {})
+            self.decider.seen = SeenIds(self.space.dedupe_keep_ids, self.space.dedupe_window_s)
+            self.checkpoints.restart("0-0", "0-0")
+            self.loaded = True
+            return False
+        ck, model = got
+        self._install(model, ck.last_id, ck.applied)
+        try:
+            load_parts(self.observers, ck.parts)  # quality windows roll back with the model
+        except StreamrateError as exc:
+            raise refusal(
+                self.store, self.space.name, f"holds observer state that cannot be loaded ({exc})"
+            ) from exc
+        self.decider.seen = ck.seen
+        self.checkpoints.restart(ck.last_id, ck.log_id)
+        self.counters.update({k: v for k, v in ck.counters.items() if k in self.counters})
+        self.counters["applied"] = ck.applied
+        self.loaded = True
+        return True
+
+    def _install(self, model: Model, version: str, applied: int) -> None:
+        warm_up(model)  # compile kernels before the lock, not under it
+        # The query side holds this same LiveModel object: update it in place.
+        with self.live.lock:
+            self.live.model, self.live.applied = model, applied
+            self._at(version)
+
+    def recover(self, stop: threading.Event | None = None) -> None:
+        """Load the newest checkpoint, ack what it covers, claim orphans, re-read after it.
+
+        With no checkpoint the group is first set to the configured start
+        (``start_from``): by default the stream's first retained entry, so that
+        history already in the stream is learned whatever position an older group
+        had reached.
+        """
+        had_checkpoint = self.load_checkpoint()
+        ckpt = self.checkpoints
+        # A new epoch: replicas ahead of this checkpoint reload it (see applied_log).
+        self.log.start(self.live.applied, ckpt.ckpt_id, ckpt.log_id)
+        start = ckpt.ckpt_id if had_checkpoint else self.reader.start_id()
+        self.reader.place_group(start, move=not had_checkpoint)
+        if not had_checkpoint and start != "0-0":
+            # Entries up to the start are not for this space: make the start durable.
+            self._at(start)
+            self.checkpoint()
+        self.reader.ack_covered(ckpt.ckpt_id)
+        self.reader.claim_orphans(stop, self.metrics.claimed.labels(**self._lbl).inc)
+        self.reader.resync(self.last_id)
+        ckpt.last_at = self.clock()
+        self._gauges()
+        behind = "an unknown number of" if self.live.behind is None else str(self.live.behind)
+        if had_checkpoint:
+            log.info(
+                "space %s: resuming from the %s after stream id %s (%d events applied); "
+                "%s entries to read",
+                self.space.name,
+                self.describe_store(),
+                self.last_id,
+                self.live.applied,
+                behind,
+            )
+        else:
+            log.info(
+                "space %s: no checkpoint; starting %s (start_from = %r); %s entries to read",
+                self.space.name,
+                "at the stream's first entry" if start == "0-0" else f"after stream id {start}",
+                self.space.start_from,
+                behind,
+            )
+        self.progress_applied = self.live.applied
+
+    def resync(self) -> None:
+        """After a reconnect: re-read own pending entries after the last handled id."""
+        self.reader.resync(self.last_id)
+
+    # -- the loop ---------------------------------------------------------------
+    def step(self) -> int:
+        """Read and handle one batch; checkpoint when due. Returns entries handled."""
+        entries = self.reader.read()
+        if entries:
+            self.handle(entries)
+        for model in self.applier.take_promotions():  # promotions made while idle
+            self.log.promote(self.live.applied, model)
+        self.log.flush()
+        if self.checkpoints.due():
+            self.checkpoint()
+        self.maybe_claim()
+        return len(entries)
+
+    def handle(self, entries: list[Entry], late: bool = False) -> None:
+        """Decide and apply a batch (``late``: claimed entries, order not enforced)."""
+        t0 = time.perf_counter()
+        fresh = split_fresh(entries, self.last_id, late)
+        self.checkpoints.covered(fresh.covered)
+        if not fresh.entries:
+            return
+        self._top_in_hand = fresh.top
+        decision = self.decider.decide(fresh.entries)
+        self.dead.write(decision.dead)
+        self._apply(decision)
+        # Also when nothing moved forward: a late chunk set the version back.
+        self._at(fresh.top if id_key(fresh.top) > id_key(self.last_id) else self.last_id)
+        self.checkpoints.handled([sid for sid, _ in fresh.entries])
+        for outcome, n in decision.counts().items():
+            self.counters[outcome] += n
+            if n:
+                self.metrics.events.labels(space=self.space.name, outcome=outcome).inc(n)
+        self.log.flush()
+        self.metrics.batch_seconds.labels(**self._lbl).observe(time.perf_counter() - t0)
+
+    def _apply(self, decision: Decision) -> None:
+        """Apply in chunks through the shared :class:`Applier`; log each chunk."""
+        valid, raws = decision.valid, decision.raws
+        chunk = 1 if self.careful else self.space.lock_chunk
+        for start in range(0, len(valid), chunk):
+            part = valid[start : start + chunk]
+            seq = self.live.applied  # only this thread changes it
+            try:
+                got = self.applier.learn(part)
+            except Exception as exc:
+                if len(part) == 1:  # careful mode: this is the event the model rejects
+                    self.decider.set_aside(part[0][0], exc)
+                raise
+            self.decider.remember(part, decision.digests)
+            for model in got.promoted:  # made before this chunk, under the same lock
+                self.log.promote(seq, model)
+            self.log.chunk(seq, [sid for sid, _ in part], [raws[sid] for sid, _ in part])
+            if got.published:
+                self.metrics.live_published.labels(**self._lbl).inc(got.published)
+            self.applier.notify(part, got)
+
+    def failed(self) -> None:
+        """The loop failed while handling a batch. Until past that batch, apply one
+        event at a time: if the model itself cannot learn from an event, that event
+        is found, set aside as a dead letter, and the stream goes on."""
+        self.decider.failed(self._top_in_hand)
+
+    @property
+    def careful(self) -> bool:
+        return self.decider.careful(self.last_id)
+
+    def maybe_claim(self) -> None:
+        """Now and then, take over entries another consumer name left pending."""
+        if self.clock() - self.last_claim_at < max(self.space.claim_idle_ms / 2000, 1.0):
+            return
+        self.last_claim_at = self.clock()
+        if not self.reader.others_pending():
+            return
+        mine = set(self.checkpoints.to_ack)  # applied by us, awaiting the next checkpoint
+        claimed = [e for e in self.reader.claim() if e[0] not in mine]
+        if claimed:
+            log.warning("space %s: applying %d late entries", self.space.name, len(claimed))
+            self.metrics.claimed.labels(**self._lbl).inc(len(claimed))
+            self.handle(sorted(claimed, key=lambda e: id_key(e[0])), late=True)
+
+    # -- checkpoint and acknowledge -----------------------------------------------
+    def maybe_checkpoint(self) -> None:
+        if self.checkpoints.due():
+            self.checkpoint()
+
+    def checkpoint(self) -> None:
+        """Store model + last id + retry record durably, then ack what it covers."""
+        self.checkpoints.save(self.last_id, self.decider.seen, self.counters)
+        self._gauges()
+
+    def close(self) -> None:
+        """Final checkpoint and ack (call after the batch in hand is done)."""
+        self.checkpoint()
+
+    # -- on a timer ---------------------------------------------------------------
+    def _gauges(self) -> None:
+        self.behind_at = self.clock()
+        got = self.reader.group_state()
+        if got is None:
+            return
+        pending, lag = got
+        self.metrics.pending.labels(**self._lbl).set(pending)
+        # Redis cannot always count the lag (after deletions): then unknown.
+        self.live.behind = lag
+        if lag is not None:
+            self.metrics.lag.labels(**self._lbl).set(lag)
+
+    def tick(self) -> None:
+        """Work on a timer, whether events arrive or not: refresh ``behind``, run the
+        observers' timers (the quality gauges), log progress every 30 s."""
+        now = self.clock()
+        if now - self.behind_at >= BEHIND_EVERY_S:
+            self._gauges()
+        for obs in self.observers:
+            timer = getattr(obs, "tick", None)
+            if callable(timer):
+                timer()
+        if now - self.progress_at >= PROGRESS_EVERY_S:
+            applied = self.live.applied
+            if applied != self.progress_applied or self.live.behind:
+                behind = "?" if self.live.behind is None else str(self.live.behind)
+                log.info(
+                    "space %s: %d events applied (+%d in %.0f s), %s entries behind, at %s",
+                    self.space.name,
+                    applied,
+                    applied - self.progress_applied,
+                    now - self.progress_at,
+                    behind,
+                    self.last_id,
+                )
+            self.progress_at, self.progress_applied = now, applied
+
+    # -- read-only views kept for callers of the former Consumer ------------------
+    @property
+    def cursor(self) -> str:
+        return self.reader.cursor
+
+    @property
+    def ckpt_id(self) -> str:
+        return self.checkpoints.ckpt_id
+
+    @property
+    def prev_ckpt_log_id(self) -> str:
+        return self.checkpoints.prev_log_id
+
+    @property
+    def log_min_entries(self) -> int:
+        return self.checkpoints.log_min_entries
+
+    @log_min_entries.setter
+    def log_min_entries(self, value: int) -> None:
+        self.checkpoints.log_min_entries = value
