@@ -131,7 +131,9 @@ class MatchupModel(Model):
     kind: ClassVar[str] = "matchup"
     # Version 2 added the running statistics of numeric fields (scale_numbers);
     # a version 1 state still loads, with numbers read raw as it was trained.
-    state_version: ClassVar[int] = 2
+    # Version 3 added the strengths' uncertainty (``acc[:, 0]`` then holds their
+    # variances); older states load with it off, as they were trained.
+    state_version: ClassVar[int] = 3
     form: ClassVar[int] = 0  # 0: inner, 1: distance
 
     def __init__(
@@ -156,6 +158,9 @@ class MatchupModel(Model):
         seed: int = 0,
         backend: str = "auto",
         scale_numbers: bool = True,
+        uncertainty: bool = True,
+        prior_var: float = 1.0,
+        noise_per_day: float = 0.002,
     ) -> None:
         if dims < 0 or (dims == 0 and not strength):
             raise ConfigError("dims must be >= 0, and dims == 0 needs strength=True")
@@ -170,6 +175,8 @@ class MatchupModel(Model):
             or min(l2, l2_shared, forget_per_day) < 0
         ):
             raise ConfigError("step sizes and accum_init must be > 0; l2s and forgetting >= 0")
+        if prior_var <= 0 or noise_per_day < 0:
+            raise ConfigError("prior_var must be > 0 and noise_per_day >= 0")
         if context_width < 0 or feature_width < 0 or feature_slots < 1:
             raise ConfigError("widths must be >= 0 and feature_slots >= 1")
         if context != "none" and context_width == 0:
@@ -185,6 +192,8 @@ class MatchupModel(Model):
         self.prior_map, self.forget_per_day = prior_map, float(forget_per_day)
         self.seed, self.backend = int(seed), backend
         self.scale_numbers = bool(scale_numbers)
+        self.uncertainty = bool(uncertainty) and self.strength  # it is the strength's
+        self.prior_var, self.noise_per_day = float(prior_var), float(noise_per_day)
         self.has_draws = self.draws  # type: ignore[misc]
         self._k = _kernels(backend)
         self._ctx = FeatureHasher(context_width) if context_width else None
@@ -216,11 +225,23 @@ class MatchupModel(Model):
             "seed": self.seed,
             "backend": self.backend,
             "scale_numbers": self.scale_numbers,
+            "uncertainty": self.uncertainty,
+            "prior_var": self.prior_var,
+            "noise_per_day": self.noise_per_day,
         }
 
     @classmethod
     def upgrade_state(cls, state: ModelState) -> ModelState:
-        return numbers_read_raw(cls, state)
+        state = numbers_read_raw(cls, state)
+        if state.kind == cls.kind and state.version == 2:
+            params = {**state.params, "uncertainty": False}
+            return ModelState(state.kind, 3, params, state.arrays)
+        return state
+
+    @property
+    def _timed(self) -> bool:
+        """Whether each entity's last match time is kept (forgetting, uncertainty)."""
+        return self.forget_per_day > 0 or self.uncertainty
 
     @property
     def width(self) -> int:
@@ -238,6 +259,7 @@ class MatchupModel(Model):
                 int(self.context == "stacked"),
                 int(self.context == "gated"),
                 self.feature_width,
+                int(self.uncertainty),
             ],
             dtype=np.int64,
         )
@@ -253,6 +275,8 @@ class MatchupModel(Model):
                 self.clock_s_,
                 float(self.advantage),
                 self.lr_strength,
+                self.prior_var,
+                self.noise_per_day,
             ]
         )
 
@@ -296,11 +320,13 @@ class MatchupModel(Model):
         self.own_ = with_room(self.own_, ready, hi)
         self.acc_ = with_room(self.acc_, ready, hi)
         self.acc_[ready:hi] = self.accum_init
+        if self.uncertainty:
+            self.acc_[ready:hi, 0] = self.prior_var  # the strength's variance, not a sum
         for lo in range(ready, hi, GROW_ROWS) if self.dims else ():
             top = min(lo + GROW_ROWS, hi)  # float64 temporaries of one step at most
             block = hashed_uniform(self.seed, lo, top, 2 * self.dims)
             self.own_[lo:top, so:] = self.init_scale * block
-        if self.forget_per_day > 0:
+        if self._timed:
             self.last_s_ = with_room(self.last_s_, ready, hi)
             self.last_s_[ready:hi] = np.nan
         if self.feature_width:
@@ -394,6 +420,7 @@ class MatchupModel(Model):
             and b.second.shape[1] == 1
             and self.context == "none"
             and self.feature_width == 0
+            and not self.uncertainty
             and len(b) > 0
             and min(int(b.first.min()), int(b.second.min())) >= 0
         )
@@ -419,7 +446,7 @@ class MatchupModel(Model):
         a = self._args(b)
         s = self._state()
         self._k.predict_seq(
-            *a[:4], *a[5:], s[0], s[2], s[3], s[4], s[5], s[7], s[9], s[11],
+            *a[:4], *a[5:], s[0], s[1], s[2], s[3], s[4], s[5], s[7], s[9], s[11],
             self._cfg(), self._hyp(), out,
         )  # fmt: skip
         return Predictions(out[:, 0].copy(), out[:, 1].copy())
@@ -444,6 +471,12 @@ class MatchupModel(Model):
         r = self.entities_.get(entity_id)
         return None if r < 0 else self.own_[r].astype(np.float64)
 
+    def strength_variance(self, entity_id: str) -> float | None:
+        """The variance of the entity's strength after its last match (None if unknown or
+        uncertainty is off); it grows by ``noise_per_day`` per idle day from there."""
+        r = self.entities_.get(entity_id)
+        return None if r < 0 or not self.uncertainty else float(self.acc_[r, 0])
+
     # -- persistence -------------------------------------------------------------------
     def _state_arrays(self) -> dict[str, np.ndarray]:
         n = len(self.entities_)
@@ -464,7 +497,7 @@ class MatchupModel(Model):
             **self.context_scale_.to_arrays("context_scale"),
             **self.feature_scale_.to_arrays("feature_scale"),
         }
-        if self.forget_per_day > 0:
+        if self._timed:
             arrays["last_s"] = self.last_s_[:n].copy()
         if self.feature_width:
             arrays["feat_idx"] = self.feat_idx_[:n].copy()
@@ -487,7 +520,7 @@ class MatchupModel(Model):
             "asc": ((2,), np.float64),
             "clock_s": ((1,), np.float64),
         }
-        if self.forget_per_day > 0:
+        if self._timed:
             expect["last_s"] = ((n,), np.float64)
         if self.feature_width:
             expect["feat_idx"] = ((n, self.feature_slots), np.int32)
@@ -510,7 +543,7 @@ class MatchupModel(Model):
         self.W_, self.AW_, self.G_, self.AG_ = got["W"], got["AW"], got["G"], got["AG"]
         self.H_, self.AH_, self.sc_, self.asc_ = got["H"], got["AH"], got["sc"], got["asc"]
         self.clock_s_ = float(got["clock_s"][0])
-        if self.forget_per_day > 0:
+        if self._timed:
             self.last_s_ = got["last_s"]
         if self.feature_width:
             self.feat_idx_, self.feat_val_ = got["feat_idx"], got["feat_val"]
