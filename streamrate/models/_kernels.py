@@ -366,10 +366,7 @@ def _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out):
 @njit(cache=True, _nrt=False)
 def _curv(out, draws):
     """Curvature of the event's negative log likelihood in the (unwidened) logit."""
-    if draws:
-        c = 0.25 * (out[0] + out[2] - (out[0] - out[2]) ** 2)
-    else:
-        c = out[0] * out[2]
+    c = 0.25 * (out[0] + out[2] - (out[0] - out[2]) ** 2) if draws else out[0] * out[2]
     return out[4] * out[4] * c
 
 

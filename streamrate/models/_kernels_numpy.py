@@ -98,12 +98,10 @@ def _forward(e: int, a: dict[str, Any]) -> dict[str, Any]:
         else:
             theta += float(((aB - cA) ** 2 - (aA - cB) ** 2).sum())
     theta = min(max(theta, -THETA_CLIP), THETA_CLIP)
-    kappa, V = 1.0, 0.0
-    if cfg[8]:
-        kappa, V = _widening(e, a, now)
+    kappa, var = _widening(e, a, now) if cfg[8] else (1.0, 0.0)
     p = _probs(kappa * theta, float(a["sc"][1]), draws)
     return {"sides": sides, "gate": gate, "EA": EA, "EB": EB, "p": p, "now": now,
-            "ci": ci, "cv": cv, "kappa": kappa, "V": V}  # fmt: skip
+            "ci": ci, "cv": cv, "kappa": kappa, "V": var}  # fmt: skip
 
 
 def _probs(theta: float, eta: float, draws: int) -> tuple[float, float, float]:
@@ -113,11 +111,8 @@ def _probs(theta: float, eta: float, draws: int) -> tuple[float, float, float]:
         ew, el, en = math.exp(u - au), math.exp(-u - au), math.exp(eta - au)
         tot = ew + el + en
         return (ew / tot, en / tot, el / tot)
-    pw = (
-        1.0 / (1.0 + math.exp(-theta))
-        if theta >= 0
-        else math.exp(theta) / (1.0 + math.exp(theta))
-    )
+    ez = math.exp(-abs(theta))
+    pw = 1.0 / (1.0 + ez) if theta >= 0 else ez / (1.0 + ez)
     return (pw, 0.0, 1.0 - pw)
 
 
@@ -308,8 +303,8 @@ def predict_seq(first: Arr, second: Arr, n1: Arr, n2: Arr, ctx_idx: Arr, ctx_val
     """Probabilities of every event from the current state; changes nothing."""
     a = {"first": first, "second": second, "n1": n1, "n2": n2, "ctx_idx": ctx_idx,
          "ctx_val": ctx_val, "time_s": time_s, "feat_idx": feat_idx, "feat_val": feat_val,
-         "own": own, "acc": acc, "last_t": last_t, "fs_idx": fs_idx, "fs_val": fs_val, "W": W, "G": G,
-         "H": H, "sc": sc, "cfg": cfg, "hyp": hyp}  # fmt: skip
+         "own": own, "acc": acc, "last_t": last_t, "fs_idx": fs_idx, "fs_val": fs_val, "W": W,
+         "G": G, "H": H, "sc": sc, "cfg": cfg, "hyp": hyp}  # fmt: skip
     for e in range(first.shape[0]):
         p = _forward(e, a)["p"]
         p_out[e, 0], p_out[e, 1] = p[0], p[1]

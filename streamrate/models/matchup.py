@@ -26,6 +26,34 @@ each member's input of ``W`` (with no entity features: a learned linear map of
 ``z`` added to every entity's parameters); ``"gated"`` multiplies blade and chest
 element-wise by ``1 + G z``; ``"none"`` uses ``z`` for the advantage only.
 
+**Uncertainty** (``uncertainty=True``, the default; the strength term only). Each
+entity's strength offset is Gaussian, ``s_i ~ N(mu_i, v_i)``; ``v_i`` is kept in
+``acc[i, 0]`` (where the AdaGrad sum of the strength would be). Before a match,
+``v_i`` grows by ``noise_per_day`` per day since the entity's last match (a random
+walk, capped at ``prior_var``, the variance of a newcomer). With member weights
+``x_j = 1/|A|`` (first side) and ``-1/|B|`` and ``V = sum_j x_j^2 v_j``, the logit
+``theta`` is integrated over ``N(theta, V)`` by the probit approximation:
+``kappa = 1 / sqrt(1 + pi V / 8)``, the forecast uses ``kappa * theta``, so newcomers
+and long-idle entities get humbler probabilities. The update follows the approach
+of 'A Bayesian Approximation Method for Online Ranking' (JMLR 2011): expand the
+widened log likelihood to second order at the prior mean, gradient
+``g = kappa (y - p)`` and curvature ``w = kappa^2 p (1 - p)`` (for Davidson's draws
+``w = kappa^2 (p_w + p_l - (p_w - p_l)^2) / 4``); the Gaussian prior times this
+quadratic is Gaussian with, along ``x`` (rank one, Sherman-Morrison),
+``Sigma' = Sigma - w Sigma x x' Sigma / (1 + w V)`` and mean step
+``Sigma x g / (1 + w V)``. Keeping the diagonal, with ``R_j = V - x_j^2 v_j``::
+
+    v_j' = v_j / (1 + v_j a_j),   a_j = w x_j^2 / (1 + w R_j)
+    mu_j' = mu_j + v_j' x_j g / (1 + w R_j)
+
+(equal to the rank-one formulas; in this information form a mini-batch sums
+``a_j`` and ``x_j g / (1 + w R_j)`` over its events, so a batch of one is the
+sequential step). ``v_j`` thus sets the entity's step size in place of AdaGrad's.
+Blade and chest vectors keep AdaGrad steps; their gradients carry the factor
+``kappa``. Defaults ``prior_var = 0.3`` and ``noise_per_day = 1e-4`` were chosen
+on the first 80% of the football results only (they also do well on the
+simulated worlds).
+
 Learning is SGD on the negative log likelihood with AdaGrad step sizes (float32
 sums per entity parameter), optional forgetting (own offsets shrink by
 ``exp(-forget_per_day * idle_days)`` when an entity plays again) and a
@@ -120,7 +148,9 @@ class MatchupModel(Model):
     "auto"/"numba"/"numpy"; ``scale_numbers`` numbers of the context and of the
     features enter as standard scores from a running mean and deviation per
     field (:class:`~streamrate.encode.RunningScale`, kept in the state), so that
-    their units do not matter.
+    their units do not matter; ``uncertainty`` a Gaussian strength per entity
+    (module docstring) with newcomer variance ``prior_var`` and growth
+    ``noise_per_day`` per idle day (ignored with ``strength=False``).
 
     Defaults were picked on synthetic worlds (tests and bench): with 60 entities
     and 3000-4000 matches, blade-chest d=8..16 reaches prequential log loss near
@@ -159,8 +189,8 @@ class MatchupModel(Model):
         backend: str = "auto",
         scale_numbers: bool = True,
         uncertainty: bool = True,
-        prior_var: float = 1.0,
-        noise_per_day: float = 0.002,
+        prior_var: float = 0.3,
+        noise_per_day: float = 1e-4,
     ) -> None:
         if dims < 0 or (dims == 0 and not strength):
             raise ConfigError("dims must be >= 0, and dims == 0 needs strength=True")
