@@ -44,7 +44,8 @@ def test_unknown_entity_gets_a_prior_from_its_features() -> None:
         p = {("rush", "hold"): 0.85, ("hold", "rush"): 0.15}.get((styles[a], styles[b]), 0.5)
         feats = {a: {"style": styles[a]}, b: {"style": styles[b]}}
         evs.append(_ev(k, a, b, float(rng.random() < p), features=feats))
-    m = BradleyTerry(feature_width=16, advantage=False)
+    # the prior's mean is what is checked: the newcomer's uncertainty would widen it
+    m = BradleyTerry(feature_width=16, advantage=False, uncertainty=False)
     m.learn_many(evs)
     plain = m.predict(Matchup(first=("newcomer",), second=("stranger",))).p_win
     rush = m.predict(

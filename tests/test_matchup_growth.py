@@ -28,7 +28,8 @@ def test_rows_are_initialised_in_chunks_and_reserved_ahead() -> None:
     want = 0.1 * hashed_uniform(m.seed, 0, ready, 8)
     np.testing.assert_allclose(m.own_[:ready, 1:], want.astype(np.float32), rtol=0, atol=0)
     assert np.all(m.own_[:ready, 0] == 0.0)
-    assert np.all(m.acc_[:ready] == np.float32(m.accum_init))
+    assert np.all(m.acc_[:ready, 1:] == np.float32(m.accum_init))
+    assert np.all(m.acc_[:ready, 0] == np.float32(m.prior_var))  # the strength's variance
     assert np.all(np.isnan(m.last_s_[:ready]))
     assert np.all(m.feat_idx_[:ready] == -1)
     assert not m.own_[ready:].any() and not m.acc_[ready:].any()

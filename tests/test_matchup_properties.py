@@ -118,5 +118,9 @@ def test_a_team_of_one_is_the_entity(dims: int, scores: list[float]) -> None:
     a_k, c_k = v_k[1 : 1 + dims], v_k[1 + dims :]
     a_m, c_m = v_m[1 : 1 + dims], v_m[1 + dims :]
     theta = (v_k[0] - v_m[0]) + a_k @ c_m - a_m @ c_k + one.sc_[0]
+    # both played the last match, so no idle time: the logit is widened by the stored
+    # variances (probit approximation, kappa = 1 / sqrt(1 + pi V / 8))
+    var = one.strength_variance("kestrel") + one.strength_variance("marlow")  # type: ignore[operator]
+    theta /= np.sqrt(1.0 + np.pi * var / 8.0)
     p = one.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win
     assert p == pytest.approx(1.0 / (1.0 + np.exp(-theta)), rel=1e-9)

@@ -141,12 +141,19 @@ def _event(
         else:
             theta += (aB - cA) ** 2 - (aA - cB) ** 2
     theta = min(max(theta, -THETA_CLIP), THETA_CLIP)
+    out[3], out[4], out[5] = theta, 1.0, 0.0  # logit, widening factor, its variance
+    _probs(theta, sc[1], draws, out)
+
+
+@njit(cache=True, _nrt=False)
+def _probs(theta, eta, draws, out):
+    """(p_win, p_draw, p_loss) of logit ``theta`` into ``out[0:3]``."""
     if draws:
         u = 0.5 * theta
         au = abs(u)
         ew = math.exp(u - au)
         el = math.exp(-u - au)
-        en = math.exp(sc[1] - au)
+        en = math.exp(eta - au)
         tot = ew + el + en
         out[0], out[1], out[2] = ew / tot, en / tot, el / tot
     else:
@@ -187,6 +194,7 @@ def _grads(
         gsc[1] += pd - (1.0 if y == 0.5 else 0.0)
     else:
         gth = pw - y
+    gth *= out[4]  # d(widened logit)/d(logit); 1 without uncertainty
     if hyp[6] > 0.0:
         gsc[0] += gth
     for t in range(D):
@@ -321,6 +329,65 @@ def _store_features(r, e, m, fs_idx, fs_val, feat_idx, feat_val):
             fs_val[r, f] = 0.0
 
 
+@njit(cache=True, _nrt=False)
+def _v_eff(r, now, acc, last_t, hyp):
+    """Strength variance of row ``r`` at time ``now``: stored, plus noise for idle days.
+
+    ``acc[r, 0]`` holds the variance when uncertainty is on; an unknown row has
+    the prior variance ``hyp[8]``; growth is ``hyp[9]`` per idle day, capped at it.
+    """
+    if r < 0:
+        return hyp[8]
+    v = np.float64(acc[r, 0])
+    if last_t.shape[0] > 0 and not math.isnan(now):
+        lt = last_t[r]
+        if not math.isnan(lt) and now > lt:
+            v = min(v + hyp[9] * (now - lt) / 86400.0, max(v, hyp[8]))
+    return v
+
+
+@njit(cache=True, _nrt=False)
+def _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out):
+    """Integrate the logit ``out[3]`` over the strengths' uncertainty (probit approximation)."""
+    now = time_s[e]
+    if math.isnan(now):
+        now = hyp[5]
+    V = 0.0
+    for side in range(2):
+        rows = first if side == 0 else second
+        n = n1[e] if side == 0 else n2[e]
+        inv = 1.0 / n
+        for j in range(n):
+            V += _v_eff(rows[e, j], now, acc, last_t, hyp) * inv * inv
+    k = 1.0 / math.sqrt(1.0 + math.pi * V / 8.0)
+    out[4], out[5] = k, V
+    _probs(k * out[3], sc[1], cfg[4], out)
+
+
+@njit(cache=True, _nrt=False)
+def _curv(out, draws):
+    """Curvature of the event's negative log likelihood in the (unwidened) logit."""
+    c = 0.25 * (out[0] + out[2] - (out[0] - out[2]) ** 2) if draws else out[0] * out[2]
+    return out[4] * out[4] * c
+
+
+@njit(cache=True, _nrt=False)
+def _u_terms(inv, v, h, V):
+    """(gradient scale, information) of a member with variance ``v`` and weight ``inv``."""
+    den = 1.0 + h * (V - v * inv * inv)
+    return 1.0 / den, h * inv * inv / den
+
+
+@njit(cache=True, _nrt=False)
+def _u_store(r, now, mu0, v, gsum, info, own, acc, last_t):
+    """Gaussian update of row ``r``'s strength: ``v' = v / (1 + v info)``, mean ``-v' gsum``."""
+    vn = v / (1.0 + v * info)
+    own[r, 0] = mu0 - vn * gsum
+    acc[r, 0] = vn
+    if last_t.shape[0] > 0 and not math.isnan(now):
+        last_t[r] = now
+
+
 # The public kernels below allocate scratch space and hand it to loops compiled
 # with ``_nrt=False``: without that, every helper call in the per-event loop pays
 # atomic reference counting on ~30 arrays, which costs more than the arithmetic.
@@ -345,7 +412,7 @@ def _scratch(first, second, ctx_idx, feat_idx, fs_idx, W, G, H, cfg):
         np.zeros(K, dtype=np.int32),  # ncols
         np.zeros((6, D)),  # VA, VB, EA, EB, dEA, dEB
         np.zeros((2, max(2 * d, 1))),  # gate, gg
-        np.zeros(3),  # out
+        np.zeros(6),  # out: p_win, p_draw, p_loss, logit, widening, its variance
         np.zeros(W.shape),  # gW
         np.zeros(G.shape),  # gG
         np.zeros(H.shape),  # gH
@@ -373,6 +440,8 @@ def _learn_seq_loop(
         _event(e, first, second, n1, n2, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
                own, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp,
                od, base, q, cols, vals, ncols, VA, VB, EA, EB, gate, out)  # fmt: skip
+        if cfg[8]:
+            _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out)
         p_out[e, 0] = out[0]
         p_out[e, 1] = out[1]
         nW, nC = _grads(e, first, second, n1, n2, ctx_idx, ctx_val, score, cfg, hyp,
@@ -380,16 +449,27 @@ def _learn_seq_loop(
                         dEA, dEB, gg, gm, gW, gG, gH, gsc, markW, listW, 0,
                         markC, listC, 0)  # fmt: skip
         now = time_s[e]
+        nowr = hyp[5] if math.isnan(now) else now
+        h = _curv(out, cfg[4])
         for side in range(2):
             rows = first if side == 0 else second
             n = n1[e] if side == 0 else n2[e]
             off = 0 if side == 0 else k1
             for j in range(n):
                 r = rows[e, j]
-                if r >= 0:
+                if r >= 0 and cfg[8]:
+                    v = _v_eff(r, nowr, acc, last_t, hyp)
+                    gs, info = _u_terms(1.0 / n, v, h, out[5])
+                    mu0, g0 = od[off + j, 0], gm[off + j, 0]
                     _store_member(
                         r, now, od[off + j], gm[off + j], own, acc, last_t, lr, hyp[7], so
                     )
+                    _u_store(r, nowr, mu0, v, g0 * gs, info, own, acc, last_t)
+                elif r >= 0:
+                    _store_member(
+                        r, now, od[off + j], gm[off + j], own, acc, last_t, lr, hyp[7], so
+                    )
+                if r >= 0:
                     _store_features(r, e, off + j, fs_idx, fs_val, feat_idx, feat_val)
         _apply_shared(W, AW, G, AG, H, AH, sc, asc, gW, gG, gH, gsc, markW, listW, nW,
                       markC, listC, nC, cfg, hyp)  # fmt: skip
@@ -415,7 +495,7 @@ def learn_seq(
 @leaf
 def _predict_loop(
     first, second, n1, n2, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
-    own, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp, p_out,
+    own, acc, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp, p_out,
     od, base, q, cols, vals, ncols, V6, gate2, out,
 ):  # fmt: skip
     VA, VB, EA, EB = V6[0], V6[1], V6[2], V6[3]
@@ -424,6 +504,8 @@ def _predict_loop(
         _event(e, first, second, n1, n2, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
                own, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp,
                od, base, q, cols, vals, ncols, VA, VB, EA, EB, gate, out)  # fmt: skip
+        if cfg[8]:
+            _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out)
         p_out[e, 0] = out[0]
         p_out[e, 1] = out[1]
 
@@ -431,13 +513,13 @@ def _predict_loop(
 @kernel
 def predict_seq(
     first, second, n1, n2, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
-    own, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp, p_out,
+    own, acc, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp, p_out,
 ):  # fmt: skip
     """Probabilities of every event from the current state; changes nothing."""
     sc_ = _scratch(first, second, ctx_idx, feat_idx, fs_idx, W, G, H, cfg)
     _predict_loop(
         first, second, n1, n2, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
-        own, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp, p_out,
+        own, acc, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp, p_out,
         sc_[0], sc_[1], sc_[2], sc_[4], sc_[5], sc_[6], sc_[7], sc_[8], sc_[9],
     )  # fmt: skip
 
@@ -446,7 +528,7 @@ def predict_seq(
 def _minibatch_loop(
     first, second, n1, n2, score, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
     own, acc, last_t, fs_idx, fs_val, W, AW, G, AG, H, AH, sc, asc, cfg, hyp, p_out,
-    uniq, loc1, loc2, gown, tmax, last_e, last_m, row,
+    uniq, loc1, loc2, gown, tmax, last_e, last_m, row, uinfo,
     od, base, q, gm, cols, vals, ncols, V6, gate2, out, gW, gG, gH, gsc,
     markW, listW, markC, listC,
 ):  # fmt: skip
@@ -461,6 +543,8 @@ def _minibatch_loop(
         _event(e, first, second, n1, n2, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
                own, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp,
                od, base, q, cols, vals, ncols, VA, VB, EA, EB, gate, out)  # fmt: skip
+        if cfg[8]:
+            _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out)
         p_out[e, 0] = out[0]
         p_out[e, 1] = out[1]
         nW, nC = _grads(e, first, second, n1, n2, ctx_idx, ctx_val, score, cfg, hyp,
@@ -468,8 +552,11 @@ def _minibatch_loop(
                         dEA, dEB, gg, gm, gW, gG, gH, gsc, markW, listW, nW,
                         markC, listC, nC)  # fmt: skip
         now = time_s[e]
+        nowr = hyp[5] if math.isnan(now) else now
+        h = _curv(out, cfg[4])
         for side in range(2):
             locs = loc1 if side == 0 else loc2
+            rows = first if side == 0 else second
             n = n1[e] if side == 0 else n2[e]
             off = 0 if side == 0 else k1
             for j in range(n):
@@ -478,6 +565,11 @@ def _minibatch_loop(
                     continue
                 for t in range(D):
                     gown[u, t] += gm[off + j, t]
+                if cfg[8]:
+                    v = _v_eff(rows[e, j], nowr, acc, last_t, hyp)
+                    gs, info = _u_terms(1.0 / n, v, h, out[5])
+                    uinfo[u, 0] += gm[off + j, 0] * gs
+                    uinfo[u, 1] += info
                 if not math.isnan(now) and (math.isnan(tmax[u]) or now > tmax[u]):
                     tmax[u] = now
                 if has_ef and feat_idx[e, off + j, 0] >= 0:
@@ -495,7 +587,13 @@ def _minibatch_loop(
                 dec = math.exp(-forget * (now - lt) / 86400.0)
         for t in range(D):
             row[t] = own[r, t] * dec
-        _store_member(r, now, row, gown[u], own, acc, last_t, lr, hyp[7], so)
+        if cfg[8]:
+            nowr = hyp[5] if math.isnan(now) else now
+            v = _v_eff(r, nowr, acc, last_t, hyp)
+            _store_member(r, now, row, gown[u], own, acc, last_t, lr, hyp[7], so)
+            _u_store(r, nowr, row[0], v, uinfo[u, 0], uinfo[u, 1], own, acc, last_t)
+        else:
+            _store_member(r, now, row, gown[u], own, acc, last_t, lr, hyp[7], so)
         if last_e[u] >= 0:
             _store_features(r, last_e[u], last_m[u], fs_idx, fs_val, feat_idx, feat_val)
     _apply_shared(W, AW, G, AG, H, AH, sc, asc, gW, gG, gH, gsc, markW, listW, nW,
@@ -525,6 +623,7 @@ def learn_minibatch(
         own, acc, last_t, fs_idx, fs_val, W, AW, G, AG, H, AH, sc, asc, cfg, hyp, p_out,
         uniq, loc1, loc2, np.zeros((U, D)), np.full(U, np.nan),
         np.full(U, -1, dtype=np.int64), np.full(U, -1, dtype=np.int64), np.zeros(D),
+        np.zeros((U, 2)),
         sc_[0], sc_[1], sc_[2], sc_[3], sc_[4], sc_[5], sc_[6], sc_[7], sc_[8], sc_[9],
         sc_[10], sc_[11], sc_[12], sc_[13], sc_[14], sc_[15], sc_[16], sc_[17],
     )  # fmt: skip

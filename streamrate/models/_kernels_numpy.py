@@ -98,21 +98,65 @@ def _forward(e: int, a: dict[str, Any]) -> dict[str, Any]:
         else:
             theta += float(((aB - cA) ** 2 - (aA - cB) ** 2).sum())
     theta = min(max(theta, -THETA_CLIP), THETA_CLIP)
+    kappa, var = _widening(e, a, now) if cfg[8] else (1.0, 0.0)
+    p = _probs(kappa * theta, float(a["sc"][1]), draws)
+    return {"sides": sides, "gate": gate, "EA": EA, "EB": EB, "p": p, "now": now,
+            "ci": ci, "cv": cv, "kappa": kappa, "V": var}  # fmt: skip
+
+
+def _probs(theta: float, eta: float, draws: int) -> tuple[float, float, float]:
     if draws:
         u = 0.5 * theta
         au = abs(u)
-        ew, el, en = math.exp(u - au), math.exp(-u - au), math.exp(a["sc"][1] - au)
+        ew, el, en = math.exp(u - au), math.exp(-u - au), math.exp(eta - au)
         tot = ew + el + en
-        p = (ew / tot, en / tot, el / tot)
-    else:
-        pw = (
-            1.0 / (1.0 + math.exp(-theta))
-            if theta >= 0
-            else math.exp(theta) / (1.0 + math.exp(theta))
-        )
-        p = (pw, 0.0, 1.0 - pw)
-    return {"sides": sides, "gate": gate, "EA": EA, "EB": EB, "p": p, "now": now,
-            "ci": ci, "cv": cv}  # fmt: skip
+        return (ew / tot, en / tot, el / tot)
+    ez = math.exp(-abs(theta))
+    pw = 1.0 / (1.0 + ez) if theta >= 0 else ez / (1.0 + ez)
+    return (pw, 0.0, 1.0 - pw)
+
+
+def _v_eff(r: int, now: float, a: dict[str, Any]) -> float:
+    """Strength variance of row ``r`` at ``now`` (see ``_kernels._v_eff``)."""
+    hyp = a["hyp"]
+    if r < 0:
+        return float(hyp[8])
+    v = float(a["acc"][r, 0])
+    last_t = a["last_t"]
+    if last_t.shape[0] > 0 and not math.isnan(now):
+        lt = float(last_t[r])
+        if not math.isnan(lt) and now > lt:
+            v = min(v + hyp[9] * (now - lt) / 86400.0, max(v, hyp[8]))
+    return v
+
+
+def _widening(e: int, a: dict[str, Any], now: float) -> tuple[float, float]:
+    V = 0.0
+    for rows, n in ((a["first"], a["n1"][e]), (a["second"], a["n2"][e])):
+        for j in range(int(n)):
+            V += _v_eff(int(rows[e, j]), now, a) / (float(n) * float(n))
+    return 1.0 / math.sqrt(1.0 + math.pi * V / 8.0), V
+
+
+def _curv(f: dict[str, Any], draws: int) -> float:
+    pw, _, pl = f["p"]
+    c = 0.25 * (pw + pl - (pw - pl) ** 2) if draws else pw * pl
+    return float(f["kappa"] ** 2 * c)
+
+
+def _u_terms(n: int, v: float, h: float, V: float) -> tuple[float, float]:
+    w = 1.0 / (float(n) * float(n))
+    den = 1.0 + h * (V - v * w)
+    return 1.0 / den, h * w / den
+
+
+def _u_store(a: dict[str, Any], r: int, now: float, mu0: float, v: float, gsum: float,
+             info: float) -> None:  # fmt: skip
+    vn = v / (1.0 + v * info)
+    a["own"][r, 0] = mu0 - vn * gsum
+    a["acc"][r, 0] = vn
+    if a["last_t"].shape[0] > 0 and not math.isnan(now):
+        a["last_t"][r] = now
 
 
 def _backward(e: int, a: dict[str, Any], f: dict[str, Any], g: dict[str, Any]) -> list[Any]:
@@ -127,6 +171,7 @@ def _backward(e: int, a: dict[str, Any], f: dict[str, Any], g: dict[str, Any]) -
         g["sc"][1] += pd - (1.0 if y == 0.5 else 0.0)
     else:
         gth = pw - y
+    gth *= f["kappa"]
     if hyp[6] > 0.0:
         g["sc"][0] += gth
     EA, EB = f["EA"], f["EB"]
@@ -162,7 +207,7 @@ def _backward(e: int, a: dict[str, Any], f: dict[str, Any], g: dict[str, Any]) -
                 dq = db * (1.0 - np.tanh(q) ** 2) if tanh_on else db
                 np.add.at(g["W"].T, cols, np.outer(vals, dq))
                 g["touchW"].update(cols.tolist())
-            members.append((r, m, od, gm))
+            members.append((r, m, od, gm, n))
     return members
 
 
@@ -227,13 +272,23 @@ def learn_seq(*args: Arr) -> None:
     a = dict(zip(_NAMES, args[:-1], strict=True))
     p_out = args[-1]
     hyp = a["hyp"]
+    uncertain = bool(a["cfg"][8])
     for e in range(a["first"].shape[0]):
         f = _forward(e, a)
         p_out[e, 0], p_out[e, 1] = f["p"][0], f["p"][1]
         g = _grad_buffers(a)
-        for r, m, od, gm in _backward(e, a, f, g):
+        now = float(a["time_s"][e])
+        nowr = float(hyp[5]) if math.isnan(now) else now
+        h = _curv(f, int(a["cfg"][4]))
+        for r, m, od, gm, n in _backward(e, a, f, g):
             if r >= 0:
-                _store_member(a, r, float(a["time_s"][e]), od, gm)
+                if uncertain:
+                    v = _v_eff(r, nowr, a)
+                    gs, info = _u_terms(n, v, h, f["V"])
+                    _store_member(a, r, now, od, gm)
+                    _u_store(a, r, nowr, float(od[0]), v, float(gm[0]) * gs, info)
+                else:
+                    _store_member(a, r, now, od, gm)
                 _store_features(a, r, e, m)
         _apply_shared(a, g)
         now = float(a["time_s"][e])
@@ -242,14 +297,14 @@ def learn_seq(*args: Arr) -> None:
 
 
 def predict_seq(first: Arr, second: Arr, n1: Arr, n2: Arr, ctx_idx: Arr, ctx_val: Arr,
-                time_s: Arr, feat_idx: Arr, feat_val: Arr, own: Arr, last_t: Arr, fs_idx: Arr,
-                fs_val: Arr, W: Arr, G: Arr, H: Arr, sc: Arr, cfg: Arr, hyp: Arr,
+                time_s: Arr, feat_idx: Arr, feat_val: Arr, own: Arr, acc: Arr, last_t: Arr,
+                fs_idx: Arr, fs_val: Arr, W: Arr, G: Arr, H: Arr, sc: Arr, cfg: Arr, hyp: Arr,
                 p_out: Arr) -> None:  # fmt: skip
     """Probabilities of every event from the current state; changes nothing."""
     a = {"first": first, "second": second, "n1": n1, "n2": n2, "ctx_idx": ctx_idx,
          "ctx_val": ctx_val, "time_s": time_s, "feat_idx": feat_idx, "feat_val": feat_val,
-         "own": own, "last_t": last_t, "fs_idx": fs_idx, "fs_val": fs_val, "W": W, "G": G,
-         "H": H, "sc": sc, "cfg": cfg, "hyp": hyp}  # fmt: skip
+         "own": own, "acc": acc, "last_t": last_t, "fs_idx": fs_idx, "fs_val": fs_val, "W": W,
+         "G": G, "H": H, "sc": sc, "cfg": cfg, "hyp": hyp}  # fmt: skip
     for e in range(first.shape[0]):
         p = _forward(e, a)["p"]
         p_out[e, 0], p_out[e, 1] = p[0], p[1]
@@ -268,15 +323,23 @@ def learn_minibatch(*args: Arr) -> None:
     g = _grad_buffers(a)
     k1 = a["first"].shape[1]
     fi = a["feat_idx"]
+    uncertain = bool(a["cfg"][8])
+    uinfo = np.zeros((U, 2))
     for e in range(a["first"].shape[0]):
         f = _forward(e, a)
         p_out[e, 0], p_out[e, 1] = f["p"][0], f["p"][1]
         now = float(a["time_s"][e])
-        for r, m, _, gm in _backward(e, a, f, g):
+        nowr = float(hyp[5]) if math.isnan(now) else now
+        h = _curv(f, int(a["cfg"][4]))
+        for r, m, _, gm, n in _backward(e, a, f, g):
             if r < 0:
                 continue
             u = int(loc1[e, m] if m < k1 else loc2[e, m - k1])
             gown[u] += gm
+            if uncertain:
+                gs, info = _u_terms(n, _v_eff(r, nowr, a), h, f["V"])
+                uinfo[u, 0] += float(gm[0]) * gs
+                uinfo[u, 1] += info
             if not math.isnan(now) and (math.isnan(tmax[u]) or now > tmax[u]):
                 tmax[u] = now
             if fi.shape[0] > 0 and fi.shape[2] > 0 and fi[e, m, 0] >= 0:
@@ -289,7 +352,14 @@ def learn_minibatch(*args: Arr) -> None:
             lt = a["last_t"][r]
             if not math.isnan(lt) and now > lt:
                 dec = math.exp(-hyp[4] * (now - lt) / 86400.0)
-        _store_member(a, r, now, a["own"][r].astype(np.float64) * dec, gown[u])
+        row = a["own"][r].astype(np.float64) * dec
+        if uncertain:
+            nowr = float(hyp[5]) if math.isnan(now) else now
+            v = _v_eff(r, nowr, a)
+            _store_member(a, r, now, row, gown[u])
+            _u_store(a, r, nowr, float(row[0]), v, float(uinfo[u, 0]), float(uinfo[u, 1]))
+        else:
+            _store_member(a, r, now, row, gown[u])
         if u in last_em:
             _store_features(a, r, *last_em[u])
     _apply_shared(a, g)

@@ -1,0 +1,122 @@
+"""Per-entity uncertainty of the matchup models' strengths: the update, time, state."""
+
+from __future__ import annotations
+
+import itertools
+import math
+from datetime import UTC, datetime, timedelta
+
+import numpy as np
+import pytest
+
+from streamrate.events import MatchEvent, Matchup
+from streamrate.models.base import ModelState
+from streamrate.models.matchup import BladeChest, BradleyTerry
+from streamrate.models.registry import model_from_state
+
+T0 = datetime(2026, 3, 1, tzinfo=UTC)
+
+
+def _ev(k: int, first: tuple[str, ...], second: tuple[str, ...], score: float,
+        days: float = 0.0) -> MatchEvent:  # fmt: skip
+    return MatchEvent(match_id=f"m{k}", finished_at=T0 + timedelta(days=days, minutes=k),
+                      first=first, second=second, score=score)  # fmt: skip
+
+
+def _sigmoid(x: float) -> float:
+    return 1.0 / (1.0 + math.exp(-x))
+
+
+@pytest.mark.parametrize("backend", ["numba", "numpy"])
+@pytest.mark.parametrize(("first", "second", "score"), [
+    (("kestrel",), ("marlow",), 1.0),
+    (("kestrel", "brisa"), ("marlow",), 0.0),
+    (("kestrel", "brisa"), ("marlow", "tindra", "oskel"), 0.5),
+])  # fmt: skip
+def test_one_update_matches_the_gaussian_posterior_by_matrix_inverse(
+    backend: str, first: tuple[str, ...], second: tuple[str, ...], score: float
+) -> None:
+    # Reference (our derivation in streamrate/models/matchup.py, in the spirit of
+    # 'A Bayesian Approximation Method for Online Ranking', JMLR 2011): prior N(0, v0 I),
+    # the widened log likelihood l(mu) = y ln p + (1-y) ln(1-p), p = sigmoid(kappa x.mu),
+    # replaced by its second-order expansion at the prior mean; the Gaussian posterior is
+    # then computed here by inverting the precision matrix (no rank-one formula), and
+    # its diagonal must equal the model's variances, its mean the model's strengths.
+    v0 = 0.7
+    m = BradleyTerry(prior_var=v0, l2=0.0, advantage=False, backend=backend)
+    m.learn(_ev(0, first, second, score))
+    x = np.array([1 / len(first)] * len(first) + [-1 / len(second)] * len(second))
+    kappa = 1.0 / math.sqrt(1.0 + math.pi * v0 * float(x @ x) / 8.0)
+    p = _sigmoid(0.0)
+    grad = kappa * (score - p) * x
+    curv = kappa**2 * p * (1 - p)
+    post = np.linalg.inv(np.eye(len(x)) / v0 + curv * np.outer(x, x))
+    mean = post @ grad
+    names = first + second
+    got_v = [m.strength_variance(e) for e in names]
+    got_m = [m.vectors(e)[0] for e in names]  # type: ignore[index]
+    np.testing.assert_allclose(got_v, np.diag(post), rtol=1e-6)
+    np.testing.assert_allclose(got_m, mean, rtol=1e-6, atol=1e-7)
+
+
+def test_one_entity_against_a_sure_opponent_is_the_conjugate_update() -> None:
+    # Against an opponent whose variance is (almost) zero the update is the conjugate
+    # Gaussian one with observation precision w = kappa^2 p (1 - p): 1/v' = 1/v + w
+    # (common practice: Laplace approximation of one logistic observation).
+    m = BradleyTerry(prior_var=2.0, advantage=False, l2=0.0, noise_per_day=0.0)
+    m.learn(_ev(0, ("anchor",), ("other",), 1.0))
+    m.acc_[m.entities_.get("anchor"), 0] = 0.0  # the anchor is now known for sure
+    m.learn(_ev(1, ("kestrel",), ("anchor",), 1.0))
+    mu_a = m.vectors("anchor")[0]  # type: ignore[index]
+    v, va = 2.0, m.strength_variance("anchor")
+    assert va == 0.0
+    kappa = 1.0 / math.sqrt(1.0 + math.pi * (v + va) / 8.0)
+    p = _sigmoid(kappa * (0.0 - mu_a))
+    w = kappa**2 * p * (1 - p)
+    assert m.strength_variance("kestrel") == pytest.approx(1.0 / (1.0 / v + w), rel=1e-6)
+
+
+@pytest.mark.parametrize("backend", ["numba", "numpy"])
+def test_an_idle_entity_drifts_toward_even_odds(backend: str) -> None:
+    def p_after_idle(days: float, uncertainty: bool) -> float:
+        m = BladeChest(dims=2, noise_per_day=1e-3, prior_var=1.0, uncertainty=uncertainty,
+                       backend=backend,
+                       advantage=False)  # fmt: skip
+        for k in range(30):
+            m.learn(_ev(k, ("kestrel",), ("marlow",), 1.0))
+        m.learn(_ev(99, ("brisa",), ("tindra",), 1.0, days=days))  # the clock moves on
+        return m.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win
+
+    ps = [p_after_idle(d, True) for d in (0.0, 10.0, 50.0, 200.0)]
+    assert all(a > b > 0.5 for a, b in itertools.pairwise(ps))
+    # without uncertainty the idle time changes nothing (so the test can fail)
+    flat = [p_after_idle(d, False) for d in (0.0, 200.0)]
+    assert flat[0] == flat[1]
+
+
+def test_a_newcomer_is_humbler_than_a_known_entity() -> None:
+    m = BradleyTerry()
+    for k in range(40):
+        m.learn(_ev(k, ("kestrel",), ("marlow",), float(k % 4 != 0)))
+    m.sc_[0] = 0.0  # no first-side advantage, to compare strengths alone
+    known = m.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win
+    m.own_[m.entities_.get("marlow"), 0] = 0.0  # a known zero strength ...
+    vs_known = m.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win
+    vs_new = m.predict(Matchup(first=("kestrel",), second=("stranger",))).p_win
+    assert known > vs_known > vs_new > 0.5  # ... is surer than an unknown one
+
+
+def test_a_version_2_state_loads_with_uncertainty_off() -> None:
+    old = BladeChest(dims=2, uncertainty=False)
+    for k in range(20):
+        old.learn(_ev(k, ("kestrel",), ("marlow",), float(k % 3 != 0)))
+    st = old.to_state()
+    params = {k: v for k, v in st.params.items()
+              if k not in ("uncertainty", "prior_var", "noise_per_day")}  # fmt: skip
+    arrays = {k: v for k, v in st.arrays.items() if k != "last_s"}
+    back = model_from_state(ModelState(st.kind, 2, params, arrays))
+    assert isinstance(back, BladeChest) and not back.uncertainty
+    q = Matchup(first=("kestrel",), second=("marlow",))
+    assert back.predict(q) == old.predict(q)
+    fresh = model_from_state(BladeChest(dims=2).to_state())
+    assert isinstance(fresh, BladeChest) and fresh.uncertainty
