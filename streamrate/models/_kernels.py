@@ -145,7 +145,7 @@ def _event(
     _probs(theta, sc[1], draws, out)
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _probs(theta, eta, draws, out):
     """(p_win, p_draw, p_loss) of logit ``theta`` into ``out[0:3]``."""
     if draws:
@@ -329,7 +329,7 @@ def _store_features(r, e, m, fs_idx, fs_val, feat_idx, feat_val):
             fs_val[r, f] = 0.0
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _v_eff(r, now, acc, last_t, hyp):
     """Strength variance of row ``r`` at time ``now``: stored, plus noise for idle days.
 
@@ -346,7 +346,7 @@ def _v_eff(r, now, acc, last_t, hyp):
     return v
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out):
     """Integrate the logit ``out[3]`` over the strengths' uncertainty (probit approximation)."""
     now = time_s[e]
@@ -364,21 +364,21 @@ def _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out):
     _probs(k * out[3], sc[1], cfg[4], out)
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _curv(out, draws):
     """Curvature of the event's negative log likelihood in the (unwidened) logit."""
     c = 0.25 * (out[0] + out[2] - (out[0] - out[2]) ** 2) if draws else out[0] * out[2]
     return out[4] * out[4] * c
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _u_terms(inv, v, h, V):
     """(gradient scale, information) of a member with variance ``v`` and weight ``inv``."""
     den = 1.0 + h * (V - v * inv * inv)
     return 1.0 / den, h * inv * inv / den
 
 
-@njit(cache=True, _nrt=False)
+@leaf
 def _u_store(r, now, mu0, v, gsum, info, own, acc, last_t):
     """Gaussian update of row ``r``'s strength: ``v' = v / (1 + v info)``, mean ``-v' gsum``."""
     vn = v / (1.0 + v * info)
