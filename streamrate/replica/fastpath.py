@@ -52,7 +52,11 @@ def single(model: Model) -> Single:
 
     if type(model) is Elo:
         return _elo_single(model)
-    if isinstance(model, MatchupModel) and model.feature_width == 0:
+    if (
+        isinstance(model, MatchupModel)
+        and model.feature_width == 0
+        and type(model).predict_encoded is MatchupModel.predict_encoded  # not redefined
+    ):
         return _matchup_single(model, general)
     return general
 
