@@ -2,6 +2,7 @@
 
     python bench/bench_readers.py            # about a minute
     python bench/bench_readers.py --quick    # fewer samples
+    python bench/bench_readers.py --only reader   # the in-process reader and GET only
 
 Starts its own ``redis-server`` on a free loopback port (no persistence) and
 stops it by its PID; runs ``streamrate serve --role writer`` and one, then two
@@ -181,7 +182,13 @@ def lag_samples(reader: LocalReader, r: redis.Redis, seconds: float) -> list[int
 def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--quick", action="store_true")
+    ap.add_argument(
+        "--only",
+        choices=["reader"],
+        help="reader: the in-process reader (one pairing, batch, lag) beside GET; no responders",
+    )
     args = ap.parse_args()
+    everything = args.only is None
     n = 300 if args.quick else 1500
     tmp = Path(tempfile.mkdtemp(prefix="bench-readers-"))
     proc, port = start_redis(tmp)
@@ -226,7 +233,7 @@ def main() -> None:
             rows.append((what, f"{p50 * unit:.3f} / {p99 * unit:.3f}",
                          f"{p50 / base[0]:.2f}x / {p99 / base[1]:.2f}x"))  # fmt: skip
 
-        for responders in (1, 2):
+        for responders in (1, 2) if everything else (0,):
             while len(procs) - 1 < responders:
                 log = tmp / f"responder-{len(procs)}.log"
                 procs.append(serve(cfg, "responder", log))
@@ -241,11 +248,13 @@ def main() -> None:
                 rows.append(
                     (f"GET round trip ({phase}, {responders} responder(s))", got, "1x / 1x")
                 )
-                line(f"responder pairing round trip, {responders} responder(s), {phase}",
-                     asker.rtts(reqs, stream=True), base)  # fmt: skip
-                if responders == 1:
-                    line(f"writer pub/sub pairing round trip (old path), {phase}",
-                         asker.rtts(reqs, stream=False), base)  # fmt: skip
+                if everything:
+                    line(f"responder pairing round trip, {responders} responder(s), {phase}",
+                         asker.rtts(reqs, stream=True), base)  # fmt: skip
+                if responders <= 1:
+                    if everything:
+                        line(f"writer pub/sub pairing round trip (old path), {phase}",
+                             asker.rtts(reqs, stream=False), base)  # fmt: skip
                     line(f"in-process reader, one pairing, rating model, {phase}",
                          reader_single(reader, pairs * 4), base)  # fmt: skip
                     line(f"in-process reader, one pairing, blade-chest d=16, {phase}",
@@ -262,8 +271,9 @@ def main() -> None:
                         rows.append((f"batch of 1,000 vs single, {name}, {phase}",
                                      f"{batch_rate:,.0f} vs {single_rate:,.0f} pairings/s",
                                      f"{batch_rate / single_rate:.1f}x"))  # fmt: skip
-                    lobby_rtt = asker.rtts([lobby] * (20 if args.quick else 60), stream=True)
-                    line(f"lobby of 100 from a responder, {phase}", lobby_rtt, base)
+                    if everything:
+                        lobby_rtt = asker.rtts([lobby] * (20 if args.quick else 60), stream=True)
+                        line(f"lobby of 100 from a responder, {phase}", lobby_rtt, base)
                 if phase == "loaded":
                     reader.follower.lag_ms.clear()
                     ev = lag_samples(reader, r, 3.0)

@@ -147,3 +147,81 @@ def test_fast_paths_equal_predict(picks: list[Any], kind: str) -> None:
     got_solo = fastpath.many(model, solo, {})
     want_solo = [model.predict(Matchup(first=tuple(a), second=tuple(b))).p_win for a, b in solo]
     np.testing.assert_allclose(got_solo, want_solo, rtol=1e-9, atol=1e-12)
+
+
+DRAW_WORLD = simulate(world_spec("plain", matches=300, entities=30, seed=11, draw_rate=0.15)).events
+CONTEXTS: list[dict[str, Any]] = [
+    {},
+    {"map": "glasswood"},
+    {"map": "glasswood", "mode": "duel"},
+    {"mode": "duel", "map": "unseen-map"},
+    {"map": "glasswood", "tier": 3.0},  # a number: the general path
+]
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    kind=st.sampled_from(["bradley_terry", "blade_chest", "blade_chest_dist"]),
+    dims=st.integers(1, 16),
+    uncertainty=st.booleans(),
+    draws=st.booleans(),
+    context=st.sampled_from(["none", "stacked", "gated"]),
+    context_width=st.sampled_from([0, 8]),
+    prior_map=st.sampled_from(["identity", "tanh"]),
+    forget=st.sampled_from([0.0, 0.3]),
+    advantage=st.booleans(),
+    trained=st.integers(0, 200),
+    picks=st.lists(
+        st.tuples(
+            st.lists(st.sampled_from([*IDS[:10], "new-a"]), min_size=1, max_size=2, unique=True),
+            st.lists(st.sampled_from([*IDS[10:20], "new-b"]), min_size=1, max_size=2, unique=True),
+            st.integers(0, len(CONTEXTS) - 1),
+        ),
+        min_size=1,
+        max_size=12,
+    ),
+)
+def test_matchup_fast_path_equals_predict(
+    kind: str,
+    dims: int,
+    uncertainty: bool,
+    draws: bool,
+    context: str,
+    context_width: int,
+    prior_map: str,
+    forget: float,
+    advantage: bool,
+    trained: int,
+    picks: list[Any],
+) -> None:
+    opts: dict[str, Any] = {
+        "uncertainty": uncertainty,
+        "draws": draws,
+        "context": context if context_width else "none",
+        "context_width": context_width,
+        "prior_map": prior_map,
+        "forget_per_day": forget,
+        "advantage": advantage,
+    }
+    if kind != "bradley_terry":
+        opts["dims"] = dims
+    model: Model = build_model(kind, **opts)
+    world = DRAW_WORLD if draws else WORLD
+    model.learn_many(world[:trained])
+    one = fastpath.single(model)  # built before more learning: it must see it
+    model.learn_many(world[trained : trained + 40])  # rows grow, newcomers arrive
+    for a, b, c in picks:
+        ctx = CONTEXTS[c]
+        want = model.predict(Matchup(first=tuple(a), second=tuple(b), context=ctx))
+        compiled = len(a) == len(b) == 1 and all(isinstance(v, str) for v in ctx.values())
+        if compiled:  # the direct path must not go through predict
+            model.predict = _refuse  # type: ignore[method-assign]
+        got = one(a, b, ctx)
+        model.__dict__.pop("predict", None)
+        assert got.p_win == pytest.approx(want.p_win, rel=1e-12, abs=1e-12)
+        assert got.p_draw == pytest.approx(want.p_draw, rel=1e-12, abs=1e-12)
+        assert (got.p_draw > 0) == draws
+
+
+def _refuse(matchup: Matchup) -> Any:
+    raise AssertionError(f"the general path answered {matchup}")
