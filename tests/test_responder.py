@@ -219,3 +219,58 @@ def test_a_stream_request_is_aged_at_its_turn_not_at_the_read(
     assert sr.step(r, block_ms=1) == 3
     assert slow.answered == ["q0", "q1"]  # q2 would have been answered 4 s after it was asked
     assert sr.dropped == 1
+
+
+def test_stream_answers_in_the_writers_process_count_against_the_cpu_share(
+    tmp_path: Path,
+) -> None:
+    """Role "both": the request stream's answers are charged to the query side's
+    CPU budget (which pauses the query threads when spent), like pub/sub answers."""
+    import streamrate.replica.request_stream as rs
+    from streamrate.config import ReplicaSettings
+    from streamrate.metrics import ServiceMetrics
+
+    r = fakeredis.FakeRedis()
+    settings = fake_settings(tmp_path, SpaceSettings(name="duel", model="elo"))
+    space = settings.spaces[0]
+    keys = settings.keys(space)
+
+    class Budget:
+        def __init__(self) -> None:
+            self.charged_s = 0.0
+
+        def charge(self, cpu_s: float, stop: threading.Event) -> float:
+            self.charged_s += cpu_s
+            return 0.0
+
+    class Busy:
+        def __init__(self) -> None:
+            self.budget = Budget()
+            self.answerer = Answerer(LiveModel(build_model("elo")), 10, 256)
+            self.answerer.view.status = "ready"  # type: ignore[misc]
+            self.burned_s = 0.0
+
+        def answer(self, raw: bytes) -> tuple[str, str]:
+            t0 = time.thread_time()
+            while time.thread_time() - t0 < 0.01:  # 10 ms of CPU per answer
+                pass
+            self.burned_s += time.thread_time() - t0
+            req = json.loads(raw)
+            return req["reply_to"], json.dumps({"id": req["id"], "ok": True})
+
+    busy = Busy()
+    metrics = ServiceMetrics(CollectorRegistry(), [space.name])
+    sr = rs.StreamResponder(
+        space, keys, ReplicaSettings(), cast(Responder, busy), metrics, share_cpu=True
+    )
+    sr.ensure_group(r)
+    for n in range(10):
+        req = {"kind": "pairing", "id": f"q{n}", "reply_to": f"{keys.reply_prefix}c:{n}"}
+        r.xadd(keys.request_stream, {"request": json.dumps(req)})
+    stop = threading.Event()
+    t = threading.Thread(target=sr.run, args=(stop, lambda: r, 0.01, 0.05), daemon=True)
+    t.start()
+    _wait(lambda: busy.burned_s >= 0.09, "ten answers")
+    stop.set()
+    t.join(10)
+    assert busy.budget.charged_s >= busy.burned_s

@@ -42,7 +42,7 @@ import redis
 from streamrate.config import ReplicaSettings, SpaceKeys, SpaceSettings
 from streamrate.metrics import ServiceMetrics
 from streamrate.queries import peek
-from streamrate.responder import Responder, busy_reply
+from streamrate.responder import Responder, _Meter, busy_reply
 from streamrate.stream.apply import now_ms
 
 log = logging.getLogger("streamrate.queries")
@@ -70,8 +70,13 @@ class StreamResponder:
         responder: Responder,
         metrics: ServiceMetrics,
         name: str | None = None,
+        share_cpu: bool = False,
     ) -> None:
         self.space, self.keys, self.settings = space, keys, settings
+        # In the writer's process (role "both") answers count against the query
+        # side's CPU share (``queries.cpu_share``), as the pub/sub answers do, so
+        # that a flood on the stream cannot take the consumer's interpreter time.
+        self.share_cpu = share_cpu
         self.responder, self.metrics = responder, metrics
         self.name = name or responder_name()
         self.ready = threading.Event()
@@ -158,6 +163,7 @@ class StreamResponder:
         delay = min_s
         while not stop.is_set():
             client = clients()
+            meter = _Meter(self.responder.budget) if self.share_cpu else None
             try:
                 self.ensure_group(client)
                 while not stop.is_set():
@@ -174,6 +180,8 @@ class StreamResponder:
                             self.name,
                         )
                     self.step(client)
+                    if meter is not None:
+                        meter.charge(stop)
                     delay = min_s
             except REDIS_DOWN as exc:
                 log.warning("space %s: request stream unreachable (%s)", self.space.name, exc)
