@@ -201,7 +201,7 @@ class SpaceService:
         self.stream: StreamResponder | None = None
         if role == "both":
             self.stream = StreamResponder(
-                space, self.keys, settings.replica, self.responder, metrics
+                space, self.keys, settings.replica, self.responder, metrics, share_cpu=True
             )
 
     def threads(self, stop: threading.Event) -> list[threading.Thread]:

@@ -7,7 +7,7 @@ import threading
 import time
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import fakeredis
 import numpy as np
@@ -180,3 +180,97 @@ def test_follow_skips_what_is_not_a_live_message() -> None:
     stop.set()
     t.join()
     assert got == [good]
+
+
+def test_a_stream_request_is_aged_at_its_turn_not_at_the_read(
+    monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
+    """Answering the start of a batch can outlast the age limit: what waited behind
+    it then gets "busy", not a late answer."""
+    import streamrate.replica.request_stream as rs
+    from streamrate.config import ReplicaSettings
+    from streamrate.metrics import ServiceMetrics
+
+    now = [1_000_000]
+    monkeypatch.setattr(rs, "now_ms", lambda: now[0])
+    r = fakeredis.FakeRedis()
+    settings = fake_settings(tmp_path, SpaceSettings(name="duel", model="elo"))
+    space = settings.spaces[0]
+    keys = settings.keys(space)
+
+    class SlowAnswers:
+        def __init__(self) -> None:
+            self.answered: list[str] = []
+
+        def answer(self, raw: bytes) -> tuple[str, str]:
+            now[0] += 2000  # each answer takes 2 s of the (fake) clock
+            req = json.loads(raw)
+            self.answered.append(req["id"])
+            return req["reply_to"], json.dumps({"id": req["id"], "ok": True})
+
+    slow = SlowAnswers()
+    metrics = ServiceMetrics(CollectorRegistry(), [space.name])
+    replica = ReplicaSettings(request_max_age_s=3.0)
+    sr = rs.StreamResponder(space, keys, replica, cast(Responder, slow), metrics, name="t")
+    sr.ensure_group(r)
+    for n in range(3):
+        req = {"kind": "pairing", "id": f"q{n}", "reply_to": f"{keys.reply_prefix}c:{n}"}
+        r.xadd(keys.request_stream, {"request": json.dumps(req)}, id=f"{now[0]}-{n}")
+    assert sr.step(r, block_ms=1) == 3
+    assert slow.answered == ["q0", "q1"]  # q2 would have been answered 4 s after it was asked
+    assert sr.dropped == 1
+
+
+def test_stream_answers_in_the_writers_process_count_against_the_cpu_share(
+    tmp_path: Path,
+) -> None:
+    """Role "both": the request stream's answers are charged to the query side's
+    CPU budget (which pauses the query threads when spent), like pub/sub answers."""
+    import streamrate.replica.request_stream as rs
+    from streamrate.config import ReplicaSettings
+    from streamrate.metrics import ServiceMetrics
+
+    r = fakeredis.FakeRedis()
+    settings = fake_settings(tmp_path, SpaceSettings(name="duel", model="elo"))
+    space = settings.spaces[0]
+    keys = settings.keys(space)
+
+    class Budget:
+        def __init__(self) -> None:
+            self.charged_s = 0.0
+
+        def charge(self, cpu_s: float, stop: threading.Event) -> float:
+            self.charged_s += cpu_s
+            return 0.0
+
+    class Busy:
+        def __init__(self) -> None:
+            self.budget = Budget()
+            self.answerer = Answerer(LiveModel(build_model("elo")), 10, 256)
+            self.answerer.view.status = "ready"  # type: ignore[misc]
+            self.burned_s = 0.0
+
+        def answer(self, raw: bytes) -> tuple[str, str]:
+            t0 = time.thread_time()
+            while time.thread_time() - t0 < 0.01:  # 10 ms of CPU per answer
+                pass
+            self.burned_s += time.thread_time() - t0
+            req = json.loads(raw)
+            return req["reply_to"], json.dumps({"id": req["id"], "ok": True})
+
+    busy = Busy()
+    metrics = ServiceMetrics(CollectorRegistry(), [space.name])
+    sr = rs.StreamResponder(
+        space, keys, ReplicaSettings(), cast(Responder, busy), metrics, share_cpu=True
+    )
+    sr.ensure_group(r)
+    for n in range(10):
+        req = {"kind": "pairing", "id": f"q{n}", "reply_to": f"{keys.reply_prefix}c:{n}"}
+        r.xadd(keys.request_stream, {"request": json.dumps(req)})
+    stop = threading.Event()
+    t = threading.Thread(target=sr.run, args=(stop, lambda: r, 0.01, 0.05), daemon=True)
+    t.start()
+    _wait(lambda: busy.burned_s >= 0.09, "ten answers")
+    stop.set()
+    t.join(10)
+    assert busy.budget.charged_s >= busy.burned_s

@@ -42,7 +42,7 @@ import redis
 from streamrate.config import ReplicaSettings, SpaceKeys, SpaceSettings
 from streamrate.metrics import ServiceMetrics
 from streamrate.serve.queries import peek
-from streamrate.serve.responder import Responder, busy_reply
+from streamrate.serve.responder import Responder, _Meter, busy_reply
 from streamrate.stream.apply import now_ms
 
 log = logging.getLogger("streamrate.queries")
@@ -70,8 +70,13 @@ class StreamResponder:
         responder: Responder,
         metrics: ServiceMetrics,
         name: str | None = None,
+        share_cpu: bool = False,
     ) -> None:
         self.space, self.keys, self.settings = space, keys, settings
+        # In the writer's process (role "both") answers count against the query
+        # side's CPU share (``queries.cpu_share``), as the pub/sub answers do, so
+        # that a flood on the stream cannot take the consumer's interpreter time.
+        self.share_cpu = share_cpu
         self.responder, self.metrics = responder, metrics
         self.name = name or responder_name()
         self.ready = threading.Event()
@@ -107,12 +112,13 @@ class StreamResponder:
 
     def _handle(self, client: Any, rows: list[tuple[bytes, dict[bytes, bytes]]]) -> None:
         max_age_ms = self.settings.request_max_age_s * 1000
-        now = now_ms()
         out: list[tuple[str, str]] = []
         for sid, fields in rows:
             raw = fields.get(REQUEST_FIELD, b"")
             cid, reply_to, kind = peek(raw)
-            age_ms = now - int(sid.split(b"-", 1)[0])
+            # Aged at its own turn, not at the read: answering the batch's earlier
+            # requests (a few large lobbies) can take longer than the age limit.
+            age_ms = now_ms() - int(sid.split(b"-", 1)[0])
             if age_ms > max_age_ms:
                 self.dropped += 1
                 self.metrics.query_shed.labels(space=self.space.name, reason="too_old").inc()
@@ -157,6 +163,7 @@ class StreamResponder:
         delay = min_s
         while not stop.is_set():
             client = clients()
+            meter = _Meter(self.responder.budget) if self.share_cpu else None
             try:
                 self.ensure_group(client)
                 while not stop.is_set():
@@ -173,6 +180,8 @@ class StreamResponder:
                             self.name,
                         )
                     self.step(client)
+                    if meter is not None:
+                        meter.charge(stop)
                     delay = min_s
             except REDIS_DOWN as exc:
                 log.warning("space %s: request stream unreachable (%s)", self.space.name, exc)
