@@ -13,7 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from prometheus_client import CollectorRegistry
 
-from streamrate.checkpoint import RedisCheckpointStore, decode_checkpoint
+from streamrate.checkpoint import Checkpoint, RedisCheckpointStore, decode_checkpoint
 from streamrate.config import Settings, SpaceSettings
 from streamrate.errors import StateError
 from streamrate.events import MatchEvent, event_to_json
@@ -93,6 +93,12 @@ def _drain(w: Writer) -> None:
             return
 
 
+def _stored(r: Any) -> Checkpoint:
+    data = r.get(KEYS.ckpt)
+    assert isinstance(data, bytes)
+    return decode_checkpoint(data, SPACE.dedupe_keep_ids, SPACE.dedupe_window_s)
+
+
 def _finish(w: Writer) -> None:
     """Let the save in flight end, then one step of the loop (which collects it)."""
     thread = w.checkpoints._thread
@@ -126,7 +132,7 @@ def test_acks_wait_until_the_checkpoint_is_durable() -> None:
     assert r.get(KEYS.ckpt) is None and w.checkpoints.ckpt_id == covered
     store.gate.set()
     _finish(w)  # completes the save: acknowledges what it covers, nothing more
-    ck = decode_checkpoint(r.get(KEYS.ckpt), SPACE.dedupe_keep_ids, SPACE.dedupe_window_s)
+    ck = _stored(r)
     assert 40 <= ck.applied < 80
     assert _pending(r) == 80 - ck.applied
     assert w.checkpoints.ckpt_id == ck.last_id
@@ -159,7 +165,7 @@ def test_a_failed_save_acknowledges_nothing_and_is_tried_again() -> None:
     _finish(w)
     assert store.saved == 1 and w.checkpoints.failures == 0
     assert _pending(r) == 0
-    ck = decode_checkpoint(r.get(KEYS.ckpt), SPACE.dedupe_keep_ids, SPACE.dedupe_window_s)
+    ck = _stored(r)
     assert ck.applied == 60
 
 
@@ -176,7 +182,7 @@ def test_the_final_checkpoint_waits_for_the_save_in_flight() -> None:
     threading.Timer(0.05, store.gate.set).start()
     w.close()  # waits for the save in flight, then stores the last five too
     assert not w.checkpoints.in_flight and _pending(r) == 0
-    ck = decode_checkpoint(r.get(KEYS.ckpt), SPACE.dedupe_keep_ids, SPACE.dedupe_window_s)
+    ck = _stored(r)
     assert ck.applied == 50 and store.saved == 2
 
 
