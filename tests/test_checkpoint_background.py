@@ -15,6 +15,7 @@ from prometheus_client import CollectorRegistry
 
 from streamrate.checkpoint import Checkpoint, RedisCheckpointStore, decode_checkpoint
 from streamrate.config import Settings, SpaceSettings
+from streamrate.encode import EntityTable
 from streamrate.errors import StateError
 from streamrate.events import MatchEvent, event_to_json
 from streamrate.metrics import ServiceMetrics
@@ -245,3 +246,22 @@ def test_any_crash_during_a_background_save_ends_in_the_uninterrupted_state(
         np.testing.assert_allclose(
             w.live.model.to_state().arrays[name], arr, rtol=1e-12, err_msg=name
         )
+
+
+@settings(max_examples=50, deadline=None)
+@given(
+    batches=st.lists(
+        st.lists(st.text(alphabet="abcé-_0", min_size=1, max_size=6), max_size=8), max_size=6
+    )
+)
+def test_entity_ids_saved_piecewise_equal_the_ids_joined_at_once(
+    batches: list[list[str]],
+) -> None:
+    """A checkpoint encodes only the ids added since the last one; the saved
+    bytes are those of all ids joined at once, and they load back."""
+    table = EntityTable()
+    for batch in batches:
+        table.rows(batch)
+        got = bytes(table.to_arrays()["entity_ids"])
+        assert got == "\n".join(table.ids).encode("utf-8")
+        assert EntityTable.from_arrays(table.to_arrays()).ids == table.ids
