@@ -163,6 +163,14 @@ class Checkpoint:
 
 
 def encode_checkpoint(ckpt: Checkpoint) -> bytes:
+    return state_to_bytes(*checkpoint_contents(ckpt))
+
+
+def checkpoint_contents(ckpt: Checkpoint) -> tuple[ModelState, dict[str, Any]]:
+    """What :func:`encode_checkpoint` writes: all arrays as one state, and the metadata.
+
+    Split from the encoding so that a writer can take these (cheaply, under its
+    lock) and encode and store them elsewhere."""
     arrays = dict(ckpt.state.arrays)
     for name, arr in ckpt.seen.to_arrays().items():
         arrays[_PREFIX + name] = arr
@@ -183,7 +191,7 @@ def encode_checkpoint(ckpt: Checkpoint) -> bytes:
         "parts": {name: part.meta for name, part in ckpt.parts.items()},
     }
     state = ModelState(ckpt.state.kind, ckpt.state.version, ckpt.state.params, arrays)
-    return state_to_bytes(state, extra)
+    return state, extra
 
 
 def decode_checkpoint(

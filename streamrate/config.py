@@ -202,6 +202,10 @@ class CheckpointSettings(BaseModel):
     model_config = _FROZEN
     store: Literal["file", "redis"] = "file"
     dir: Path = Path("checkpoints")
+    # Encode and store checkpoints in a thread of their own while the consumer goes
+    # on applying (the model lock is held only to copy the state); false: the
+    # consumer waits for each checkpoint to be stored.
+    background: bool = True
 
 
 DEFAULT_METRICS_PORT = 8564

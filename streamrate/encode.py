@@ -244,6 +244,10 @@ class EntityTable:
         self._rows: dict[str, int] = {}
         self._ids: list[str] = []
         self.counts = np.zeros(16, dtype=np.int32)  # int32: 4 bytes per entity matters at 10^6
+        # The ids saved so far, newline-joined UTF-8 (ids are only ever appended):
+        # a checkpoint encodes only the ids added since the last one.
+        self._blob = bytearray()
+        self._blob_n = 0
 
     def __len__(self) -> int:
         return len(self._ids)
@@ -292,9 +296,13 @@ class EntityTable:
 
     # -- persistence -----------------------------------------------------------------
     def to_arrays(self) -> dict[str, np.ndarray]:
-        blob = "\n".join(self._ids).encode("utf-8")
+        n = len(self._ids)
+        if n > self._blob_n:
+            new = "\n".join(self._ids[self._blob_n :]).encode("utf-8")
+            self._blob += (b"\n" + new) if self._blob_n else new
+            self._blob_n = n
         return {
-            "entity_ids": np.frombuffer(blob, dtype=np.uint8).copy(),
+            "entity_ids": np.frombuffer(self._blob, dtype=np.uint8).copy(),
             "entity_counts": self.counts[: len(self._ids)].copy(),
         }
 

@@ -188,6 +188,7 @@ class SpaceService:
             observers,
             clock,
             log_min_entries=settings.replica.log_min_entries,
+            background=settings.checkpoint.background,
         )
         self.ready = threading.Event()  # the consumer has recovered and is reading
         self.fatal: CheckpointRefusedError | None = None  # set when the space cannot start

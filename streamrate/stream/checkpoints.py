@@ -16,29 +16,42 @@ trims; a replica only loads.
 
 from __future__ import annotations
 
+import copy
+import logging
+import math
+import sys
+import threading
 import time
 from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
 from typing import Any
+
+import numpy as np
 
 from streamrate.checkpoint import (
     Checkpoint,
     CheckpointStore,
     FileCheckpointStore,
     RedisCheckpointStore,
+    checkpoint_contents,
     decode_checkpoint,
-    encode_checkpoint,
     parts_of,
 )
 from streamrate.config import SpaceSettings
 from streamrate.dedupe import SeenIds
 from streamrate.errors import CheckpointRefusedError, StreamrateError
 from streamrate.metrics import ServiceMetrics
-from streamrate.models.base import Model
+from streamrate.models.base import Model, ModelState
 from streamrate.models.registry import model_from_state
+from streamrate.statefile import state_to_bytes
 from streamrate.stream.applied_log import AppliedLogWriter
 from streamrate.stream.apply import LiveModel, Observer
 from streamrate.stream.reader import ACK_CHUNK, StreamReader, id_key
 
+log = logging.getLogger("streamrate.consumer")
+RETRY_AFTER_S = 1.0
+"""After a failed background save, the next checkpoint is tried this much later
+(or after ``checkpoint_every_s`` when that is shorter)."""
 RUNTIME_SETTINGS = frozenset({"compiled", "active"})
 """Model settings that do not change what a checkpoint means (how kernels run;
 which challenger answers): a checkpoint is not refused over them."""
@@ -140,13 +153,69 @@ def _short(value: Any, width: int = 60) -> str:
     return text if len(text) <= width else text[: width - 3] + "..."
 
 
+def private_arrays(state: ModelState) -> ModelState:
+    """``state`` with arrays that nothing else holds: an array that is a view, or
+    that another object also references (a model's live matrices), is copied;
+    one made for this state alone (the copies of the used rows) is kept as is.
+    ``state`` itself is emptied (its arrays move to the result): the caller
+    holds no other reference to them.
+
+    What a checkpoint saved in the background needs: the model goes on learning
+    while the copy is encoded and stored."""
+    arrays = state.arrays
+    out: dict[str, np.ndarray] = {}
+    for name in list(arrays):
+        arr = arrays.pop(name)
+        # Held here only by ``arr`` and the call's argument: a count of 2.
+        if not isinstance(arr, np.ndarray) or arr.base is not None or sys.getrefcount(arr) > 2:
+            arr = np.array(arr, copy=True)
+        out[name] = arr
+    return ModelState(state.kind, state.version, copy.deepcopy(state.params), out)
+
+
+@dataclass
+class _Save:
+    """One checkpoint on its way to the store: its contents, the stream id and
+    applied-log position it covers, the entries it acknowledges once durable."""
+
+    state: ModelState
+    extra: dict[str, Any]
+    last_id: str
+    log_id: str
+    acks: list[bytes]
+    since: int
+    started: float
+    done: threading.Event = field(default_factory=threading.Event)
+    error: BaseException | None = None
+
+    def run(self, store: CheckpointStore) -> None:
+        """Encode and store (in the background thread or inline); never raises:
+        an error is kept for the writer's thread (:meth:`Checkpointer.poll`)."""
+        try:
+            store.save(state_to_bytes(self.state, self.extra))
+        except Exception as exc:  # loop boundary of the saving thread: kept, reported
+            self.error = exc
+        finally:
+            self.done.set()
+
+
 class Checkpointer:
     """The writer's checkpoints: when one is due, saving it, then acknowledging
     the entries it covers and trimming what no checkpoint needs any more.
 
     Handled entries are announced with :meth:`handled` (counted towards the
     cadence) or :meth:`covered` (re-delivered, only to acknowledge); nothing is
-    acknowledged before :meth:`save` has stored a checkpoint covering it.
+    acknowledged before a checkpoint covering it is durable.
+
+    With ``background`` the model lock is held only to copy the state
+    (:func:`private_arrays`); encoding and storing run in a thread of their own
+    while the writer goes on applying. At most one save is in flight: none is
+    due while one is. The entries a save covers (those handled up to its last
+    id) wait aside until the save is durable (:meth:`poll`), then are
+    acknowledged; a save that fails acknowledges nothing, puts its entries back
+    and a new checkpoint (covering them and more) is tried after
+    :data:`RETRY_AFTER_S`. :meth:`save` with ``wait`` (the final checkpoint, or
+    ``background`` off) first waits for the save in flight.
     """
 
     def __init__(
@@ -160,23 +229,38 @@ class Checkpointer:
         space: SpaceSettings,
         clock: Callable[[], float],
         log_min_entries: int,
+        background: bool = False,
     ) -> None:
         self.store, self.reader, self.log, self.live = store, reader, log, live
         self.observers, self.metrics, self.space, self.clock = observers, metrics, space, clock
         self.log_min_entries = log_min_entries
+        self.background = background
         self._lbl = {"space": space.name}
         self.ckpt_id = "0-0"  # stream id the newest durable checkpoint covers
         self.log_id = "0-0"  # applied-log position of the loaded/last checkpoint
         self.prev_log_id = "0-0"  # ... and of the one before (the log is kept back to it)
-        self.to_ack: list[bytes] = []
+        self.to_ack: list[bytes] = []  # handled, no checkpoint started that covers them
+        self.durable: list[bytes] = []  # covered by a durable checkpoint, not yet acked
         self.since = 0  # entries handled since the last checkpoint
         self.last_at = clock()
+        self.retry_at = -math.inf
+        self.failures = 0  # saves that failed in a row
+        self._job: _Save | None = None
+        self._thread: threading.Thread | None = None
 
     def restart(self, ckpt_id: str, log_id: str) -> None:
         """After loading the checkpoint covering ``ckpt_id``: nothing awaits an ack."""
         self.ckpt_id, self.log_id, self.prev_log_id = ckpt_id, log_id, log_id
-        self.to_ack, self.since = [], 0
+        self.to_ack, self.durable, self.since = [], [], 0
         self.last_at = self.clock()
+        self.retry_at = -math.inf
+
+    def settle(self) -> None:
+        """Wait for the save in flight and forget it (before a checkpoint is loaded:
+        the store then holds it or its predecessor, and the load decides)."""
+        if self._thread is not None:
+            self._thread.join()
+        self._job = self._thread = None
 
     def handled(self, ids: Sequence[bytes]) -> None:
         """Entries handled (applied, dead-lettered or skipped): ack after the next save."""
@@ -187,28 +271,53 @@ class Checkpointer:
         """Entries re-delivered that a checkpoint already covers: ack them."""
         self.to_ack.extend(ids)
 
+    def awaiting(self) -> set[bytes]:
+        """Entries applied by this writer and not acknowledged yet."""
+        pending = self._job.acks if self._job is not None else []
+        return {*self.to_ack, *pending, *self.durable}
+
+    @property
+    def in_flight(self) -> bool:
+        return self._job is not None
+
     def due(self) -> bool:
         """Every ``checkpoint_every_events`` entries, or ``checkpoint_every_s`` seconds
-        when anything awaits a checkpoint or an ack."""
+        when anything awaits a checkpoint or an ack; never while a save is in flight
+        nor before the retry time of a failed one."""
+        if self._job is not None or self.clock() < self.retry_at:
+            return False
         sp = self.space
         due_n = self.since >= sp.checkpoint_every_events
         due_t = self.clock() - self.last_at >= sp.checkpoint_every_s
         return due_n or (due_t and bool(self.since or self.to_ack or self.live.changed))
 
-    def save(self, last_id: str, seen: SeenIds, counters: Mapping[str, int]) -> None:
-        """Store model + ``last_id`` + retry record durably, then ack what it covers."""
+    def save(
+        self, last_id: str, seen: SeenIds, counters: Mapping[str, int], wait: bool = True
+    ) -> None:
+        """Store model + ``last_id`` + retry record durably, then ack what it covers.
+
+        ``wait=False`` with ``background``: only copy the state here; the save runs
+        in a thread and :meth:`poll` completes it. Otherwise the save in flight
+        (if any) is waited for and this one runs inline; its error is raised."""
+        inline = wait or not self.background
+        if self._job is not None:
+            if not inline:
+                return
+            self._wait()
         t0 = time.perf_counter()
         live = self.live
         if self.since or self.ckpt_id != last_id or live.changed:
             with live.lock:
                 state = live.model.to_state()
+                if not inline:
+                    state = private_arrays(state)
                 live.changed = False
                 applied = live.applied
                 promoted, live.promoted = live.promoted, []
             for model in promoted:  # in the state above: logged before it is saved
                 self.log.promote(applied, model)
             log_id = self.log.flush()
-            blob = encode_checkpoint(
+            contents = checkpoint_contents(
                 Checkpoint(
                     state,
                     last_id,
@@ -219,17 +328,89 @@ class Checkpointer:
                     log_id=log_id,
                 )
             )
-            self.store.save(blob)
-            self.ckpt_id = last_id
-            self.prev_log_id, self.log_id = self.log_id, log_id
-            self.since = 0
-            self.metrics.checkpoint_seconds.labels(**self._lbl).observe(time.perf_counter() - t0)
-            self.metrics.checkpoint_time.labels(**self._lbl).set(time.time())
-        self.last_at = self.clock()
-        while self.to_ack:
-            part = self.to_ack[:ACK_CHUNK]
+            del state  # its arrays are in the contents now
+            state, extra = contents
+            del contents
+            if not inline:
+                state = private_arrays(state)  # the retry record's and parts' arrays
+                extra = copy.deepcopy(extra)
+            job = _Save(state, extra, last_id, log_id, self.to_ack, self.since, t0)
+            self.to_ack, self.since = [], 0
+            self.last_at = self.clock()
+            self._job = job
+            if inline:
+                job.run(self.store)
+                self._complete(raise_error=True)
+            else:
+                self._thread = threading.Thread(
+                    target=job.run,
+                    args=(self.store,),
+                    name=f"checkpoint-{self.space.name}",
+                )
+                self._thread.start()
+                return
+        else:
+            self.last_at = self.clock()
+            self.durable.extend(self.to_ack)  # covered by the durable checkpoint
+            self.to_ack = []
+        self._after_durable()
+
+    def poll(self) -> None:
+        """Complete the save in flight if it has finished (ack, trim; or put back)."""
+        if self._job is not None and self._job.done.is_set():
+            self._complete(raise_error=False)
+            if self._job is None and not self.failures:
+                self._after_durable()
+
+    def _wait(self) -> None:
+        """Wait for the save in flight and complete it; its error is raised."""
+        assert self._job is not None
+        self._job.done.wait()
+        self._complete(raise_error=True)
+        self._after_durable()
+
+    def _complete(self, raise_error: bool) -> None:
+        job = self._job
+        assert job is not None and job.done.is_set()
+        if self._thread is not None:
+            self._thread.join()
+        self._job = self._thread = None
+        if job.error is not None:
+            # Nothing it covers is acknowledged; they wait for the next checkpoint.
+            self.to_ack[:0] = job.acks
+            self.since += job.since
+            self.live.changed = True
+            self.failures += 1
+            self.retry_at = self.clock() + min(RETRY_AFTER_S, self.space.checkpoint_every_s)
+            self.metrics.loop_errors.labels(**self._lbl).inc()
+            if raise_error:
+                raise job.error
+            log.warning(
+                "space %s: the checkpoint up to %s could not be stored (%s: %s); "
+                "nothing it covers is acknowledged, retrying (%d failed in a row)",
+                self.space.name,
+                job.last_id,
+                type(job.error).__name__,
+                job.error,
+                self.failures,
+            )
+            return
+        self.failures = 0
+        self.retry_at = -math.inf
+        self.ckpt_id = job.last_id
+        self.prev_log_id, self.log_id = self.log_id, job.log_id
+        self.durable.extend(job.acks)
+        self.metrics.checkpoint_seconds.labels(**self._lbl).observe(
+            time.perf_counter() - job.started
+        )
+        self.metrics.checkpoint_time.labels(**self._lbl).set(time.time())
+
+    def _after_durable(self) -> None:
+        """Acknowledge what durable checkpoints cover; trim stream and applied log."""
+        while self.durable:
+            part = self.durable[:ACK_CHUNK]
             self.reader.ack(part)
-            del self.to_ack[: len(part)]
+            del self.durable[: len(part)]
         self._trim()
         self.log.trim(self.prev_log_id, self.log_min_entries)
 

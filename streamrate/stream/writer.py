@@ -11,6 +11,8 @@ One writer owns one model space. Its loop, one batch at a time::
          applier.notify()     observers (quality windows, drift)
     checkpoints.due()        every N entries or T seconds:
       -> checkpoints.save()   model + last id + retry record, durably; then XACK, trim
+                              (background: the state is copied under the lock, then
+                              encoded and stored in a thread; XACK once it is stored)
 
 Writer and replica differ in one place, the wiring below: both apply events
 through :class:`~streamrate.stream.apply.Applier`; only the writer reads the
@@ -97,6 +99,7 @@ class Writer:
         observers: Sequence[Observer] = (),
         clock: Callable[[], float] = time.monotonic,
         log_min_entries: int = 1000,
+        background: bool = False,
     ) -> None:
         self.space, self.keys, self.store, self.metrics = space, keys, store, metrics
         self.build_model = build_model
@@ -120,7 +123,7 @@ class Writer:
         self.log = AppliedLogWriter(client, keys.applied, keys.epoch)  # for the replicas
         self.checkpoints = Checkpointer(
             store, self.reader, self.log, self.live, self.observers, metrics, space, clock,
-            log_min_entries,
+            log_min_entries, background,
         )  # fmt: skip
         self.last_id = "0-0"  # the last handled stream id (see _at)
         self.counters = {"applied": 0, "dead_lettered": 0, "duplicate": 0}
@@ -153,6 +156,7 @@ class Writer:
         """Install the stored checkpoint (True) or an empty model when there is none
         (False); :class:`CheckpointRefusedError` when it is unreadable or was
         written for another model, other settings or in another format."""
+        self.checkpoints.settle()  # a save in flight lands (or not) before the load
         got = load_checked(self.store, self.space, self.build_model)
         if got is None:
             self._install(self.build_model(), "0-0", 0)
@@ -240,8 +244,9 @@ class Writer:
         for model in self.applier.take_promotions():  # promotions made while idle
             self.log.promote(self.live.applied, model)
         self.log.flush()
+        self.checkpoints.poll()  # a background save that finished: ack what it covers
         if self.checkpoints.due():
-            self.checkpoint()
+            self.checkpoint(wait=False)
         self.maybe_claim()
         return len(entries)
 
@@ -304,7 +309,7 @@ class Writer:
         self.last_claim_at = self.clock()
         if not self.reader.others_pending():
             return
-        mine = set(self.checkpoints.to_ack)  # applied by us, awaiting the next checkpoint
+        mine = self.checkpoints.awaiting()  # applied by us, not acknowledged yet
         claimed = [e for e in self.reader.claim() if e[0] not in mine]
         if claimed:
             log.warning("space %s: applying %d late entries", self.space.name, len(claimed))
@@ -313,16 +318,22 @@ class Writer:
 
     # -- checkpoint and acknowledge -----------------------------------------------
     def maybe_checkpoint(self) -> None:
+        self.checkpoints.poll()
         if self.checkpoints.due():
-            self.checkpoint()
+            self.checkpoint(wait=False)
 
-    def checkpoint(self) -> None:
-        """Store model + last id + retry record durably, then ack what it covers."""
-        self.checkpoints.save(self.last_id, self.decider.seen, self.counters)
-        self._gauges()
+    def checkpoint(self, wait: bool = True) -> None:
+        """Store model + last id + retry record durably, then ack what it covers.
+
+        ``wait=False`` (the loop's cadence): with background checkpoints only the
+        state is copied here; the save completes in :meth:`step` later."""
+        self.checkpoints.save(self.last_id, self.decider.seen, self.counters, wait=wait)
+        if not self.checkpoints.in_flight:
+            self._gauges()
 
     def close(self) -> None:
-        """Final checkpoint and ack (call after the batch in hand is done)."""
+        """Final checkpoint and ack (call after the batch in hand is done); waits for
+        the save in flight first."""
         self.checkpoint()
 
     # -- on a timer ---------------------------------------------------------------

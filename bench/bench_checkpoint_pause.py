@@ -1,0 +1,209 @@
+"""The longest pause of the apply loop while checkpoints are written.
+
+Run by hand:  python bench/bench_checkpoint_pause.py [--entities 1000000] [--dims 16]
+
+Builds a blade-chest model holding ``--entities`` entities (d = ``--dims``), then
+runs the writer's apply loop twice on it in the same process: events applied in
+chunks of ``lock_chunk`` under the model lock, a checkpoint due every
+``--every`` events, stored through the writer's own
+:class:`~streamrate.stream.checkpoints.Checkpointer` into a checkpoint file
+(fsync + rename) in a temporary directory. First with the former synchronous
+path (``checkpoint.background = false``: lock, copy, encode, store, ack), then
+with background checkpoints (lock and copy only; encode and store in a thread).
+
+A pause is the time between the end of one applied chunk and the end of the
+next: the chunk itself plus whatever the loop did in between (a checkpoint).
+Printed per mode: the longest pause, the 99th percentile, the median chunk, the
+checkpoints completed, and the ratio of the longest pauses (synchronous over
+background). The stream reader and applied log are stand-ins that only count
+(Redis is not what is measured).
+"""
+
+from __future__ import annotations
+
+import argparse
+import tempfile
+import time
+from datetime import UTC, datetime, timedelta
+
+import numpy as np
+from prometheus_client import CollectorRegistry
+
+from streamrate.checkpoint import FileCheckpointStore
+from streamrate.config import SpaceSettings
+from streamrate.dedupe import SeenIds
+from streamrate.events import MatchEvent
+from streamrate.metrics import ServiceMetrics
+from streamrate.models.base import ModelState, warm_up
+from streamrate.models.matchup import BladeChest
+from streamrate.models.registry import model_from_state
+from streamrate.stream.apply import LiveModel
+from streamrate.stream.checkpoints import Checkpointer
+
+START = datetime(2026, 3, 1, tzinfo=UTC)
+MAPS = ("saltflats", "ember-quarry", "glasswood", "sunken-bell")
+
+
+class CountingReader:
+    """Stands in for the stream reader: counts acknowledged entries."""
+
+    def __init__(self) -> None:
+        self.acked = 0
+
+    def ack(self, ids: list[bytes]) -> None:
+        self.acked += len(ids)
+
+    def trim(self, min_id: str) -> None:
+        return None
+
+
+class QuietLog:
+    """Stands in for the applied log (nothing to replicate here)."""
+
+    def promote(self, seq: int, model: str) -> None:
+        return None
+
+    def flush(self) -> str:
+        return "0-0"
+
+    def trim(self, keep_from: str, min_entries: int) -> None:
+        return None
+
+
+def events(lo: int, hi: int, n_ent: int, rng: np.random.Generator) -> list[MatchEvent]:
+    pairs = rng.integers(0, n_ent, size=(hi - lo, 2))
+    return [
+        MatchEvent.model_construct(
+            match_id=f"m-{k}",
+            finished_at=START + timedelta(seconds=k),
+            first=(f"quill-{int(a)}",),
+            second=(f"quill-{int(b) if b != a else (int(a) + 1) % n_ent}",),
+            score=float(k % 2),
+            context={"map": MAPS[k % 4]},
+            features={},
+        )
+        for k, (a, b) in zip(range(lo, hi), pairs, strict=True)
+    ]
+
+
+def build(n_ent: int, dims: int, learned: int = 4000) -> BladeChest:
+    """A model of ``n_ent`` entities: ``learned`` of them learned from matches,
+    their rows repeated to fill the rest (learning a million entities one match
+    at a time would take minutes; what a checkpoint costs depends on the rows,
+    not on how they were learned)."""
+    model = BladeChest(dims=dims, context="stacked")
+    warm_up(model)
+    model.learn_many(
+        [
+            MatchEvent.model_construct(
+                match_id=f"b-{k}",
+                finished_at=START + timedelta(seconds=k),
+                first=(f"quill-{2 * k}",),
+                second=(f"quill-{2 * k + 1}",),
+                score=float(k % 2),
+                context={"map": MAPS[k % 4]},
+                features={},
+            )
+            for k in range(learned // 2)
+        ]
+    )
+    state = model.to_state()
+    k = len(model.entities_)
+    arrays = dict(state.arrays)
+    for name, arr in state.arrays.items():
+        if name != "entity_ids" and arr.ndim >= 1 and arr.shape[0] == k:
+            reps = (-(-n_ent // k),) + (1,) * (arr.ndim - 1)
+            arrays[name] = np.ascontiguousarray(np.tile(arr, reps)[:n_ent])
+    ids = "\n".join(f"quill-{i}" for i in range(n_ent)).encode("utf-8")
+    arrays["entity_ids"] = np.frombuffer(ids, dtype=np.uint8).copy()
+    big = model_from_state(ModelState(state.kind, state.version, state.params, arrays))
+    assert isinstance(big, BladeChest)
+    warm_up(big)
+    return big
+
+
+def run(
+    live: LiveModel, background: bool, n_events: int, every: int, n_ent: int, chunk: int
+) -> dict[str, float]:
+    space = SpaceSettings(checkpoint_every_events=every, checkpoint_every_s=3600.0)
+    reader, applied_log = CountingReader(), QuietLog()
+    with tempfile.TemporaryDirectory() as tmp:
+        store = FileCheckpointStore(tmp, space.name)
+        ck = Checkpointer(
+            store,
+            reader,  # type: ignore[arg-type]
+            applied_log,  # type: ignore[arg-type]
+            live,
+            (),
+            ServiceMetrics(CollectorRegistry(), [space.name]),
+            space,
+            time.monotonic,
+            0,
+            background=background,
+        )
+        seen = SeenIds(space.dedupe_keep_ids, space.dedupe_window_s)
+        rng = np.random.default_rng(7)
+        gaps: list[float] = []
+        saves = 0
+        batch = space.batch_count
+        t_prev = time.perf_counter()
+        for lo in range(0, n_events, batch):
+            evs = events(lo, min(lo + batch, n_events), n_ent, rng)  # "read" (not timed apart)
+            for s in range(0, len(evs), chunk):
+                part = evs[s : s + chunk]
+                with live.lock:
+                    live.model.learn_many(part)
+                    live.applied += len(part)
+                t = time.perf_counter()
+                gaps.append(t - t_prev)
+                t_prev = t
+            ck.handled([f"{k}-0".encode() for k in range(lo, lo + len(evs))])
+            ck.poll()
+            if ck.due():
+                ck.save(f"{lo + len(evs)}-0", seen, {}, wait=not background)
+                saves += 1
+        ck.save(f"{n_events}-0", seen, {}, wait=True)  # the final one: not in the gaps
+    g = np.array(gaps) * 1000
+    return {
+        "max_ms": float(g.max()),
+        "p99_ms": float(np.percentile(g, 99)),
+        "median_ms": float(np.median(g)),
+        "checkpoints": float(saves),
+        "acked": float(reader.acked),
+    }
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--entities", type=int, default=1_000_000)
+    ap.add_argument("--dims", type=int, default=16)
+    ap.add_argument("--events", type=int, default=60_000, help="events applied per mode")
+    ap.add_argument("--every", type=int, default=15_000, help="events between checkpoints")
+    args = ap.parse_args()
+    t0 = time.perf_counter()
+    model = build(args.entities, args.dims)
+    print(
+        f"blade_chest d={args.dims}, {len(model.entities_):,} entities "
+        f"(built in {time.perf_counter() - t0:.0f} s); {args.events:,} events per mode, "
+        f"a checkpoint every {args.every:,}"
+    )
+    live = LiveModel(model)
+    chunk = SpaceSettings().lock_chunk
+    got = {}
+    for background in (False, True):
+        r = run(live, background, args.events, args.every, args.entities, chunk)
+        got[background] = r
+        label = "background " if background else "synchronous"
+        print(
+            f"  {label}: longest pause {r['max_ms']:7.1f} ms, p99 {r['p99_ms']:5.1f} ms, "
+            f"median chunk {r['median_ms']:4.2f} ms, {r['checkpoints']:.0f} checkpoints, "
+            f"{r['acked']:.0f} entries acknowledged"
+        )
+    print(
+        f"  longest pause, synchronous / background: "
+        f"{got[False]['max_ms'] / got[True]['max_ms']:.1f}x"
+    )
+
+
+if __name__ == "__main__":
+    main()
