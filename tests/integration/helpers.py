@@ -77,6 +77,13 @@ def assert_same_state(got: Checkpoint, want: Model) -> None:
             np.testing.assert_allclose(a, arr, rtol=1e-9, atol=1e-12, err_msg=name)
 
 
+# How long a test waits for a service to become ready. Readiness includes the first
+# compile of the model kernels, which takes minutes on a busy machine with an empty
+# kernel cache (a fresh CI machine): the wait is bounded by the test's own timeout in
+# practice, never by a guess at compile time.
+READY_WAIT_S = 540.0
+
+
 def wait_for(cond: Callable[[], bool], timeout_s: float, what: str) -> None:
     deadline = time.monotonic() + timeout_s
     while not cond():

@@ -28,6 +28,7 @@ from streamrate.events import event_to_json
 from streamrate.models.registry import build_model, model_from_state
 from streamrate.service import Service, redis_factory
 from streamrate.simulate import simulate, world_spec
+from tests.integration.helpers import READY_WAIT_S
 
 from .conftest import RedisServer
 from .helpers import file_checkpoint, wait_for
@@ -63,7 +64,7 @@ def running(redis_server: RedisServer, tmp_path: Path) -> Iterator[tuple[Service
     stop = threading.Event()
     service.start(stop)
     try:
-        assert service.spaces[0].ready.wait(30)
+        assert service.spaces[0].ready.wait(READY_WAIT_S)
         r = redis_server.client()
         wait_for(lambda: r.pubsub_numsub(Q)[0][1] > 0, 10, "the query responder to subscribe")
         yield service, tmp_path / "ckpt"

@@ -23,6 +23,7 @@ from streamrate.config import (
 )
 from streamrate.models.registry import build_model
 from streamrate.service import Service, redis_factory
+from tests.integration.helpers import READY_WAIT_S
 
 from .conftest import RedisServer, free_port
 from .helpers import MODEL, MODEL_SETTINGS, wait_for, world_lines
@@ -67,7 +68,7 @@ def test_scraped_metrics_match_what_the_service_did(
     stop = threading.Event()
     service.start(stop)
     try:
-        assert service.spaces[0].ready.wait(30)
+        assert service.spaces[0].ready.wait(READY_WAIT_S)
         r = redis_server.client()
         send_events(r, EVENTS, lines)
 

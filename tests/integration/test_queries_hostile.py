@@ -26,6 +26,7 @@ from streamrate.errors import ServiceError
 from streamrate.events import event_to_json
 from streamrate.service import Service, redis_factory
 from streamrate.simulate import simulate, world_spec
+from tests.integration.helpers import READY_WAIT_S
 
 from .conftest import RedisServer
 from .helpers import MODEL, MODEL_SETTINGS, wait_for
@@ -53,7 +54,7 @@ def _start(
     service = Service(settings, redis_factory(settings.redis), CollectorRegistry())
     stop = threading.Event()
     service.start(stop)
-    assert service.spaces[0].ready.wait(30)
+    assert service.spaces[0].ready.wait(READY_WAIT_S)
     return service, stop
 
 

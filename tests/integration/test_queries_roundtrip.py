@@ -22,6 +22,7 @@ from streamrate.config import (
 from streamrate.events import Matchup, event_to_json
 from streamrate.service import Service, redis_factory
 from streamrate.simulate import simulate, world_spec
+from tests.integration.helpers import READY_WAIT_S
 
 from .conftest import RedisServer
 from .helpers import MODEL, MODEL_SETTINGS, wait_for
@@ -46,7 +47,7 @@ def running(redis_server: RedisServer, tmp_path: Path) -> Iterator[tuple[Service
     service = Service(settings, redis_factory(settings.redis), CollectorRegistry())
     stop = threading.Event()
     service.start(stop)
-    assert service.spaces[0].ready.wait(30)
+    assert service.spaces[0].ready.wait(READY_WAIT_S)
     r = redis_server.client()
     wait_for(lambda: r.pubsub_numsub(Q)[0][1] > 0, 10, "the query responder to subscribe")
     yield service, redis_server

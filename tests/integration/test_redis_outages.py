@@ -18,6 +18,7 @@ from streamrate.config import (
     SpaceSettings,
 )
 from streamrate.service import Service, redis_factory
+from tests.integration.helpers import READY_WAIT_S
 
 from .conftest import RedisServer
 from .helpers import wait_for
@@ -46,7 +47,7 @@ def test_the_query_sides_outage_is_counted_beside_the_consumers(
     stop = threading.Event()
     service.start(stop)
     try:
-        assert service.spaces[0].ready.wait(30)
+        assert service.spaces[0].ready.wait(READY_WAIT_S)
         wait_for(service.spaces[0].listening.is_set, 30, "the responder")
         assert outages("consumer") == outages("queries") == 0
         redis_server.stop(signal.SIGKILL)

@@ -27,6 +27,7 @@ from streamrate.cli import app
 from streamrate.config import load_settings
 from streamrate.events import Matchup, event_to_json
 from streamrate.service import Service, redis_factory
+from tests.integration.helpers import READY_WAIT_S
 
 from .conftest import SecureRedisServer
 from .helpers import MODEL, MODEL_SETTINGS, reference, wait_for, world_lines
@@ -229,7 +230,7 @@ def test_service_over_tls_with_verified_certificates(
     stop = threading.Event()
     service.start(stop)
     try:
-        assert service.spaces[0].ready.wait(60)
+        assert service.spaces[0].ready.wait(READY_WAIT_S)
         wait_for(service.spaces[0].listening.is_set, 30, "the responder")
         runner = CliRunner()
         res = runner.invoke(app, ["send", str(data), *_tls_overrides(tls_redis, "producer")])

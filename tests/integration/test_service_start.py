@@ -21,6 +21,7 @@ from streamrate.events import event_to_json
 from streamrate.models.registry import build_model
 from streamrate.service import Service, redis_factory
 from streamrate.simulate import simulate, world_spec
+from tests.integration.helpers import READY_WAIT_S
 
 from .conftest import RedisServer
 from .helpers import MODEL, file_checkpoint, reference, wait_for, write_toml
@@ -60,7 +61,7 @@ def test_a_question_while_the_checkpoint_loads_gets_not_ready(
     service.start(stop)
     r = redis_server.client()
     try:
-        assert service.spaces[0].listening.wait(30)
+        assert service.spaces[0].listening.wait(READY_WAIT_S)
         a, b = EVENTS[0].first, EVENTS[0].second
         question = {"kind": "pairing", "first": list(a), "second": list(b)}
         rep = ask(r, "{sr:duel}:q", question)
@@ -68,7 +69,7 @@ def test_a_question_while_the_checkpoint_loads_gets_not_ready(
         assert rep["error"].startswith("not ready")
         assert "p_first_wins" not in rep
         slow.release.set()
-        assert service.spaces[0].ready.wait(60)
+        assert service.spaces[0].ready.wait(READY_WAIT_S)
         rep = ask(r, "{sr:duel}:q", question)
         assert rep["ok"] is True and rep["applied"] == 200
         assert rep["p_first_wins"] != 0.5

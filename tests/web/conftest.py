@@ -30,6 +30,7 @@ from streamrate.simulate import simulate, world_spec
 from streamrate.web.hub import PairKey
 from streamrate.web.server import WebServer
 from tests.integration.conftest import RedisServer, free_port
+from tests.integration.helpers import READY_WAIT_S
 
 CHROMIUM = shutil.which("chromium") or "/usr/bin/chromium"
 
@@ -83,8 +84,8 @@ class Stack:
         self.stop_event = threading.Event()
         self.service = Service(settings, redis_factory(settings.redis), CollectorRegistry())
         self.service.start(self.stop_event)
-        assert self.service.spaces[0].ready.wait(60)
-        assert self.service.spaces[0].listening.wait(30)
+        assert self.service.spaces[0].ready.wait(READY_WAIT_S)
+        assert self.service.spaces[0].listening.wait(READY_WAIT_S)
 
     def stop_service(self) -> None:
         if self.service is not None:
