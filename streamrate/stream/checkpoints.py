@@ -23,6 +23,7 @@ from typing import Any
 from streamrate.checkpoint import (
     Checkpoint,
     CheckpointStore,
+    Fence,
     FileCheckpointStore,
     RedisCheckpointStore,
     decode_checkpoint,
@@ -160,8 +161,10 @@ class Checkpointer:
         space: SpaceSettings,
         clock: Callable[[], float],
         log_min_entries: int,
+        fence: Fence | None = None,
     ) -> None:
         self.store, self.reader, self.log, self.live = store, reader, log, live
+        self.fence = fence  # the writer lease, checked before acks and trims
         self.observers, self.metrics, self.space, self.clock = observers, metrics, space, clock
         self.log_min_entries = log_min_entries
         self._lbl = {"space": space.name}
@@ -226,6 +229,8 @@ class Checkpointer:
             self.metrics.checkpoint_seconds.labels(**self._lbl).observe(time.perf_counter() - t0)
             self.metrics.checkpoint_time.labels(**self._lbl).set(time.time())
         self.last_at = self.clock()
+        if self.fence is not None and (self.to_ack or self.space.retention_s is not None):
+            self.fence.check()
         while self.to_ack:
             part = self.to_ack[:ACK_CHUNK]
             self.reader.ack(part)
