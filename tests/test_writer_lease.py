@@ -2,19 +2,35 @@
 
 from __future__ import annotations
 
+import threading
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import fakeredis
 import pytest
+from prometheus_client import CollectorRegistry
+from service_fakes import fake_settings
 
 from streamrate.checkpoint import FileCheckpointStore, RedisCheckpointStore
+from streamrate.client import send_events
 from streamrate.config import LeaseSettings, Settings, SpaceSettings
 from streamrate.errors import LeaseLostError
+from streamrate.events import event_to_json
+from streamrate.service import Service
+from streamrate.simulate import simulate, world_spec
 from streamrate.stream.applied_log import AppliedLogWriter, parse_entry
 from streamrate.stream.lease import Lease
 
 KEYS = Settings(spaces=(SpaceSettings(name="duel"),)).keys(SpaceSettings(name="duel"))
+WORLD = simulate(world_spec("plain", matches=200, entities=20, seed=5)).events
+
+
+def _wait(cond: Callable[[], bool], what: str, timeout_s: float = 30) -> None:
+    deadline = time.monotonic() + timeout_s
+    while not cond():
+        assert time.monotonic() < deadline, f"timed out waiting for {what}"
+        time.sleep(0.01)
 
 
 def _pair(r: fakeredis.FakeRedis) -> tuple[Lease, Lease]:
@@ -120,3 +136,44 @@ def test_the_fenced_applied_log_keeps_order_and_refuses_after_takeover(events: i
 def test_renew_period_must_fit_twice_in_the_lease() -> None:
     with pytest.raises(ValueError, match="renew_every_ms"):
         LeaseSettings(lease_ms=1000, renew_every_ms=600)
+
+
+def _space_service(tmp_path: Path, server: fakeredis.FakeServer) -> Service:
+    space = SpaceSettings(
+        name="duel",
+        model="elo",
+        model_settings={"compiled": False},
+        batch_count=40,
+        block_ms=5,
+        checkpoint_every_events=50,
+        checkpoint_every_s=0.05,
+    )
+    settings = fake_settings(tmp_path, space)
+    return Service(settings, lambda: fakeredis.FakeRedis(server=server), CollectorRegistry())
+
+
+def test_a_running_writer_that_loses_its_lease_stops_without_writing(tmp_path: Path) -> None:
+    server = fakeredis.FakeServer()
+    r = fakeredis.FakeRedis(server=server)
+    events = [event_to_json(e) for e in WORLD]
+    svc = _space_service(tmp_path, server)
+    stop = threading.Event()
+    svc.start(stop)
+    try:
+        send_events(r, KEYS.events, events[:100])
+        c = svc.spaces[0].consumer
+        _wait(lambda: c.ckpt_id != "0-0" and c.live.applied == 100, "the first checkpoint")
+        held = r.get(KEYS.lease)
+        assert held is not None and held.split()[0] == svc.spaces[0].lease.holder.encode()
+        r.set(KEYS.lease, b"another-writer 99", px=60_000)  # taken over elsewhere
+        ckpt = (tmp_path / "duel.ckpt.npz").read_bytes()
+        log_len, dead_len = r.xlen(KEYS.applied), r.xlen(KEYS.dead)
+        send_events(r, KEYS.events, [*events[100:200], "{not json"])
+        _wait(stop.is_set, "the service to stop")
+    finally:
+        stop.set()
+        svc.join()
+    assert isinstance(svc.spaces[0].fatal, LeaseLostError)
+    assert (tmp_path / "duel.ckpt.npz").read_bytes() == ckpt
+    assert (r.xlen(KEYS.applied), r.xlen(KEYS.dead)) == (log_len, dead_len)
+    assert r.get(KEYS.lease) == b"another-writer 99"
