@@ -138,7 +138,7 @@ def test_renew_period_must_fit_twice_in_the_lease() -> None:
         LeaseSettings(lease_ms=1000, renew_every_ms=600)
 
 
-def _space_service(tmp_path: Path, server: fakeredis.FakeServer) -> Service:
+def _space_service(tmp_path: Path, server: fakeredis.FakeServer, **lease: int) -> Service:
     space = SpaceSettings(
         name="duel",
         model="elo",
@@ -148,7 +148,7 @@ def _space_service(tmp_path: Path, server: fakeredis.FakeServer) -> Service:
         checkpoint_every_events=50,
         checkpoint_every_s=0.05,
     )
-    settings = fake_settings(tmp_path, space)
+    settings = fake_settings(tmp_path, space).model_copy(update={"lease": LeaseSettings(**lease)})
     return Service(settings, lambda: fakeredis.FakeRedis(server=server), CollectorRegistry())
 
 
@@ -177,3 +177,34 @@ def test_a_running_writer_that_loses_its_lease_stops_without_writing(tmp_path: P
     assert (tmp_path / "duel.ckpt.npz").read_bytes() == ckpt
     assert (r.xlen(KEYS.applied), r.xlen(KEYS.dead)) == (log_len, dead_len)
     assert r.get(KEYS.lease) == b"another-writer 99"
+
+
+def test_entries_a_replaced_writer_read_under_the_same_name_are_still_applied(
+    tmp_path: Path,
+) -> None:
+    # A writer paused between its lease check and its read wakes and takes delivery
+    # of entries under the shared consumer name before it notices the lost lease.
+    server = fakeredis.FakeServer()
+    r = fakeredis.FakeRedis(server=server)
+    events = [event_to_json(e) for e in WORLD]
+    svc = _space_service(tmp_path, server, lease_ms=200, renew_every_ms=50)
+    stop = threading.Event()
+    svc.start(stop)
+    try:
+        c = svc.spaces[0].consumer
+        send_events(r, KEYS.events, events[:50])
+        _wait(lambda: c.live.applied == 50, "the first events")
+        hold = threading.Event()
+        read = c.reader.read
+        c.reader.read = lambda: [] if hold.is_set() else read()  # type: ignore[method-assign]
+        hold.set()
+        time.sleep(0.05)  # a read in flight returns
+        send_events(r, KEYS.events, events[50:60])
+        stolen = r.xreadgroup("streamrate", "consumer-1", {KEYS.events: ">"}, count=10)
+        hold.clear()
+        assert len(stolen[0][1]) == 10
+        send_events(r, KEYS.events, events[60:])
+        _wait(lambda: c.live.applied == len(events), "every event, the stolen ones too")
+    finally:
+        stop.set()
+        svc.join()

@@ -316,9 +316,21 @@ class Writer:
         if self.clock() - self.last_claim_at < max(self.space.claim_idle_ms / 2000, 1.0):
             return
         self.last_claim_at = self.clock()
+        mine = set(self.checkpoints.to_ack)  # applied by us, awaiting the next checkpoint
+        if self.lease is not None:  # read under our name by a writer that lost the lease
+            strays = [
+                e for e in self.reader.own_strays(self.lease.settings.lease_ms) if e[0] not in mine
+            ]
+            if strays:
+                log.warning(
+                    "space %s: applying %d entries a replaced writer had read",
+                    self.space.name,
+                    len(strays),
+                )
+                self.handle(sorted(strays, key=lambda e: id_key(e[0])), late=True)
+                mine = set(self.checkpoints.to_ack)
         if not self.reader.others_pending():
             return
-        mine = set(self.checkpoints.to_ack)  # applied by us, awaiting the next checkpoint
         claimed = [e for e in self.reader.claim() if e[0] not in mine]
         if claimed:
             log.warning("space %s: applying %d late entries", self.space.name, len(claimed))
