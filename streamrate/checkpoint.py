@@ -345,6 +345,15 @@ class CheckpointStore(Protocol):
     def save(self, data: bytes) -> None: ...
 
 
+class Fence(Protocol):
+    """The writer lease seen by a store (:class:`streamrate.stream.lease.Lease`):
+    ``check`` raises when the lease is no longer held; ``set`` writes a key only
+    while it is."""
+
+    def check(self) -> None: ...
+    def set(self, key: str, data: bytes) -> None: ...
+
+
 class FileCheckpointStore:
     """``<dir>/<space>.ckpt.npz``, replaced atomically.
 
@@ -352,8 +361,9 @@ class FileCheckpointStore:
     beside it; :meth:`load`, called at start, removes those.
     """
 
-    def __init__(self, directory: Path | str, space: str) -> None:
+    def __init__(self, directory: Path | str, space: str, fence: Fence | None = None) -> None:
         self.path = Path(directory) / f"{space}.ckpt.npz"
+        self.fence = fence  # the writer's lease, checked right before the rename
 
     def remove_leftovers(self) -> list[Path]:
         """Delete temporary files of interrupted writes; returns what was removed."""
@@ -380,19 +390,23 @@ class FileCheckpointStore:
             raise StateError(f"cannot read checkpoint {self.path}: {exc}") from exc
 
     def save(self, data: bytes) -> None:
-        write_atomic(self.path, data)
+        write_atomic(self.path, data, None if self.fence is None else self.fence.check)
 
 
 class RedisCheckpointStore:
     """One Redis string key (``SET`` is atomic)."""
 
-    def __init__(self, client: Any, key: str) -> None:
+    def __init__(self, client: Any, key: str, fence: Fence | None = None) -> None:
         self.client = client
         self.key = key
+        self.fence = fence  # the writer's lease: SET only while it is held
 
     def load(self) -> bytes | None:
         data = self.client.get(self.key)
         return None if data is None else CheckpointBlob.named(bytes(data), f"redis key {self.key}")
 
     def save(self, data: bytes) -> None:
-        self.client.set(self.key, data)
+        if self.fence is not None:
+            self.fence.set(self.key, data)
+        else:
+            self.client.set(self.key, data)

@@ -326,7 +326,8 @@ def serve(
         str,
         typer.Option(
             help="writer: learn, checkpoint and write the applied log; responder: follow the "
-            "writer and answer the request stream; both: one process doing all (default)."
+            "writer and answer the request stream; both: one process doing all (default); "
+            "standby: a responder that becomes the writer when the writer lease lapses."
         ),
     ] = "both",
 ) -> None:
@@ -337,8 +338,8 @@ def serve(
     from streamrate.service import serve_forever
 
     try:
-        if role not in ("writer", "responder", "both"):
-            raise ConfigError(f"--role {role!r}: one of writer, responder, both")
+        if role not in ("writer", "responder", "both", "standby"):
+            raise ConfigError(f"--role {role!r}: one of writer, responder, both, standby")
         extra = [] if log_format is None else [f"log_format={log_format}"]
         settings = _service_settings(config, redis_url, [*(set_ or []), *extra])
         setup_logging(settings.log_level, settings.log_format)

@@ -19,6 +19,7 @@ slots)::
     {sr:duel}:q:errors error replies to requests that named no usable reply channel
     {sr:duel}:applied  the applied log: what the writer applied, in its order (replicas follow it)
     {sr:duel}:epoch    the writer's epoch counter (INCR at every writer start)
+    {sr:duel}:lease    the writer lease: "<holder> <epoch>", PX lease_ms (one writer per space)
     {sr:duel}:q:stream requests shared by responders (consumer group ``responders``)
 
 >>> s = Settings(spaces=(SpaceSettings(name="duel"),))
@@ -269,6 +270,26 @@ class ReplicaSettings(BaseModel):
     log_min_entries: int = Field(1000, ge=0)
 
 
+class LeaseSettings(BaseModel):
+    """The writer lease of each space (streamrate.stream.lease)."""
+
+    model_config = _FROZEN
+    # A writer that has not renewed its lease for this long loses it; a standby
+    # then takes over (failover takes about this long).
+    lease_ms: int = Field(5000, ge=100)
+    # How often the holder renews; well under lease_ms so that one slow renewal
+    # does not lose the lease.
+    renew_every_ms: int = Field(1000, ge=10)
+    # How often a standby looks whether the lease is free.
+    poll_every_ms: int = Field(250, ge=10)
+
+    @model_validator(mode="after")
+    def _renew_within_lease(self) -> LeaseSettings:
+        if self.renew_every_ms * 2 > self.lease_ms:
+            raise ValueError("lease: renew_every_ms must be at most half of lease_ms")
+        return self
+
+
 @dataclass(frozen=True)
 class SpaceKeys:
     """All Redis names of one space (see the module docstring)."""
@@ -284,6 +305,7 @@ class SpaceKeys:
     applied: str = ""
     epoch: str = ""
     request_stream: str = ""
+    lease: str = ""
 
     def live_of(self, watcher: str) -> str:
         """The live-feed channel of one watcher (the bare ``live`` for the unnamed one)."""
@@ -303,6 +325,7 @@ class Settings(BaseModel):
     metrics: MetricsSettings = Field(default_factory=MetricsSettings)
     queries: QuerySettings = Field(default_factory=QuerySettings)
     replica: ReplicaSettings = Field(default_factory=ReplicaSettings)
+    lease: LeaseSettings = Field(default_factory=LeaseSettings)
     spaces: tuple[SpaceSettings, ...] = (SpaceSettings(),)
 
     @model_validator(mode="after")
@@ -328,6 +351,7 @@ class Settings(BaseModel):
             applied=f"{tag}:applied",
             epoch=f"{tag}:epoch",
             request_stream=f"{tag}:q:stream",
+            lease=f"{tag}:lease",
         )
 
     def space(self, name: str | None = None) -> SpaceSettings:

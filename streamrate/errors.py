@@ -57,3 +57,8 @@ class AppliedLogError(StateError):
 class CheckpointRefusedError(ServiceError):
     """The space's checkpoint cannot be read or was written for other model settings:
     the service does not start (the message names the checkpoint and the ways out)."""
+
+
+class LeaseLostError(ServiceError):
+    """The writer no longer holds its space's lease (another writer took it, or it
+    lapsed while this one was paused): it must stop writing at once."""

@@ -5,7 +5,15 @@ process that learns, checkpoints, acknowledges and dead-letters; it writes the
 applied log) and answers today's pub/sub requests; ``both`` (the default, one
 process as before) does that and also answers from the request stream;
 ``responder`` runs a replica per space (:mod:`streamrate.replica.space`) that
-follows the writer's applied log and answers from the request stream.
+follows the writer's applied log and answers from the request stream;
+``standby`` runs the same replica and, when the space's writer lease is free
+(the writer died or was paused past ``lease.lease_ms``), stops it and becomes
+the space's writer (as ``both``).
+
+A writer holds the space's lease (:mod:`streamrate.stream.lease`) while it runs:
+it waits at start while another holds it, renews it on its own thread, gives it
+back after the final checkpoint, and stops (one log line, exit code 2) without
+writing anything more once it finds the lease lost.
 
 Per model space two threads run: the writer (:mod:`streamrate.stream.writer`) and
 the query responder (pub/sub, its own Redis connection, reads the live model
@@ -36,7 +44,7 @@ from prometheus_client import CollectorRegistry
 from streamrate.checkpoint import CheckpointStore, FileCheckpointStore, RedisCheckpointStore
 from streamrate.config import RedisSettings, Settings, SpaceSettings
 from streamrate.connect import RedisClients
-from streamrate.errors import CheckpointRefusedError
+from streamrate.errors import CheckpointRefusedError, LeaseLostError, ServiceError
 from streamrate.metrics import ReplicaMetrics, ServiceMetrics, serve_metrics
 from streamrate.models.base import Model
 from streamrate.models.registry import build_model
@@ -47,6 +55,7 @@ from streamrate.serve.livefeed import WatchRegistry
 from streamrate.serve.queries import MAX_WATCH
 from streamrate.serve.responder import Responder
 from streamrate.stream.apply import Observer
+from streamrate.stream.lease import Lease
 from streamrate.stream.writer import Writer
 from streamrate.watch.quality_metrics import QualityMetrics, QualityObserver, quality_observers
 
@@ -54,8 +63,8 @@ log = logging.getLogger("streamrate.service")
 REDIS_DOWN = (redis.ConnectionError, redis.TimeoutError)
 QUERY_SWITCH_INTERVAL_S = 0.0002
 ClientFactory = Callable[[], Any]
-Role = Literal["writer", "responder", "both"]
-ROLES: tuple[Role, ...] = ("writer", "responder", "both")
+Role = Literal["writer", "responder", "both", "standby"]
+ROLES: tuple[Role, ...] = ("writer", "responder", "both", "standby")
 
 
 def redis_factory(settings: RedisSettings) -> ClientFactory:
@@ -171,11 +180,13 @@ class SpaceService:
         self.keys = settings.keys(space)
         self.watch = WatchRegistry(MAX_WATCH, settings.queries.max_watchers)
         client = clients()
+        # One writer per space: every write below is fenced by this lease.
+        self.lease = Lease(client, self.keys.lease, self.keys.epoch, settings.lease, clock=clock)
         store: CheckpointStore
         if settings.checkpoint.store == "redis":
-            store = RedisCheckpointStore(client, self.keys.ckpt)
+            store = RedisCheckpointStore(client, self.keys.ckpt, self.lease)
         else:
-            store = FileCheckpointStore(settings.checkpoint.dir, space.name)
+            store = FileCheckpointStore(settings.checkpoint.dir, space.name, self.lease)
         builder = model_builder or (lambda: build_model(space.model, **space.model_settings))
         self.consumer = Writer(
             client,
@@ -189,9 +200,11 @@ class SpaceService:
             clock,
             log_min_entries=settings.replica.log_min_entries,
             background=settings.checkpoint.background,
+            lease=self.lease,
         )
         self.ready = threading.Event()  # the consumer has recovered and is reading
-        self.fatal: CheckpointRefusedError | None = None  # set when the space cannot start
+        # Set when the space cannot start (checkpoint refused) or lost its lease.
+        self.fatal: ServiceError | None = None
         self.q = settings.queries
         self.responder = Responder(
             settings, space, self.keys, clients, metrics, self.consumer.live, self.watch
@@ -200,7 +213,7 @@ class SpaceService:
         self.answerer = self.responder.answerer
         # In one process (role "both") the writer also answers the request stream.
         self.stream: StreamResponder | None = None
-        if role == "both":
+        if role in ("both", "standby"):
             self.stream = StreamResponder(
                 space, self.keys, settings.replica, self.responder, metrics, share_cpu=True
             )
@@ -209,7 +222,11 @@ class SpaceService:
         name = self.space.name
         out = [
             threading.Thread(target=fn, args=(stop,), name=f"{role}-{name}", daemon=True)
-            for fn, role in ((self.consume, "consumer"), (self.respond, "queries"))
+            for fn, role in (
+                (self.consume, "consumer"),
+                (self.respond, "queries"),
+                (self.keep_lease, "lease"),
+            )
         ]
         if self.stream is not None:
             rs = self.settings.redis
@@ -241,6 +258,8 @@ class SpaceService:
         streak = self.metrics.error_streak.labels(**lbl)
         c = self.consumer
         must_recover = True
+        if not self.wait_for_lease(stop):
+            return
         while not stop.is_set():
             try:
                 if must_recover:
@@ -259,10 +278,12 @@ class SpaceService:
                 streak.set(0)
                 if c.live.status != "ready":
                     c.mark("ready", "applying events")
-            except CheckpointRefusedError as exc:
+            except (CheckpointRefusedError, LeaseLostError) as exc:
                 self.fatal = exc
                 c.mark("stalled", str(exc))
-                stop.set()  # the service does not start on a checkpoint it cannot use
+                if isinstance(exc, LeaseLostError):
+                    log.error("space %s: %s", self.space.name, exc)
+                stop.set()  # no start on a checkpoint it cannot use; no writes on a lost lease
                 return
             except REDIS_DOWN as exc:
                 connected.set(0)
@@ -287,12 +308,41 @@ class SpaceService:
             try:
                 c.close()
                 log.info("space %s: final checkpoint at %s", self.space.name, c.ckpt_id)
+                self.lease.release()  # a standby need not wait for it to lapse
+                return
+            except LeaseLostError as exc:
+                log.error("space %s: %s", self.space.name, exc)
                 return
             except REDIS_DOWN as exc:
                 if time.monotonic() > deadline:
                     log.error("space %s: could not write the final checkpoint", self.space.name)
                     return
                 outage.failed(exc, threading.Event())
+
+    # -- the lease ------------------------------------------------------------------
+    def wait_for_lease(self, stop: threading.Event) -> bool:
+        """Take the writer lease, waiting while another writer holds it; False on ``stop``."""
+        said = False
+        while not stop.is_set():
+            try:
+                if self.lease.take():
+                    return True
+                if not said:
+                    log.info(
+                        "space %s: waiting for the writer lease (held by %s)",
+                        self.space.name,
+                        self.lease.holder_now(),
+                    )
+                    said = True
+            except REDIS_DOWN as exc:
+                self.consumer.mark("loading", f"Redis is unreachable ({exc})")
+            stop.wait(self.settings.lease.poll_every_ms / 1000)
+        return False
+
+    def keep_lease(self, stop: threading.Event) -> None:
+        """Renew the lease until ``stop`` (the consumer notices a loss, and logs it, at
+        its next read or write)."""
+        self.lease.keep(stop, lambda exc: None)
 
     # -- query threads (streamrate.serve.responder) -------------------------------------
     def respond(self, stop: threading.Event) -> None:
@@ -306,6 +356,61 @@ class SpaceService:
             )
 
         self.responder.run(stop, outage_of)
+
+
+class Standby:
+    """A replica of one space that becomes its writer when the writer lease is free.
+
+    Until then it follows the applied log and answers the request stream
+    (:class:`ReplicaSpace`); it looks at the lease every ``lease.poll_every_ms``.
+    Once the lease is free it stops the replica and starts a writer
+    (:class:`SpaceService`, role ``both``), which takes the lease and continues
+    the stream after the newest checkpoint, claiming what the old writer left
+    pending.
+    """
+
+    def __init__(
+        self,
+        settings: Settings,
+        space: SpaceSettings,
+        clients: ClientFactory,
+        metrics: ServiceMetrics,
+        replica_metrics: ReplicaMetrics,
+        make_writer: Callable[[], SpaceService],
+    ) -> None:
+        self.settings, self.space, self.clients = settings, space, clients
+        self.replica = ReplicaSpace(settings, space, clients, metrics, replica_metrics)
+        self.make_writer = make_writer
+        self.writer: SpaceService | None = None
+        keys = settings.keys(space)
+        self.probe = Lease(clients(), keys.lease, keys.epoch, settings.lease)
+
+    def run(self, stop: threading.Event) -> None:
+        following = threading.Event()
+        threads = self.replica.threads(following)
+        for t in threads:
+            t.start()
+        poll_s = self.settings.lease.poll_every_ms / 1000
+        free = False
+        while not free and not stop.wait(poll_s):
+            try:
+                free = self.probe.holder_now() is None
+            except REDIS_DOWN:
+                continue
+        following.set()
+        for t in threads:
+            t.join()
+        if stop.is_set():
+            return
+        log.info(
+            "space %s: the writer lease is free; this standby becomes the writer", self.space.name
+        )
+        self.writer = self.make_writer()
+        own = self.writer.threads(stop)
+        for t in own:
+            t.start()
+        for t in own:
+            t.join()
 
 
 def _live_recalibrators(consumer: Writer) -> dict[str, OnlineRecalibrator]:
@@ -330,7 +435,23 @@ class Service:
         self.metrics = ServiceMetrics(self.registry, [s.name for s in settings.spaces])
         self.replicas: list[ReplicaSpace] = []
         self.spaces: list[SpaceService] = []
+        self.standbys: list[Standby] = []
         self.threads: list[threading.Thread] = []
+        if role == "standby":
+            rm = ReplicaMetrics(self.registry, [s.name for s in settings.spaces])
+            self.quality = QualityMetrics(self.registry)
+            self.standbys = [
+                Standby(
+                    settings,
+                    s,
+                    clients,
+                    self.metrics,
+                    rm,
+                    partial(self._space_service, clients, observers, clock, s, "both"),
+                )
+                for s in settings.spaces
+            ]
+            return
         if role == "responder":
             rm = ReplicaMetrics(self.registry, [s.name for s in settings.spaces])
             self.replicas = [
@@ -339,21 +460,30 @@ class Service:
             return
         self.quality = QualityMetrics(self.registry)
         self.spaces = [
-            SpaceService(
-                settings,
-                s,
-                clients,
-                self.metrics,
-                [*observers, *quality_observers(s.name, s.quality, self.quality)],
-                clock=clock,
-                role=role,
-            )
-            for s in settings.spaces
+            self._space_service(clients, observers, clock, s, role) for s in settings.spaces
         ]
-        for sp in self.spaces:  # the recalibration gauges follow the live model
-            for obs in sp.consumer.observers:
-                if isinstance(obs, QualityObserver):
-                    obs.recalibrators = partial(_live_recalibrators, sp.consumer)
+
+    def _space_service(
+        self,
+        clients: ClientFactory,
+        observers: Sequence[Observer],
+        clock: Callable[[], float],
+        space: SpaceSettings,
+        role: Role,
+    ) -> SpaceService:
+        sp = SpaceService(
+            self.settings,
+            space,
+            clients,
+            self.metrics,
+            [*observers, *quality_observers(space.name, space.quality, self.quality)],
+            clock=clock,
+            role=role,
+        )
+        for obs in sp.consumer.observers:  # the recalibration gauges follow the live model
+            if isinstance(obs, QualityObserver):
+                obs.recalibrators = partial(_live_recalibrators, sp.consumer)
+        return sp
 
     def start(self, stop: threading.Event) -> None:
         m = self.settings.metrics
@@ -361,6 +491,13 @@ class Service:
             serve_metrics(self.registry, m.bind, m.port)
         for sp in self.spaces:
             self.threads += sp.threads(stop)
+        for sb in self.standbys:
+            self.threads.append(
+                threading.Thread(
+                    target=sb.run, args=(stop,), name=f"standby-{sb.space.name}", daemon=True
+                )
+            )
+            log.info("space %s: standby following the writer", sb.space.name)
         for rp in self.replicas:
             self.threads += rp.threads(stop)
             log.info("space %s: responder %s following the writer", rp.space.name, rp.stream.name)
@@ -377,7 +514,8 @@ class Service:
         while not stop.is_set():
             stop.wait(0.5)
         self.join()
-        for sp in self.spaces:
+        spaces = [*self.spaces, *(sb.writer for sb in self.standbys if sb.writer is not None)]
+        for sp in spaces:
             if sp.fatal is not None:
                 raise sp.fatal
 

@@ -24,6 +24,7 @@ import math
 import os
 import tempfile
 import zipfile
+from collections.abc import Callable
 from pathlib import Path
 from typing import IO, Any
 
@@ -194,8 +195,13 @@ def _read_npy(fh: IO[bytes], size: int) -> np.ndarray:
     return arr.reshape(shape, order="F" if fortran else "C")
 
 
-def write_atomic(path: Path | str, data: bytes) -> None:
-    """Write bytes so that ``path`` holds either the old or the new content, never half."""
+def write_atomic(
+    path: Path | str, data: bytes, before_replace: Callable[[], None] | None = None
+) -> None:
+    """Write bytes so that ``path`` holds either the old or the new content, never half.
+
+    ``before_replace`` runs after the data is on disk and before the rename; what
+    it raises stops the write (the writer lease's fence)."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
@@ -204,6 +210,8 @@ def write_atomic(path: Path | str, data: bytes) -> None:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
+        if before_replace is not None:
+            before_replace()
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)

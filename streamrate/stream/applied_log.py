@@ -33,7 +33,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Protocol
 
 from streamrate.errors import AppliedLogError
 
@@ -133,6 +133,16 @@ def id_key(stream_id: str) -> tuple[int, int]:
     return int(ms), int(seq or 0)
 
 
+class LogFence(Protocol):
+    """The writer lease as the applied log sees it (:class:`streamrate.stream.lease.Lease`)."""
+
+    def xadd_all(self, stream: str, entries: Sequence[dict[str, Any]]) -> list[str]: ...
+
+
+FENCED_CHUNK = 1000
+"""Events per ``chunk`` entry at most when the lease fences the log (script argument limits)."""
+
+
 class AppliedLogWriter:
     """The writer's side: a new epoch per start, entries collected per batch and
     appended in one pipelined round trip before anything they cover is checkpointed.
@@ -140,28 +150,38 @@ class AppliedLogWriter:
     ``flush`` returns the id of the newest entry written (the checkpoint's ``log_id``).
     """
 
-    def __init__(self, client: Any, key: str, epoch_key: str) -> None:
-        self.r, self.key, self.epoch_key = client, key, epoch_key
+    def __init__(
+        self, client: Any, key: str, epoch_key: str, fence: LogFence | None = None
+    ) -> None:
+        self.r, self.key, self.epoch_key, self.fence = client, key, epoch_key, fence
         self.epoch = 0
         self.last_id = "0-0"
         self.pending: list[dict[str, Any]] = []
 
-    def start(self, applied: int, ckpt_last_id: str, ckpt_log_id: str) -> int:
-        """Take a new epoch and append the ``start`` entry (at once: it comes first)."""
+    def start(self, applied: int, ckpt_last_id: str, ckpt_log_id: str, epoch: int = 0) -> int:
+        """Take a new epoch (or use ``epoch``, the one the lease took) and append the
+        ``start`` entry (at once: it comes first)."""
         self.pending = []
-        self.epoch = int(self.r.incr(self.epoch_key))
+        self.epoch = epoch or int(self.r.incr(self.epoch_key))
         self.pending.append(start_fields(self.epoch, applied, ckpt_last_id, ckpt_log_id))
         self.flush()
         return self.epoch
 
     def chunk(self, seq: int, ids: Sequence[str], raws: Sequence[bytes]) -> None:
-        self.pending.append(chunk_fields(self.epoch, seq, ids, raws))
+        step = FENCED_CHUNK if self.fence is not None else max(len(ids), 1)
+        for at in range(0, len(ids), step):
+            part = slice(at, at + step)
+            self.pending.append(chunk_fields(self.epoch, seq + at, ids[part], raws[part]))
 
     def promote(self, seq: int, model: str) -> None:
         self.pending.append(promote_fields(self.epoch, seq, model))
 
     def flush(self) -> str:
         if not self.pending:
+            return self.last_id
+        if self.fence is not None:  # refused (LeaseLostError) once the lease is not ours
+            self.last_id = self.fence.xadd_all(self.key, self.pending)[-1]
+            self.pending = []
             return self.last_id
         pipe = self.r.pipeline(transaction=False)
         for fields in self.pending:

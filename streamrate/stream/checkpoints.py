@@ -31,6 +31,7 @@ import numpy as np
 from streamrate.checkpoint import (
     Checkpoint,
     CheckpointStore,
+    Fence,
     FileCheckpointStore,
     RedisCheckpointStore,
     checkpoint_contents,
@@ -39,7 +40,7 @@ from streamrate.checkpoint import (
 )
 from streamrate.config import SpaceSettings
 from streamrate.dedupe import SeenIds
-from streamrate.errors import CheckpointRefusedError, StreamrateError
+from streamrate.errors import CheckpointRefusedError, LeaseLostError, StreamrateError
 from streamrate.metrics import ServiceMetrics
 from streamrate.models.base import Model, ModelState
 from streamrate.models.registry import model_from_state
@@ -230,8 +231,10 @@ class Checkpointer:
         clock: Callable[[], float],
         log_min_entries: int,
         background: bool = False,
+        fence: Fence | None = None,
     ) -> None:
         self.store, self.reader, self.log, self.live = store, reader, log, live
+        self.fence = fence  # the writer lease, checked before acks and trims
         self.observers, self.metrics, self.space, self.clock = observers, metrics, space, clock
         self.log_min_entries = log_min_entries
         self.background = background
@@ -375,6 +378,8 @@ class Checkpointer:
         if self._thread is not None:
             self._thread.join()
         self._job = self._thread = None
+        if isinstance(job.error, LeaseLostError):
+            raise job.error  # another writer holds the space: stop, write nothing more
         if job.error is not None:
             # Nothing it covers is acknowledged; they wait for the next checkpoint.
             self.to_ack[:0] = job.acks
@@ -407,6 +412,8 @@ class Checkpointer:
 
     def _after_durable(self) -> None:
         """Acknowledge what durable checkpoints cover; trim stream and applied log."""
+        if self.fence is not None and (self.durable or self.space.retention_s is not None):
+            self.fence.check()  # a writer that lost its lease acknowledges and trims nothing
         while self.durable:
             part = self.durable[:ACK_CHUNK]
             self.reader.ack(part)

@@ -189,6 +189,27 @@ class StreamReader:
             if start == "0-0":
                 return out
 
+    def own_strays(self, min_idle_ms: int, count: int = 500) -> list[Entry]:
+        """Entries pending under this consumer name, idle at least ``min_idle_ms``
+        (the caller leaves out those it handled): delivered to an earlier holder
+        of the name, e.g. a writer that read once more after losing its lease."""
+        rows = self.r.xpending_range(
+            self.keys.events,
+            self.space.group,
+            min="-",
+            max="+",
+            count=count,
+            consumername=self.space.consumer,
+            idle=min_idle_ms,
+        )
+        out: list[Entry] = []
+        for row in rows:
+            raw = row["message_id"]
+            sid = raw if isinstance(raw, bytes) else str(raw).encode()
+            got: Any = self.r.xrange(self.keys.events, min=sid, max=sid)
+            out.append((sid, got[0][1] if got else None))  # None: deleted meanwhile
+        return out
+
     def claim_orphans(
         self, stop: threading.Event | None, counted: Callable[[int], None] | None = None
     ) -> None:

@@ -66,7 +66,7 @@ import redis
 from streamrate.checkpoint import CheckpointStore, load_parts
 from streamrate.config import SpaceKeys, SpaceSettings
 from streamrate.dedupe import SeenIds
-from streamrate.errors import StreamrateError
+from streamrate.errors import LeaseLostError, StreamrateError
 from streamrate.metrics import CONSUMER_STATES, ServiceMetrics
 from streamrate.models.base import Model, warm_up
 from streamrate.serve.livefeed import WatchRegistry
@@ -74,6 +74,7 @@ from streamrate.stream.applied_log import AppliedLogWriter
 from streamrate.stream.apply import Applier, LiveModel, Observer, Status, redis_publisher
 from streamrate.stream.checkpoints import Checkpointer, describe_store, load_checked, refusal
 from streamrate.stream.decide import DeadLetters, Decider, Decision, split_fresh
+from streamrate.stream.lease import Lease
 from streamrate.stream.reader import Entry, StreamReader, id_key
 
 log = logging.getLogger("streamrate.consumer")
@@ -100,8 +101,10 @@ class Writer:
         clock: Callable[[], float] = time.monotonic,
         log_min_entries: int = 1000,
         background: bool = False,
+        lease: Lease | None = None,
     ) -> None:
         self.space, self.keys, self.store, self.metrics = space, keys, store, metrics
+        self.lease = lease  # fences every write (give the same lease to the store)
         self.build_model = build_model
         self.watch = watch if watch is not None else WatchRegistry(0, 0)
         self.observers: list[Observer] = list(observers)
@@ -120,10 +123,10 @@ class Writer:
         self.applier = Applier(
             self.live, self.watch, keys.live_of, redis_publisher(client), self.observers
         )
-        self.log = AppliedLogWriter(client, keys.applied, keys.epoch)  # for the replicas
+        self.log = AppliedLogWriter(client, keys.applied, keys.epoch, lease)  # for the replicas
         self.checkpoints = Checkpointer(
             store, self.reader, self.log, self.live, self.observers, metrics, space, clock,
-            log_min_entries, background,
+            log_min_entries, background, lease,
         )  # fmt: skip
         self.last_id = "0-0"  # the last handled stream id (see _at)
         self.counters = {"applied": 0, "dead_lettered": 0, "duplicate": 0}
@@ -195,10 +198,17 @@ class Writer:
         history already in the stream is learned whatever position an older group
         had reached.
         """
+        epoch = 0
+        if self.lease is not None:  # the epoch is the fencing token of the lease
+            epoch = self.lease.take()
+            if not epoch:
+                raise LeaseLostError(
+                    f"writer lease {self.lease.key} is held by {self.lease.holder_now()!r}"
+                )
         had_checkpoint = self.load_checkpoint()
         ckpt = self.checkpoints
         # A new epoch: replicas ahead of this checkpoint reload it (see applied_log).
-        self.log.start(self.live.applied, ckpt.ckpt_id, ckpt.log_id)
+        self.log.start(self.live.applied, ckpt.ckpt_id, ckpt.log_id, epoch)
         start = ckpt.ckpt_id if had_checkpoint else self.reader.start_id()
         self.reader.place_group(start, move=not had_checkpoint)
         if not had_checkpoint and start != "0-0":
@@ -238,6 +248,8 @@ class Writer:
     # -- the loop ---------------------------------------------------------------
     def step(self) -> int:
         """Read and handle one batch; checkpoint when due. Returns entries handled."""
+        if self.lease is not None:
+            self.lease.ensure()  # after a pause: nothing is read on a lapsed lease
         entries = self.reader.read()
         if entries:
             self.handle(entries)
@@ -259,6 +271,8 @@ class Writer:
             return
         self._top_in_hand = fresh.top
         decision = self.decider.decide(fresh.entries)
+        if decision.dead and self.lease is not None:
+            self.lease.check()
         self.dead.write(decision.dead)
         self._apply(decision)
         # Also when nothing moved forward: a late chunk set the version back.
@@ -307,9 +321,21 @@ class Writer:
         if self.clock() - self.last_claim_at < max(self.space.claim_idle_ms / 2000, 1.0):
             return
         self.last_claim_at = self.clock()
+        mine = self.checkpoints.awaiting()  # applied by us, not acknowledged yet
+        if self.lease is not None:  # read under our name by a writer that lost the lease
+            strays = [
+                e for e in self.reader.own_strays(self.lease.settings.lease_ms) if e[0] not in mine
+            ]
+            if strays:
+                log.warning(
+                    "space %s: applying %d entries a replaced writer had read",
+                    self.space.name,
+                    len(strays),
+                )
+                self.handle(sorted(strays, key=lambda e: id_key(e[0])), late=True)
+                mine = self.checkpoints.awaiting()
         if not self.reader.others_pending():
             return
-        mine = self.checkpoints.awaiting()  # applied by us, not acknowledged yet
         claimed = [e for e in self.reader.claim() if e[0] not in mine]
         if claimed:
             log.warning("space %s: applying %d late entries", self.space.name, len(claimed))
