@@ -224,7 +224,10 @@ def test_service_over_tls_with_verified_certificates(
              "--set", "spaces.0.dedupe_window_s=1e9",
              "--set", "spaces.0.model_settings=" + json.dumps(MODEL_SETTINGS)]  # fmt: skip
     overrides = [o for o in _tls_overrides(tls_redis, "streamrate") if o != "--set"]
-    settings = load_settings(None, [*overrides, *space[1::2], f"checkpoint.dir={tmp_path}"])
+    settings = load_settings(
+        None,
+        [*overrides, *space[1::2], f"checkpoint.dir={tmp_path}", "metrics.enabled=false"],
+    )
     assert settings.redis.tls_verify  # verification is on without asking for it
     service = Service(settings, redis_factory(settings.redis), CollectorRegistry())
     stop = threading.Event()
