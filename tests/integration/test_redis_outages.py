@@ -55,6 +55,9 @@ def test_the_query_sides_outage_is_counted_beside_the_consumers(
         redis_server.start()
         r = redis_server.client()
         wait_for(lambda: r.pubsub_numsub("{sr:duel}:q")[0][1] > 0, 30, "re-subscription")
+        # Until the consumer is back too, questions are answered "not ready: stalled".
+        live = service.spaces[0].consumer.live
+        wait_for(lambda: live.status == "ready", 30, "the consumer to be ready again")
         assert ask(r, "{sr:duel}:q", {"kind": "pairing", "first": ["a"], "second": ["b"]})["ok"]
     finally:
         stop.set()
