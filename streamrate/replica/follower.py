@@ -45,6 +45,7 @@ from streamrate.serve.livefeed import WatchRegistry
 from streamrate.stream.applied_log import LogEntry, id_key, parse_entry
 from streamrate.stream.apply import Applier, LiveModel, Status, now_ms
 from streamrate.stream.checkpoints import describe_store, load_checked
+from streamrate.stream.reader import rows_of
 
 log = logging.getLogger("streamrate.replica")
 REDIS_DOWN = (redis.ConnectionError, redis.TimeoutError)
@@ -159,7 +160,7 @@ class Follower:
             count=READ_COUNT,
             block=self.settings.block_ms if block_ms is None else block_ms,
         )
-        rows = _rows(resp)
+        rows = rows_of(resp)
         try:
             for sid, fields in rows:
                 self.handle(parse_entry(sid, fields))
@@ -268,14 +269,3 @@ class Follower:
                     return False
                 self.changed.wait(min(left, 0.1))
         return True
-
-
-def _rows(resp: Any) -> list[tuple[bytes, dict[bytes, bytes]]]:
-    if not resp:
-        return []
-    if isinstance(resp, dict):  # RESP3 shape
-        out: list[tuple[bytes, dict[bytes, bytes]]] = []
-        for rows in resp.values():
-            out.extend(rows[0] if rows and isinstance(rows[0], list) else rows)
-        return out
-    return [(sid, fields) for sid, fields in resp[0][1]]

@@ -44,6 +44,7 @@ from streamrate.metrics import ServiceMetrics
 from streamrate.serve.queries import peek
 from streamrate.serve.responder import Responder, _Meter, busy_reply
 from streamrate.stream.apply import now_ms
+from streamrate.stream.reader import rows_of
 
 log = logging.getLogger("streamrate.queries")
 REDIS_DOWN = (redis.ConnectionError, redis.TimeoutError)
@@ -103,7 +104,7 @@ class StreamResponder:
             count=READ_COUNT,
             block=block_ms,
         )
-        rows = _rows(resp)
+        rows = rows_of(resp)
         if rows:
             self._handle(client, rows)
         if time.monotonic() - self._claimed_at >= CLAIM_EVERY_S:
@@ -199,14 +200,3 @@ class StreamResponder:
 def request_fields(request: dict[str, Any]) -> dict[str, str]:
     """The stream entry of one request (what :func:`streamrate.client.ask` adds)."""
     return {REQUEST_FIELD.decode(): json.dumps(request)}
-
-
-def _rows(resp: Any) -> list[tuple[bytes, dict[bytes, bytes]]]:
-    if not resp:
-        return []
-    if isinstance(resp, dict):  # RESP3 shape
-        out: list[tuple[bytes, dict[bytes, bytes]]] = []
-        for rows in resp.values():
-            out.extend(rows[0] if rows and isinstance(rows[0], list) else rows)
-        return out
-    return [(sid, fields) for sid, fields in resp[0][1]]

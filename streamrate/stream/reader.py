@@ -56,6 +56,12 @@ def entries_of(resp: Any) -> list[Entry]:
     return [(sid, fields) for sid, fields in resp[0][1]]
 
 
+def rows_of(resp: Any) -> list[tuple[bytes, dict[bytes, bytes]]]:
+    """The entries of a reply that cannot hold deleted entries (``XREAD``, or
+    ``XREADGROUP`` with ``>``): each with its fields."""
+    return [(sid, fields) for sid, fields in entries_of(resp) if fields is not None]
+
+
 def _text(value: Any) -> str:
     return value.decode() if isinstance(value, bytes) else str(value)
 
