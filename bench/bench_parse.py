@@ -18,14 +18,14 @@ import timeit
 from streamrate.events import MatchEvent, event_digest, parse_event, time_problem
 
 SOLO = (
-    b'{"match_id": "m-000123", "finished_at": "2026-03-01T18:00:00Z", "first": ["kestrel"],'
-    b' "second": ["marlow"], "score": 1, "context": {"map": "saltflats", "mode": "duel"}}'
+    b'{"match_id": "m-000123", "finished_at": "2026-03-01T18:00:00Z", "first": ["kelvash"],'
+    b' "second": ["morvenn"], "score": 1, "context": {"map": "saltflats", "mode": "duel"}}'
 )
 TEAMS = (
     b'{"match_id": "m-000124", "finished_at": "2026-03-01T18:00:00Z",'
-    b' "first": ["kestrel", "tindra", "oskel"], "second": ["marlow", "brisa", "vantor"],'
+    b' "first": ["kelvash", "tuvrenn", "oskuvar"], "second": ["morvenn", "bravik", "vantor"],'
     b' "score": 0.5, "context": {"map": "glasswood", "mode": "trio", "patch": "1.4"},'
-    b' "features": {"brisa": {"training_hours": 12.5, "style_hint": "rush"}}}'
+    b' "features": {"bravik": {"training_hours": 12.5, "style_hint": "rush"}}}'
 )
 
 

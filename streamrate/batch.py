@@ -24,7 +24,7 @@ Example:
 >>> from streamrate.encode import EntityTable
 >>> from streamrate.events import MatchEvent
 >>> ev = MatchEvent(match_id="m-1", finished_at=datetime(2026, 3, 1, tzinfo=timezone.utc),
-...                 first=("kestrel",), second=("marlow", "tindra"), score=1.0)
+...                 first=("kelvash",), second=("morvenn", "tuvrenn"), score=1.0)
 >>> b = encode_events([ev], EntityTable())
 >>> b.first.tolist(), b.second.tolist(), b.second_size.tolist(), b.score.tolist()
 ([[0]], [[1, 2]], [2], [1.0])

@@ -17,10 +17,10 @@ a reference member (:func:`streamrate.evaluate.paired_block_bootstrap`).
 >>> cs = ChallengerSet(members={"quick": {"kind": "elo", "k": 32.0},
 ...                             "calm": {"kind": "elo", "k": 8.0}})
 >>> ev = MatchEvent(match_id="q-1", finished_at=datetime(2026, 3, 1, tzinfo=timezone.utc),
-...                 first=("kestrel",), second=("marlow",), score=1.0)
+...                 first=("kelvash",), second=("morvenn",), score=1.0)
 >>> cs.learn(ev).p_win, cs.active
 (0.5, 'quick')
->>> cs.promote("calm"); cs.models_["calm"].seen("kestrel")
+>>> cs.promote("calm"); cs.models_["calm"].seen("kelvash")
 1
 """
 

@@ -7,10 +7,10 @@ stream entry; ``streamrate schema`` prints its JSON Schema.
 Example:
 
 >>> ev = parse_event(b'{"match_id": "m-1", "finished_at": "2026-03-01T18:00:00Z",'
-...                  b' "first": ["kestrel"], "second": ["marlow"], "score": 1,'
+...                  b' "first": ["kelvash"], "second": ["morvenn"], "score": 1,'
 ...                  b' "context": {"map": "saltflats", "mode": "duel"}}')
 >>> ev.first, ev.second, ev.score
-(('kestrel',), ('marlow',), 1.0)
+(('kelvash',), ('morvenn',), 1.0)
 """
 
 from __future__ import annotations
@@ -111,7 +111,7 @@ def bad_ids(ids: Iterable[str]) -> str | None:
     Same rule as the event format (checked by the same validator, one distinct
     character at a time), 1 to :data:`MAX_ID_CHARS` characters, no id twice.
 
-    >>> bad_ids(["kestrel", "marlow"]) is None, bad_ids(["kes trel"])
+    >>> bad_ids(["kelvash", "morvenn"]) is None, bad_ids(["kes trel"])
     (True, "id character ' ' (U+0020) is not a letter, mark, digit, punctuation or symbol")
     """
     seen: set[str] = set()
@@ -346,7 +346,7 @@ def time_problem(event: MatchEvent, received_ms: int, future_limit_s: float) -> 
     most ``future_limit_s`` after it, and not before :data:`EARLIEST_FINISH`.
 
     >>> ev = parse_event(b'{"match_id": "m-1", "finished_at": "9999-12-31T00:00:00Z",'
-    ...                  b' "first": ["kestrel"], "second": ["marlow"], "score": 1}')
+    ...                  b' "first": ["kelvash"], "second": ["morvenn"], "score": 1}')
     >>> time_problem(ev, 1_780_000_000_000, 86400.0)[:40]
     'finished_at: 9999-12-31T00:00:00+00:00 i'
     """
@@ -373,9 +373,9 @@ def event_digest(event: MatchEvent) -> bytes:
     make two events differ; any other change does.
 
     >>> a = parse_event(b'{"match_id": "m-1", "finished_at": "2026-03-01T19:00:00+01:00",'
-    ...                 b' "first": ["kestrel"], "second": ["marlow"], "score": 1}')
-    >>> b = parse_event(b'{"score": 1.0, "match_id": "m-1", "first": ["kestrel"],'
-    ...                 b' "second": ["marlow"], "finished_at": "2026-03-01T18:00:00Z"}')
+    ...                 b' "first": ["kelvash"], "second": ["morvenn"], "score": 1}')
+    >>> b = parse_event(b'{"score": 1.0, "match_id": "m-1", "first": ["kelvash"],'
+    ...                 b' "second": ["morvenn"], "finished_at": "2026-03-01T18:00:00Z"}')
     >>> event_digest(a) == event_digest(b), len(event_digest(a))
     (True, 8)
     """

@@ -212,7 +212,7 @@ class Recalibrated(Model):
     >>> from streamrate.events import MatchEvent
     >>> m = Recalibrated(base="elo")
     >>> ev = MatchEvent(match_id="q-1", finished_at=datetime(2026, 3, 1, tzinfo=timezone.utc),
-    ...                 first=("kestrel",), second=("marlow",), score=1.0)
+    ...                 first=("kelvash",), second=("morvenn",), score=1.0)
     >>> m.learn(ev).p_win, m.recalibrator_.params()["events"]
     (0.5, 1)
     """

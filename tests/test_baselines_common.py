@@ -18,7 +18,7 @@ from streamrate.models.base import Model
 from streamrate.models.registry import build_model, model_from_state
 from streamrate.statefile import load_state, save_state
 
-PLAYERS = ["kestrel", "marlow", "tindra", "oskel", "brisa", "vantor", "quill", "sable"]
+PLAYERS = ["kelvash", "morvenn", "tuvrenn", "oskuvar", "bravik", "vantor", "quill", "sable"]
 MAPS = ["saltflats", "ember-quarry", "glasswood", "sunken-bell"]
 T0 = datetime(2026, 3, 1, 18, 0, tzinfo=UTC)
 
@@ -77,10 +77,10 @@ def stream(seed: int, n: int, start: int = 0) -> list[MatchEvent]:
 
 
 QUERIES = [
-    Matchup(first=("kestrel",), second=("marlow",), context={"map": "glasswood"}),
-    Matchup(first=("tindra", "oskel"), second=("brisa", "vantor")),
-    Matchup(first=("kestrel",), second=("newcomer",)),
-    Matchup(first=("ghost-a", "marlow"), second=("ghost-b",), context={"map": "saltflats"}),
+    Matchup(first=("kelvash",), second=("morvenn",), context={"map": "glasswood"}),
+    Matchup(first=("tuvrenn", "oskuvar"), second=("bravik", "vantor")),
+    Matchup(first=("kelvash",), second=("newcomer",)),
+    Matchup(first=("ghost-a", "morvenn"), second=("ghost-b",), context={"map": "saltflats"}),
 ]
 
 

@@ -17,7 +17,7 @@ from streamrate.models.elo import Elo
 from streamrate.simulate import WorldSpec, simulate
 
 T0 = datetime(2026, 3, 1, 18, 0, tzinfo=UTC)
-PLAYERS = ["kestrel", "marlow", "tindra", "oskel", "brisa", "vantor"]
+PLAYERS = ["kelvash", "morvenn", "tuvrenn", "oskuvar", "bravik", "vantor"]
 
 
 def match(first: tuple[str, ...], second: tuple[str, ...], score: float, i: int = 0) -> MatchEvent:
@@ -43,8 +43,8 @@ def stream(seed: int, n: int) -> list[MatchEvent]:
 def expected_score(diff: float) -> float:
     model = Elo()
     model.ratings_[:2] = [1500.0 + diff, 1500.0]
-    model.entities_.rows(["kestrel", "marlow"])
-    return model.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win
+    model.entities_.rows(["kelvash", "morvenn"])
+    return model.predict(Matchup(first=("kelvash",), second=("morvenn",))).p_win
 
 
 # FIDE Handbook, Rating Regulations (B.02), table 8.1(b): rating difference D ->
@@ -87,31 +87,31 @@ def test_recalled_fide_rows_match_their_normal_construction(lo: int, hi: int, pd
 
 def test_update_moves_each_member_by_the_team_delta() -> None:
     m = Elo(k=20.0, advantage_k=0.0)
-    m.learn(match(("kestrel",), ("marlow",), 1.0, 0))  # kestrel 1510, marlow 1490
-    assert m.rating("kestrel") == pytest.approx(1510.0)
-    ev = match(("kestrel", "tindra"), ("marlow", "oskel"), 0.5, 1)
+    m.learn(match(("kelvash",), ("morvenn",), 1.0, 0))  # kelvash 1510, morvenn 1490
+    assert m.rating("kelvash") == pytest.approx(1510.0)
+    ev = match(("kelvash", "tuvrenn"), ("morvenn", "oskuvar"), 0.5, 1)
     p = m.learn(ev).p_win
     # Side means 1505 vs 1495: E = 1 / (1 + 10^(-10/400)).
     assert p == pytest.approx(1.0 / (1.0 + 10.0 ** (-10.0 / 400.0)), rel=1e-15)
     delta = 20.0 * (0.5 - p)
-    assert m.rating("kestrel") == pytest.approx(1510.0 + delta)
-    assert m.rating("tindra") == pytest.approx(1500.0 + delta)
-    assert m.rating("marlow") == pytest.approx(1490.0 - delta)
-    assert m.rating("oskel") == pytest.approx(1500.0 - delta)
-    assert m.seen("kestrel") == 2 and m.seen("oskel") == 1
+    assert m.rating("kelvash") == pytest.approx(1510.0 + delta)
+    assert m.rating("tuvrenn") == pytest.approx(1500.0 + delta)
+    assert m.rating("morvenn") == pytest.approx(1490.0 - delta)
+    assert m.rating("oskuvar") == pytest.approx(1500.0 - delta)
+    assert m.seen("kelvash") == 2 and m.seen("oskuvar") == 1
 
 
 def test_first_side_advantage_is_in_rating_points() -> None:
     m = Elo(first_advantage=100.0)
-    p = m.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win
+    p = m.predict(Matchup(first=("kelvash",), second=("morvenn",))).p_win
     assert p == pytest.approx(1.0 / (1.0 + 10.0 ** (-100.0 / 400.0)))
 
 
 def test_first_side_advantage_is_learned_by_its_own_step() -> None:
     m = Elo(k=20.0, advantage_k=4.0)
-    m.learn(match(("kestrel",), ("marlow",), 1.0, 0))  # E = 0.5: advantage 0 + 4 * 0.5
+    m.learn(match(("kelvash",), ("morvenn",), 1.0, 0))  # E = 0.5: advantage 0 + 4 * 0.5
     assert m.advantage_[0] == pytest.approx(2.0)
-    p = m.predict(Matchup(first=("tindra",), second=("oskel",))).p_win
+    p = m.predict(Matchup(first=("tuvrenn",), second=("oskuvar",))).p_win
     assert p == pytest.approx(1.0 / (1.0 + 10.0 ** (-2.0 / 400.0)))
 
 
@@ -145,15 +145,15 @@ def test_learn_encoded_needs_known_entities() -> None:
     m = Elo()
     batch = encode_events(stream(2, 5), m.entities_)
     got = m.learn_encoded(batch)
-    assert got.p_win.shape == (5,) and m.seen("kestrel") + m.seen("marlow") > 0
+    assert got.p_win.shape == (5,) and m.seen("kelvash") + m.seen("morvenn") > 0
     with pytest.raises(ValueError, match="unknown"):
         m.learn_encoded(encode_events(stream(3, 5), EntityTable(), add=False))
 
 
 def test_mini_batch_adds_up_the_deltas() -> None:
     m = Elo(k=10.0)
-    evs = [match(("kestrel",), ("marlow",), 1.0, 0), match(("kestrel",), ("tindra",), 1.0, 1)]
+    evs = [match(("kelvash",), ("morvenn",), 1.0, 0), match(("kelvash",), ("tuvrenn",), 1.0, 1)]
     p = m.learn_batch(evs)
     assert list(p.p_win) == [0.5, 0.5]
-    assert m.rating("kestrel") == pytest.approx(1510.0)
-    assert m.rating("marlow") == pytest.approx(1495.0)
+    assert m.rating("kelvash") == pytest.approx(1510.0)
+    assert m.rating("morvenn") == pytest.approx(1495.0)

@@ -75,23 +75,23 @@ def _state_with(ratings: dict[str, tuple[float, float, float]]) -> ModelState:
 
 def test_worked_example_as_one_mini_batch() -> None:
     # The same example through the model: a mini-batch is one rating period.
-    names = ["marlow", "tindra", "oskel"]
+    names = ["morvenn", "tuvrenn", "oskuvar"]
     state = _state_with(
-        {"kestrel": (1500.0, 200.0, 0.06)}
+        {"kelvash": (1500.0, 200.0, 0.06)}
         | {n: (r, rd, 0.06) for n, (r, rd, _) in zip(names, OPPONENTS, strict=True)}
     )
     m = model_from_state(state)
     assert isinstance(m, Glicko2)
     evs = [
-        match("kestrel", n, s, i)
+        match("kelvash", n, s, i)
         for i, (n, (_, _, s)) in enumerate(zip(names, OPPONENTS, strict=True))
     ]
     m.learn_batch(evs)
-    rating, rd, vol = m.rating("kestrel")
+    rating, rd, vol = m.rating("kelvash")
     assert rating == pytest.approx(1464.06, abs=0.01)  # same source as above
     assert rd == pytest.approx(151.52, abs=0.01)
     assert vol == pytest.approx(0.05999, abs=1e-5)
-    assert m.seen("kestrel") == 3
+    assert m.seen("kelvash") == 3
 
 
 def test_empty_period_only_grows_the_deviation() -> None:
@@ -105,19 +105,19 @@ def test_empty_period_only_grows_the_deviation() -> None:
 def test_idle_time_inflates_the_deviation_up_to_the_prior() -> None:
     day_s = 86_400.0
     m = Glicko2(period_s=day_s)
-    m.learn(match("kestrel", "marlow", 1.0, 0))
-    _, rd_after, vol = m.rating("kestrel")
-    m.learn(match("kestrel", "tindra", 1.0, 10 * 24 * 60))  # ten idle days later
+    m.learn(match("kelvash", "morvenn", 1.0, 0))
+    _, rd_after, vol = m.rating("kelvash")
+    m.learn(match("kelvash", "tuvrenn", 1.0, 10 * 24 * 60))  # ten idle days later
     # Recompute the pre-match deviation from step 6 applied for ten periods.
     phi_before = math.sqrt((rd_after / SCALE) ** 2 + 10 * vol**2)
     twin = Glicko2()
-    twin.learn(match("kestrel", "marlow", 1.0, 0))
-    twin.phi_[twin.entities_.get("kestrel")] = phi_before
-    twin.learn(match("kestrel", "tindra", 1.0, 10 * 24 * 60))
-    assert m.rating("kestrel") == pytest.approx(twin.rating("kestrel"), rel=1e-12)
+    twin.learn(match("kelvash", "morvenn", 1.0, 0))
+    twin.phi_[twin.entities_.get("kelvash")] = phi_before
+    twin.learn(match("kelvash", "tuvrenn", 1.0, 10 * 24 * 60))
+    assert m.rating("kelvash") == pytest.approx(twin.rating("kelvash"), rel=1e-12)
     # A long absence never makes anyone less certain than a newcomer.
-    m.learn(match("kestrel", "oskel", 0.0, 10_000 * 24 * 60))
-    assert m.phi_[m.entities_.get("kestrel")] <= 350.0 / SCALE + 1e-12
+    m.learn(match("kelvash", "oskuvar", 0.0, 10_000 * 24 * 60))
+    assert m.phi_[m.entities_.get("kelvash")] <= 350.0 / SCALE + 1e-12
 
 
 def test_team_opponent_is_the_mean_with_the_deviation_of_the_mean() -> None:
@@ -125,28 +125,28 @@ def test_team_opponent_is_the_mean_with_the_deviation_of_the_mean() -> None:
     ev = MatchEvent(
         match_id="t-1",
         finished_at=T0,
-        first=("kestrel",),
-        second=("marlow", "tindra"),
+        first=("kelvash",),
+        second=("morvenn", "tuvrenn"),
         score=1.0,
     )
     m.learn(ev)
     # Newcomers 0 +- 350: the side of two has phi = sqrt(2 * phi0^2) / 2.
     phi0 = 350.0 / SCALE
     want = rate_period(0.0, phi0, 0.06, [0.0], [math.sqrt(2) * phi0 / 2], [1.0])
-    r, rd, _vol = m.rating("kestrel")
+    r, rd, _vol = m.rating("kelvash")
     assert (r - 1500.0) / SCALE == pytest.approx(want[0], rel=1e-12)
     assert rd / SCALE == pytest.approx(want[1], rel=1e-12)
-    assert m.rating("marlow") == m.rating("tindra")
+    assert m.rating("morvenn") == m.rating("tuvrenn")
 
 
 def test_a_player_who_beats_everyone_climbs() -> None:
     m = Glicko2()
     ratings = []
-    for i, other in enumerate(["marlow", "tindra", "oskel", "brisa", "vantor"] * 4):
-        m.learn(match("kestrel", other, 1.0, i))
-        ratings.append(m.rating("kestrel")[0])
+    for i, other in enumerate(["morvenn", "tuvrenn", "oskuvar", "bravik", "vantor"] * 4):
+        m.learn(match("kelvash", other, 1.0, i))
+        ratings.append(m.rating("kelvash")[0])
     assert all(b > a for a, b in itertools.pairwise(ratings))
-    assert m.predict(match("kestrel", "marlow", 1.0)).p_win > 0.9
+    assert m.predict(match("kelvash", "morvenn", 1.0)).p_win > 0.9
 
 
 def test_team_forecasts_are_not_under_confident() -> None:

@@ -15,7 +15,7 @@ from streamrate.events import MatchEvent, Matchup
 from streamrate.models.logistic_batch import LogisticBatch
 
 T0 = datetime(2026, 3, 1, 18, 0, tzinfo=UTC)
-PLAYERS = ["kestrel", "marlow", "tindra", "oskel", "brisa", "vantor"]
+PLAYERS = ["kelvash", "morvenn", "tuvrenn", "oskuvar", "bravik", "vantor"]
 STRENGTH = dict(zip(PLAYERS, [1.2, 0.6, 0.0, -0.3, -0.6, -1.0], strict=True))
 
 
@@ -82,13 +82,13 @@ def test_refits_on_schedule_and_predicts_a_coin_before_the_first_fit() -> None:
     m.learn_batch(evs[50:120])  # crosses 100: one refit at the end of the batch
     assert m.fits_ == 2
     # The strongest entity in the simulation comes out on top.
-    q = Matchup(first=("kestrel",), second=("vantor",))
+    q = Matchup(first=("kelvash",), second=("vantor",))
     assert m.predict(q).p_win > 0.6
 
 
 def test_a_new_entity_contributes_nothing_until_refit() -> None:
     m = LogisticBatch(refit_every=60)
     m.learn_many(stream(4, 60))
-    q_known = Matchup(first=("kestrel",), second=("marlow",))
-    q_new = Matchup(first=("kestrel",), second=("marlow", "sable"))
+    q_known = Matchup(first=("kelvash",), second=("morvenn",))
+    q_new = Matchup(first=("kelvash",), second=("morvenn", "sable"))
     assert m.predict(q_new) == m.predict(q_known)

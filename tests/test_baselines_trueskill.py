@@ -69,7 +69,7 @@ def test_draw_margin_gives_the_draw_probability_between_equals() -> None:
     assert 2.0 * norm.cdf(eps / (math.sqrt(2) * 25.0 / 6.0)) - 1.0 == pytest.approx(0.1)
     # The model's prediction for two perfectly known equals reproduces it.
     m = TrueSkill(sigma=1e-9)
-    p = m.predict(Matchup(first=("kestrel",), second=("marlow",)))
+    p = m.predict(Matchup(first=("kelvash",), second=("morvenn",)))
     assert p.p_draw == pytest.approx(0.1, abs=1e-9)
     assert p.p_win == pytest.approx(0.45, abs=1e-9)
 
@@ -112,16 +112,16 @@ def _reference_one_on_one(
 @pytest.mark.parametrize(("outcome", "score"), [("first", 1.0), ("second", 0.0), ("draw", 0.5)])
 def test_one_on_one_update_matches_the_paper_equations(outcome: str, score: float) -> None:
     m = TrueSkill()
-    m.learn(match(("kestrel",), ("oskel",), 1.0, 0))  # make kestrel and marlow differ
-    m.learn(match(("marlow",), ("brisa",), 0.0, 1))
-    (mu1, s1), (mu2, s2) = m.belief("kestrel"), m.belief("marlow")
-    m.learn(match(("kestrel",), ("marlow",), score, 2))
+    m.learn(match(("kelvash",), ("oskuvar",), 1.0, 0))  # make kelvash and morvenn differ
+    m.learn(match(("morvenn",), ("bravik",), 0.0, 1))
+    (mu1, s1), (mu2, s2) = m.belief("kelvash"), m.belief("morvenn")
+    m.learn(match(("kelvash",), ("morvenn",), score, 2))
     want = _reference_one_on_one(mu1, s1, mu2, s2, outcome, 25 / 6, 25 / 300, 0.1)
     got = (
-        m.belief("kestrel")[0],
-        m.belief("kestrel")[1] ** 2,
-        m.belief("marlow")[0],
-        m.belief("marlow")[1] ** 2,
+        m.belief("kelvash")[0],
+        m.belief("kelvash")[1] ** 2,
+        m.belief("morvenn")[0],
+        m.belief("morvenn")[1] ** 2,
     )
     assert got == pytest.approx(want, rel=1e-9)
 
@@ -130,32 +130,32 @@ def test_teams_share_the_performance_variance() -> None:
     # Two against one: c^2 = 3 beta^2 + sum of all three variances (same paper:
     # a team's performance is the sum of its members' performances).
     m = TrueSkill(tau=0.0)
-    m.learn(match(("kestrel", "tindra"), ("marlow",), 1.0))
+    m.learn(match(("kelvash", "tuvrenn"), ("morvenn",), 1.0))
     c = math.sqrt(3 * (25 / 6) ** 2 + 3 * (25 / 3) ** 2)
     eps = norm.ppf(0.55) * math.sqrt(3) * 25 / 6 / c
     t = (50.0 - 25.0) / c
     ref = truncnorm(eps - t, np.inf)
-    assert m.belief("kestrel")[0] == pytest.approx(25 + (25 / 3) ** 2 / c * ref.mean(), rel=1e-9)
-    assert m.belief("marlow")[0] == pytest.approx(25 - (25 / 3) ** 2 / c * ref.mean(), rel=1e-9)
-    assert m.belief("kestrel") == m.belief("tindra")
+    assert m.belief("kelvash")[0] == pytest.approx(25 + (25 / 3) ** 2 / c * ref.mean(), rel=1e-9)
+    assert m.belief("morvenn")[0] == pytest.approx(25 - (25 / 3) ** 2 / c * ref.mean(), rel=1e-9)
+    assert m.belief("kelvash") == m.belief("tuvrenn")
 
 
 def test_mini_batch_of_separate_matches_equals_learning_them_one_by_one() -> None:
-    evs = [match(("kestrel",), ("marlow",), 1.0, 0), match(("tindra",), ("oskel",), 0.5, 1)]
+    evs = [match(("kelvash",), ("morvenn",), 1.0, 0), match(("tuvrenn",), ("oskuvar",), 0.5, 1)]
     a, b = TrueSkill(), TrueSkill()
     a.learn_batch(evs)
     for ev in evs:
         b.learn(ev)
-    for name in ("kestrel", "marlow", "tindra", "oskel"):
+    for name in ("kelvash", "morvenn", "tuvrenn", "oskuvar"):
         assert a.belief(name) == pytest.approx(b.belief(name), rel=1e-12)
 
 
 def test_a_player_who_beats_everyone_climbs() -> None:
     m = TrueSkill()
     mus = []
-    for i, other in enumerate(["marlow", "tindra", "oskel", "brisa", "vantor"] * 4):
-        m.learn(match(("kestrel",), (other,), 1.0, i))
-        mus.append(m.belief("kestrel")[0])
+    for i, other in enumerate(["morvenn", "tuvrenn", "oskuvar", "bravik", "vantor"] * 4):
+        m.learn(match(("kelvash",), (other,), 1.0, i))
+        mus.append(m.belief("kelvash")[0])
     assert all(b > a for a, b in itertools.pairwise(mus))
-    assert m.belief("kestrel")[1] < 25 / 3
-    assert m.predict(Matchup(first=("kestrel",), second=("sable",))).p_win > 0.8
+    assert m.belief("kelvash")[1] < 25 / 3
+    assert m.predict(Matchup(first=("kelvash",), second=("sable",))).p_win > 0.8

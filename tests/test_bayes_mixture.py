@@ -79,44 +79,44 @@ def test_compiled_loop_equals_plain_python() -> None:
 def test_idle_entities_drift_toward_one_half() -> None:
     m = BayesStrength(noise_per_day=0.01)
     for k in range(12):
-        m.learn(duel("kestrel", "marlow", 1.0, day=k * 0.5))
+        m.learn(duel("kelvash", "morvenn", 1.0, day=k * 0.5))
     state = m.to_state()
     probs = []
     for idle_days in (1, 10, 50, 200):
         copy = model_from_state(state)
-        probs.append(copy.learn(duel("kestrel", "marlow", 1.0, day=5.5 + idle_days)).p_win)
+        probs.append(copy.learn(duel("kelvash", "morvenn", 1.0, day=5.5 + idle_days)).p_win)
     assert all(p > 0.5 for p in probs)
     assert probs == sorted(probs, reverse=True) and probs[0] - probs[-1] > 0.02
     # The variance never exceeds the prior, however long the break.
     copy = model_from_state(state)
-    copy.learn(duel("kestrel", "marlow", 1.0, day=10_000.0))
-    assert copy.variance("kestrel") <= copy.prior_var
+    copy.learn(duel("kelvash", "morvenn", 1.0, day=10_000.0))
+    assert copy.variance("kelvash") <= copy.prior_var
 
 
 def test_a_new_season_pulls_and_widens_by_hand() -> None:
     m = BayesStrength(period_field="season", period_pull=0.3, period_var=0.1, noise_per_day=0.0)
-    m.learn(duel("kestrel", "marlow", 1.0, season="s01"))
-    m.learn(duel("kestrel", "marlow", 1.0, season="s01"))
-    mu = {e: float(m.mu_[m.entities_.get(e)]) for e in ("kestrel", "marlow")}
-    var = {e: m.variance(e) for e in ("kestrel", "marlow")}
+    m.learn(duel("kelvash", "morvenn", 1.0, season="s01"))
+    m.learn(duel("kelvash", "morvenn", 1.0, season="s01"))
+    mu = {e: float(m.mu_[m.entities_.get(e)]) for e in ("kelvash", "morvenn")}
+    var = {e: m.variance(e) for e in ("kelvash", "morvenn")}
     h, vh = float(m.adv_[0]), float(m.adv_[1])
-    got = m.learn(duel("kestrel", "marlow", 0.0, season="s02")).p_win
+    got = m.learn(duel("kelvash", "morvenn", 0.0, season="s02")).p_win
     # By hand: means times (1 - 0.3), variances plus 0.1 (below the prior 1.0).
-    diff = 0.7 * (mu["kestrel"] - mu["marlow"]) + h
-    spread = var["kestrel"] + 0.1 + var["marlow"] + 0.1 + vh
+    diff = 0.7 * (mu["kelvash"] - mu["morvenn"]) + h
+    spread = var["kelvash"] + 0.1 + var["morvenn"] + 0.1 + vh
     assert got == pytest.approx(1 / (1 + math.exp(-diff / math.sqrt(1 + math.pi / 8 * spread))))
     # The same season again pulls nothing more.
     before = m.mu_.copy()
-    m.learn(duel("tindra", "oskel", 0.5, season="s02"))
+    m.learn(duel("tuvrenn", "oskuvar", 0.5, season="s02"))
     assert m.mu_[0] == pytest.approx(before[0])
 
 
 def test_newcomers_get_humbler_probabilities_than_the_settled() -> None:
     m = BayesStrength()
     for k in range(30):
-        m.learn(duel("kestrel", f"rookie{k}", 1.0, day=k))
-    assert m.variance("kestrel") < 0.3 < m.variance("rookie29")
-    settled = m.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win
+        m.learn(duel("kelvash", f"rookie{k}", 1.0, day=k))
+    assert m.variance("kelvash") < 0.3 < m.variance("rookie29")
+    settled = m.predict(Matchup(first=("kelvash",), second=("morvenn",))).p_win
     assert 0.5 < settled < 0.99
 
 

@@ -121,7 +121,7 @@ def test_promote_switches_answers_and_no_member_loses_state() -> None:
     bc_answers = [cs.predict(mu) for mu in asks]
     assert bc_answers == [cs.models_["bc"].predict(mu) for mu in asks]
     assert bc_answers != elo_answers
-    assert cs.seen("kestrel") == cs.models_["bc"].seen("kestrel")
+    assert cs.seen("kelvash") == cs.models_["bc"].seen("kelvash")
     for label, m in cs.models_.items():
         _assert_same_arrays(m.to_state().arrays, before[label])
     # Learning goes on for every member as if no promotion had happened.
@@ -229,7 +229,7 @@ def test_state_round_trip_is_exact(window: int) -> None:
     assert again.kind == "challengers" and again.params == state.params
     _assert_same_arrays(again.arrays, state.arrays)
     assert back.compare() == cs.compare()
-    assert back.seen("kestrel") == cs.seen("kestrel")
+    assert back.seen("kelvash") == cs.seen("kelvash")
     # Both go on identically.
     a, b = cs.learn_many(WORLD[400:]), back.learn_many(WORLD[400:])
     np.testing.assert_array_equal(a.p_win, b.p_win)
@@ -274,8 +274,8 @@ def _live_set() -> LiveModel:
 def test_promote_and_compare_requests() -> None:
     live = _live_set()
     ans = Answerer(live, 10, 256)
-    pair = {"kind": "pairing", "first": ["kestrel"], "second": ["marlow"]}
-    mu = Matchup(first=("kestrel",), second=("marlow",))
+    pair = {"kind": "pairing", "first": ["kelvash"], "second": ["morvenn"]}
+    mu = Matchup(first=("kelvash",), second=("morvenn",))
     before = _ask(ans, pair)
     assert before["answered_by"] == "elo" and before["model"] == "challengers"
     assert before["p_first_wins"] == live.model.models_["elo"].predict(mu).p_win

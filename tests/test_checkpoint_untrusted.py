@@ -199,7 +199,7 @@ def test_last_id_must_be_a_stream_id(last_id: Any) -> None:
 
 
 @pytest.mark.parametrize(
-    "ids", [b"kestrel\nmar low", b"kestrel\n", b"kestrel\nkestrel", b"\xff\xfe", b"a\xe2\x80\x8bb"]
+    "ids", [b"kelvash\nmar low", b"kelvash\n", b"kelvash\nkelvash", b"\xff\xfe", b"a\xe2\x80\x8bb"]
 )
 def test_entity_ids_must_be_well_formed(ids: bytes) -> None:
     ck = _good()

@@ -14,9 +14,9 @@ NOWHERE = ["--redis-url", "redis://127.0.0.1:1/0"]  # never reached: input is ch
 @pytest.mark.parametrize(
     ("args", "needle"),
     [
-        (["watch", "kestrel:kestrel"], "an entity cannot be on both sides: kestrel"),
-        (["watch", "kestrel"], "write first,ids:second,ids"),
-        (["ask", "kestrel", "kestrel"], "an entity cannot be on both sides: kestrel"),
+        (["watch", "kelvash:kelvash"], "an entity cannot be on both sides: kelvash"),
+        (["watch", "kelvash"], "write first,ids:second,ids"),
+        (["ask", "kelvash", "kelvash"], "an entity cannot be on both sides: kelvash"),
         (["ask", "--lobby", "a,b,c"], "cannot be split evenly: give --team-size"),
         (["ask", "--lobby", "a,b,c,d", "--teams", "3,3"], "adding up to the 4 ids"),
         (["ask", "--lobby", "a,b", "--teams", "x"], "write two sizes"),
@@ -32,16 +32,16 @@ def test_bad_input_is_one_line_and_exit_2(args: list[str], needle: str) -> None:
 
 
 def test_no_service_is_one_line_and_exit_2() -> None:
-    res = CliRunner().invoke(app, ["ask", "kestrel", "marlow", *NOWHERE])
+    res = CliRunner().invoke(app, ["ask", "kelvash", "morvenn", *NOWHERE])
     assert res.exit_code == 2 and len(res.stderr.strip().splitlines()) == 1
 
 
 def test_pairing_output_names_entities_never_seen() -> None:
     reply = {"ok": True, "kind": "pairing", "p_first_wins": 0.508, "p_draw": None,
-             "seen": {"kestrel": 12, "ghost": 0}, "model": "elo",
+             "seen": {"kelvash": 12, "ghost": 0}, "model": "elo",
              "model_version": "5-0"}  # fmt: skip
     text = format_reply(reply)
-    assert "never seen: ghost (newcomer estimate)" in text and "never seen: kestrel" not in text
+    assert "never seen: ghost (newcomer estimate)" in text and "never seen: kelvash" not in text
 
 
 def test_lobby_output_says_what_exact_and_heuristic_mean() -> None:

@@ -108,8 +108,8 @@ def test_list_and_resend_chosen_whole_ones_only() -> None:
         {
             "match_id": "m-1",
             "finished_at": "2026-03-01T18:00:00Z",
-            "first": ["kestrel"],
-            "second": ["marlow"],
+            "first": ["kelvash"],
+            "second": ["morvenn"],
             "score": 1,
         }
     ).encode()

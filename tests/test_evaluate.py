@@ -63,8 +63,8 @@ def _event(i: int, score: float, minutes: float | None = None) -> MatchEvent:
     return MatchEvent(
         match_id=f"m-{i}",
         finished_at=T0 + timedelta(minutes=i if minutes is None else minutes),
-        first=("kestrel",),
-        second=("marlow",),
+        first=("kelvash",),
+        second=("morvenn",),
         score=score,
         context={"map": "glasswood", "mode": "duel"},
     )

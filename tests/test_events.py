@@ -12,8 +12,8 @@ from streamrate.events import MAX_EVENT_BYTES, MatchEvent, event_to_json, parse_
 GOOD = {
     "match_id": "m-1",
     "finished_at": "2026-03-01T18:00:00Z",
-    "first": ["kestrel"],
-    "second": ["marlow"],
+    "first": ["kelvash"],
+    "second": ["morvenn"],
     "score": 1,
     "context": {"map": "saltflats", "mode": "duel", "patch": 3},
 }
@@ -27,7 +27,7 @@ def _with(**changes: object) -> bytes:
 
 def test_good_event_round_trips() -> None:
     ev = parse_event(json.dumps(GOOD))
-    assert ev.first == ("kestrel",) and ev.score == 1.0
+    assert ev.first == ("kelvash",) and ev.score == 1.0
     assert parse_event(event_to_json(ev)) == ev
 
 
@@ -35,7 +35,7 @@ def test_good_event_round_trips() -> None:
     ("changes", "field"),
     [
         ({"first": []}, "first"),
-        ({"second": ["kestrel"]}, "second"),
+        ({"second": ["kelvash"]}, "second"),
         ({"score": 0.3}, "score"),
         ({"score": True}, "score"),
         ({"finished_at": "2026-03-01T18:00:00"}, "finished_at"),

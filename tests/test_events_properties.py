@@ -156,8 +156,8 @@ def _event_with(where: str, text: str) -> dict[str, Any]:
     ev: dict[str, Any] = {
         "match_id": "m-1",
         "finished_at": "2026-03-01T18:00:00Z",
-        "first": ["kestrel"],
-        "second": ["marlow"],
+        "first": ["kelvash"],
+        "second": ["morvenn"],
         "score": 1,
     }
     if where == "match_id":
@@ -167,13 +167,13 @@ def _event_with(where: str, text: str) -> dict[str, Any]:
     elif where == "context":
         ev["context"] = {"map": text}
     else:
-        ev["features"] = {"kestrel": {"style": text}}
+        ev["features"] = {"kelvash": {"style": text}}
     return ev
 
 
 WHERE = st.sampled_from(["match_id", "first", "context", "features"])
 FIELD = {"match_id": "match_id", "first": "first.0", "context": "context.map",
-         "features": "features.kestrel.style"}  # fmt: skip
+         "features": "features.kelvash.style"}  # fmt: skip
 
 
 @given(

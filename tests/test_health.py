@@ -101,7 +101,7 @@ def test_reads_a_live_metrics_endpoint_on_loopback() -> None:
 def _checkpoint_file(tmp_path: Path, written_at_s: float, dead: int) -> Path:
     model = Elo()
     t0 = datetime(2026, 3, 1, tzinfo=UTC)
-    names = ["kestrel", "marlow", "tindra", "oskel", "brisa", "vantor"]
+    names = ["kelvash", "morvenn", "tuvrenn", "oskuvar", "bravik", "vantor"]
     for i in range(30):
         model.learn(
             MatchEvent(

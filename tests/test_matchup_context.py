@@ -36,11 +36,11 @@ def test_unknown_entity_gets_a_prior_from_its_features() -> None:
     # "rush" players beat "hold" players 85% of the time; a newcomer described as
     # "rush" should be expected to beat a known "hold" player before playing at all.
     rng = np.random.default_rng(0)
-    styles = {f"brisa-{i}": STYLES[i % 2] for i in range(40)}
+    styles = {f"bravik-{i}": STYLES[i % 2] for i in range(40)}
     evs = []
     for k in range(3000):
         i, j = rng.choice(40, 2, replace=False)
-        a, b = f"brisa-{i}", f"brisa-{j}"
+        a, b = f"bravik-{i}", f"bravik-{j}"
         p = {("rush", "hold"): 0.85, ("hold", "rush"): 0.15}.get((styles[a], styles[b]), 0.5)
         feats = {a: {"style": styles[a]}, b: {"style": styles[b]}}
         evs.append(_ev(k, a, b, float(rng.random() < p), features=feats))
@@ -57,9 +57,9 @@ def test_unknown_entity_gets_a_prior_from_its_features() -> None:
     ).p_win
     assert plain == 0.5  # no features, no advantage: nothing to tell them apart
     assert rush > 0.6
-    hold = "brisa-1"  # a known "hold" player
+    hold = "bravik-1"  # a known "hold" player
     # a known entity's stored features are used when a query gives none
-    known = "brisa-0"
+    known = "bravik-0"
     given = m.predict(
         Matchup(first=(known,), second=(hold,), features={known: {"style": "rush"}})
     ).p_win
@@ -74,7 +74,7 @@ def test_feature_prior_lets_newcomers_be_predicted_well() -> None:
     for k in range(2000):
         sa, sb = rng.integers(0, 3, 2)
         p = {0: 0.5, 1: 0.9, 2: 0.1}[int((sa - sb) % 3)]
-        a, b = f"tindra-{2 * k}", f"tindra-{2 * k + 1}"
+        a, b = f"tuvrenn-{2 * k}", f"tuvrenn-{2 * k + 1}"
         feats = {a: {"style": STYLES[sa]}, b: {"style": STYLES[sb]}}
         evs.append(_ev(k, a, b, float(rng.random() < p), features=feats))
     y = np.array([e.score for e in evs])
@@ -119,11 +119,11 @@ def test_context_modes_learn_map_dependent_matchups(mode: str, flip: bool) -> No
 
 
 def test_forgetting_pulls_idle_entities_back_to_the_prior() -> None:
-    evs = [_ev(k, "kestrel", "marlow", 1.0) for k in range(50)]
-    later = _ev(0, "oskel", "tindra", 1.0).model_copy(
+    evs = [_ev(k, "kelvash", "morvenn", 1.0) for k in range(50)]
+    later = _ev(0, "oskuvar", "tuvrenn", 1.0).model_copy(
         update={"finished_at": T0 + timedelta(days=200), "match_id": "late"}
     )
-    q = Matchup(first=("kestrel",), second=("marlow",))
+    q = Matchup(first=("kelvash",), second=("morvenn",))
     keep = BradleyTerry(advantage=False)
     fade = BradleyTerry(advantage=False, forget_per_day=0.05)
     for m in (keep, fade):
@@ -135,23 +135,23 @@ def test_forgetting_pulls_idle_entities_back_to_the_prior() -> None:
 def test_encoding_marks_unknown_and_padding_apart() -> None:
     table = EntityTable()
     evs = [
-        _ev(0, "kestrel", "marlow", 1.0),
+        _ev(0, "kelvash", "morvenn", 1.0),
         MatchEvent(
             match_id="m1",
             finished_at=T0,
-            first=("tindra", "oskel"),
-            second=("brisa",),
+            first=("tuvrenn", "oskuvar"),
+            second=("bravik",),
             score=0.5,
             context={"map": "glasswood", "heat": 0.5},
-            features={"oskel": {"style": "roam"}},
+            features={"oskuvar": {"style": "roam"}},
         ),
     ]
     b = encode_events(evs, table, FeatureHasher(8), FeatureHasher(8))
-    assert table.ids == ["kestrel", "marlow", "tindra", "oskel", "brisa"]
+    assert table.ids == ["kelvash", "morvenn", "tuvrenn", "oskuvar", "bravik"]
     assert b.first.tolist() == [[0, -1], [2, 3]] and b.first_size.tolist() == [1, 2]
     assert b.ctx_idx.shape == (2, 2) and b.ctx_idx[0].tolist() == [-1, -1]
     assert b.feat_idx.shape == (2, 3, 1) and b.feat_idx[1, 1, 0] >= 0 and b.feat_idx[0, 0, 0] == -1
     assert b.time_s[0] == T0.timestamp() and b.score.tolist() == [1.0, 0.5]
-    q = encode_events([Matchup(first=("kestrel", "ghost"), second=("marlow",))], table, add=False)
+    q = encode_events([Matchup(first=("kelvash", "ghost"), second=("morvenn",))], table, add=False)
     assert q.first.tolist() == [[0, -1]] and q.first_size.tolist() == [2]
     assert np.isnan(q.score[0]) and np.isnan(q.time_s[0]) and len(table) == 5

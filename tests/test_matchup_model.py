@@ -17,7 +17,7 @@ from streamrate.models.registry import build_model, model_from_state
 from streamrate.statefile import load_state, save_state, state_from_bytes, state_to_bytes
 
 T0 = datetime(2026, 3, 1, 18, 0, tzinfo=UTC)
-PLAYERS = ["kestrel", "marlow", "tindra", "oskel", "brisa", "vantor"]
+PLAYERS = ["kelvash", "morvenn", "tuvrenn", "oskuvar", "bravik", "vantor"]
 MAPS = ["saltflats", "ember-quarry", "glasswood", "sunken-bell"]
 
 
@@ -57,7 +57,7 @@ def cyclic_world(n: int, seed: int = 0, n_ent: int = 60) -> list[MatchEvent]:
     for k in range(n):
         i, j = rng.choice(n_ent, 2, replace=False)
         p = {0: 0.5, 1: 0.9, 2: 0.1}[int((style[i] - style[j]) % 3)]
-        out.append(_event(k, (f"kestrel-{i}",), (f"kestrel-{j}",), float(rng.random() < p)))
+        out.append(_event(k, (f"kelvash-{i}",), (f"kelvash-{j}",), float(rng.random() < p)))
     return out
 
 
@@ -111,7 +111,7 @@ def test_compiled_and_numpy_backends_agree(cls: type[MatchupModel], settings: di
         pf, ps = fast.learn_batch(evs[lo : lo + 10]), slow.learn_batch(evs[lo : lo + 10])
         np.testing.assert_allclose(pf.p_win, ps.p_win, rtol=1e-5, atol=1e-7)
     _assert_state_close(fast, slow, rtol=1e-9)
-    q = Matchup(first=("kestrel-0", "new-one"), second=("brisa-1",), context={"map": "glasswood"})
+    q = Matchup(first=("kelvash-0", "new-one"), second=("bravik-1",), context={"map": "glasswood"})
     assert fast.predict(q).p_win == pytest.approx(slow.predict(q).p_win, rel=1e-5)
 
 
@@ -152,12 +152,12 @@ def test_batch_of_one_equals_sequential(cls: type[MatchupModel], settings: dict)
 
 
 def test_minibatch_predicts_from_batch_start_state() -> None:
-    evs = [_event(k, ("kestrel",), ("marlow",), 1.0) for k in range(5)]
+    evs = [_event(k, ("kelvash",), ("morvenn",), 1.0) for k in range(5)]
     m = BladeChest(dims=2)
     p = m.learn_batch(evs)
     assert np.all(p.p_win == p.p_win[0])  # nothing moved inside the batch
-    assert m.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win > p.p_win[0]
-    assert m.seen("kestrel") == 5 and m.seen("oskel") == 0
+    assert m.predict(Matchup(first=("kelvash",), second=("morvenn",))).p_win > p.p_win[0]
+    assert m.seen("kelvash") == 5 and m.seen("oskuvar") == 0
 
 
 @pytest.mark.parametrize(("cls", "settings"), CONFIGS)
@@ -167,7 +167,7 @@ def test_predict_changes_nothing(cls: type[MatchupModel], settings: dict) -> Non
     before = _arrays(m)
     n = len(m.entities_)
     q = Matchup(
-        first=("kestrel-0", "unknown-a"),
+        first=("kelvash-0", "unknown-a"),
         second=("unknown-b",),
         context={"map": "saltflats"},
         features={"unknown-b": {"style": "roam"}},
@@ -187,7 +187,7 @@ def test_state_round_trip_is_exact(tmp_path: Path, cls: type[MatchupModel], sett
     save_state(tmp_path / "m.npz", m.to_state())
     back = model_from_state(load_state(tmp_path / "m.npz"))
     assert type(back) is cls and back.get_params() == m.get_params()
-    q = Matchup(first=("kestrel-1",), second=("marlow-2", "ghost"), context={"map": "glasswood"})
+    q = Matchup(first=("kelvash-1",), second=("morvenn-2", "ghost"), context={"map": "glasswood"})
     assert back.predict(q) == m.predict(q)
     pa, pb = m.learn_many(evs[50:]), back.learn_many(evs[50:])  # type: ignore[attr-defined]
     np.testing.assert_array_equal(pa.p_win, pb.p_win)
@@ -290,7 +290,7 @@ def test_no_worse_than_elo_when_there_is_no_cycle() -> None:
     for k in range(3000):
         i, j = rng.choice(60, 2, replace=False)
         p = 1 / (1 + math.exp(strength[j] - strength[i]))
-        evs.append(_event(k, (f"marlow-{i}",), (f"marlow-{j}",), float(rng.random() < p)))
+        evs.append(_event(k, (f"morvenn-{i}",), (f"morvenn-{j}",), float(rng.random() < p)))
     y = np.array([e.score for e in evs])
     half = len(evs) // 2
     elo = log_loss(Elo().learn_many(evs).p_win[half:], y[half:])
@@ -313,16 +313,16 @@ def test_draw_model_learns_the_draw_rate() -> None:
     rng = np.random.default_rng(4)
     evs = [
         _event(
-            k, ("kestrel",), ("marlow",), float(rng.choice([0.0, 0.5, 1.0], p=[0.35, 0.3, 0.35]))
+            k, ("kelvash",), ("morvenn",), float(rng.choice([0.0, 0.5, 1.0], p=[0.35, 0.3, 0.35]))
         )
         for k in range(3000)
     ]
     m = BradleyTerry(draws=True, advantage=False)
     m.learn_many(evs)
-    p = m.predict(Matchup(first=("kestrel",), second=("marlow",)))
+    p = m.predict(Matchup(first=("kelvash",), second=("morvenn",)))
     assert p.p_draw == pytest.approx(0.3, abs=0.05)
     assert p.p_win + p.p_draw + m.predict(
-        Matchup(first=("marlow",), second=("kestrel",))
+        Matchup(first=("morvenn",), second=("kelvash",))
     ).p_win == (pytest.approx(1.0, abs=1e-12))
 
 
@@ -334,12 +334,14 @@ def test_first_side_advantage_is_learned_per_map() -> None:
         i, j = rng.choice(20, 2, replace=False)
         mp = MAPS[k % 4]
         p = 0.8 if mp == "saltflats" else 0.5
-        evs.append(_event(k, (f"oskel-{i}",), (f"oskel-{j}",), float(rng.random() < p),
+        evs.append(_event(k, (f"oskuvar-{i}",), (f"oskuvar-{j}",), float(rng.random() < p),
                           context={"map": mp}))  # fmt: skip
     m = BradleyTerry()
     m.learn_many(evs)
-    salt = m.predict(Matchup(first=("oskel-1",), second=("oskel-2",), context={"map": "saltflats"}))
+    salt = m.predict(
+        Matchup(first=("oskuvar-1",), second=("oskuvar-2",), context={"map": "saltflats"})
+    )
     glass = m.predict(
-        Matchup(first=("oskel-1",), second=("oskel-2",), context={"map": "glasswood"})
+        Matchup(first=("oskuvar-1",), second=("oskuvar-2",), context={"map": "glasswood"})
     )
     assert salt.p_win - glass.p_win > 0.15

@@ -13,7 +13,7 @@ from streamrate.events import MatchEvent, Matchup
 from streamrate.models.matchup import BladeChest, BladeChestDistance, BradleyTerry, MatchupModel
 
 T0 = datetime(2026, 3, 1, tzinfo=UTC)
-NAMES = ["kestrel", "marlow", "tindra", "oskel", "brisa", "vantor", "quill", "sorrel"]
+NAMES = ["kelvash", "morvenn", "tuvrenn", "oskuvar", "bravik", "vantor", "quill", "sorrel"]
 
 
 @st.composite
@@ -98,13 +98,13 @@ def test_a_team_of_one_is_the_entity(dims: int, scores: list[float]) -> None:
     # learned from padded (mixed-size) batches or one by one, the state is the same
     evs = []
     for k, s in enumerate(scores):
-        first = ("kestrel",) if k % 2 else ("kestrel", "brisa")
+        first = ("kelvash",) if k % 2 else ("kelvash", "bravik")
         evs.append(
             MatchEvent(
                 match_id=f"m{k}",
                 finished_at=T0 + timedelta(hours=k),
                 first=first,
-                second=("marlow",),
+                second=("morvenn",),
                 score=s,
             )
         )
@@ -113,14 +113,14 @@ def test_a_team_of_one_is_the_entity(dims: int, scores: list[float]) -> None:
         one.learn(ev)
     many.learn_many(evs)
     np.testing.assert_array_equal(one.own_, many.own_)
-    v_k, v_m = one.vectors("kestrel"), one.vectors("marlow")
+    v_k, v_m = one.vectors("kelvash"), one.vectors("morvenn")
     assert v_k is not None and v_m is not None
     a_k, c_k = v_k[1 : 1 + dims], v_k[1 + dims :]
     a_m, c_m = v_m[1 : 1 + dims], v_m[1 + dims :]
     theta = (v_k[0] - v_m[0]) + a_k @ c_m - a_m @ c_k + one.sc_[0]
     # both played the last match, so no idle time: the logit is widened by the stored
     # variances (probit approximation, kappa = 1 / sqrt(1 + pi V / 8))
-    var = one.strength_variance("kestrel") + one.strength_variance("marlow")  # type: ignore[operator]
+    var = one.strength_variance("kelvash") + one.strength_variance("morvenn")  # type: ignore[operator]
     theta /= np.sqrt(1.0 + np.pi * var / 8.0)
-    p = one.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win
+    p = one.predict(Matchup(first=("kelvash",), second=("morvenn",))).p_win
     assert p == pytest.approx(1.0 / (1.0 + np.exp(-theta)), rel=1e-9)

@@ -29,9 +29,9 @@ def _sigmoid(x: float) -> float:
 
 @pytest.mark.parametrize("backend", ["numba", "numpy"])
 @pytest.mark.parametrize(("first", "second", "score"), [
-    (("kestrel",), ("marlow",), 1.0),
-    (("kestrel", "brisa"), ("marlow",), 0.0),
-    (("kestrel", "brisa"), ("marlow", "tindra", "oskel"), 0.5),
+    (("kelvash",), ("morvenn",), 1.0),
+    (("kelvash", "bravik"), ("morvenn",), 0.0),
+    (("kelvash", "bravik"), ("morvenn", "tuvrenn", "oskuvar"), 0.5),
 ])  # fmt: skip
 def test_one_update_matches_the_gaussian_posterior_by_matrix_inverse(
     backend: str, first: tuple[str, ...], second: tuple[str, ...], score: float
@@ -66,14 +66,14 @@ def test_one_entity_against_a_sure_opponent_is_the_conjugate_update() -> None:
     m = BradleyTerry(prior_var=2.0, advantage=False, l2=0.0, noise_per_day=0.0)
     m.learn(_ev(0, ("anchor",), ("other",), 1.0))
     m.acc_[m.entities_.get("anchor"), 0] = 0.0  # the anchor is now known for sure
-    m.learn(_ev(1, ("kestrel",), ("anchor",), 1.0))
+    m.learn(_ev(1, ("kelvash",), ("anchor",), 1.0))
     mu_a = m.vectors("anchor")[0]  # type: ignore[index]
     v, va = 2.0, m.strength_variance("anchor")
     assert va == 0.0
     kappa = 1.0 / math.sqrt(1.0 + math.pi * (v + va) / 8.0)
     p = _sigmoid(kappa * (0.0 - mu_a))
     w = kappa**2 * p * (1 - p)
-    assert m.strength_variance("kestrel") == pytest.approx(1.0 / (1.0 / v + w), rel=1e-6)
+    assert m.strength_variance("kelvash") == pytest.approx(1.0 / (1.0 / v + w), rel=1e-6)
 
 
 @pytest.mark.parametrize("backend", ["numba", "numpy"])
@@ -83,9 +83,9 @@ def test_an_idle_entity_drifts_toward_even_odds(backend: str) -> None:
                        backend=backend,
                        advantage=False)  # fmt: skip
         for k in range(30):
-            m.learn(_ev(k, ("kestrel",), ("marlow",), 1.0))
-        m.learn(_ev(99, ("brisa",), ("tindra",), 1.0, days=days))  # the clock moves on
-        return m.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win
+            m.learn(_ev(k, ("kelvash",), ("morvenn",), 1.0))
+        m.learn(_ev(99, ("bravik",), ("tuvrenn",), 1.0, days=days))  # the clock moves on
+        return m.predict(Matchup(first=("kelvash",), second=("morvenn",))).p_win
 
     ps = [p_after_idle(d, True) for d in (0.0, 10.0, 50.0, 200.0)]
     assert all(a > b > 0.5 for a, b in itertools.pairwise(ps))
@@ -97,26 +97,26 @@ def test_an_idle_entity_drifts_toward_even_odds(backend: str) -> None:
 def test_a_newcomer_is_humbler_than_a_known_entity() -> None:
     m = BradleyTerry()
     for k in range(40):
-        m.learn(_ev(k, ("kestrel",), ("marlow",), float(k % 4 != 0)))
+        m.learn(_ev(k, ("kelvash",), ("morvenn",), float(k % 4 != 0)))
     m.sc_[0] = 0.0  # no first-side advantage, to compare strengths alone
-    known = m.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win
-    m.own_[m.entities_.get("marlow"), 0] = 0.0  # a known zero strength ...
-    vs_known = m.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win
-    vs_new = m.predict(Matchup(first=("kestrel",), second=("stranger",))).p_win
+    known = m.predict(Matchup(first=("kelvash",), second=("morvenn",))).p_win
+    m.own_[m.entities_.get("morvenn"), 0] = 0.0  # a known zero strength ...
+    vs_known = m.predict(Matchup(first=("kelvash",), second=("morvenn",))).p_win
+    vs_new = m.predict(Matchup(first=("kelvash",), second=("stranger",))).p_win
     assert known > vs_known > vs_new > 0.5  # ... is surer than an unknown one
 
 
 def test_a_version_2_state_loads_with_uncertainty_off() -> None:
     old = BladeChest(dims=2, uncertainty=False)
     for k in range(20):
-        old.learn(_ev(k, ("kestrel",), ("marlow",), float(k % 3 != 0)))
+        old.learn(_ev(k, ("kelvash",), ("morvenn",), float(k % 3 != 0)))
     st = old.to_state()
     params = {k: v for k, v in st.params.items()
               if k not in ("uncertainty", "prior_var", "noise_per_day")}  # fmt: skip
     arrays = {k: v for k, v in st.arrays.items() if k != "last_s"}
     back = model_from_state(ModelState(st.kind, 2, params, arrays))
     assert isinstance(back, BladeChest) and not back.uncertainty
-    q = Matchup(first=("kestrel",), second=("marlow",))
+    q = Matchup(first=("kelvash",), second=("morvenn",))
     assert back.predict(q) == old.predict(q)
     fresh = model_from_state(BladeChest(dims=2).to_state())
     assert isinstance(fresh, BladeChest) and fresh.uncertainty

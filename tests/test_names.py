@@ -23,13 +23,13 @@ def _words(text: str) -> list[str]:
 # must not appear anywhere in a name; shorter ones must not be the whole name.
 GIVEN_NAMES = _words("""
 anna maria john james david michael sarah emma olivia liam noah lucas mia leo max sam
-alex tom kate eva ivan oscar hugo lena nora ella ava luna marlow tindra brisa karl
+alex tom kate eva ivan oscar hugo lena nora ella ava luna morvenn tuvrenn bravik karl
 erik lars nils sven ingrid astrid freya elsa otto hans mark paul peter anne jane mary
 lisa lucy rosa vera zoe yara ines omar ali ahmed chen wei yuki kenji hiro raj priya
 """)
 ENGLISH_WORDS = _words("""
 the and man king queen star fire storm wolf hawk tiger dragon shadow ghost ninja hero
-kestrel falcon raven eagle owl fox bear lion snake viper cobra motor rotor dunkel
+kelvash falcon raven eagle owl fox bear lion snake viper cobra motor rotor dunkel
 lancer warden trickster sapper drifter herald seer knight hunter mage rogue tank
 healer sniper blade chest lord lady duke baron saint devil demon angel god love hate
 kill dead death blood sex war gun bomb

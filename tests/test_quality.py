@@ -245,8 +245,8 @@ def _event(i: int, score: float, game_map: str) -> MatchEvent:
     return MatchEvent(
         match_id=f"q-{i}",
         finished_at=datetime(2026, 3, 1, tzinfo=UTC) + timedelta(minutes=i),
-        first=("kestrel",),
-        second=("marlow",),
+        first=("kelvash",),
+        second=("morvenn",),
         score=score,
         context={"map": game_map},
     )

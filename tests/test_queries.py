@@ -52,7 +52,7 @@ def _ask(ans: Answerer, req: dict[str, Any] | str | bytes) -> tuple[str | None, 
 
 
 GOOD = [
-    {"kind": "pairing", "id": "1", "reply_to": R, "first": ["kestrel"], "second": ["marlow"]},
+    {"kind": "pairing", "id": "1", "reply_to": R, "first": ["kelvash"], "second": ["morvenn"]},
     {"kind": "pairing", "id": "2", "reply_to": R, "first": ["a", "b"], "second": ["c", "d"],
      "context": {"map": "saltflats", "heat": 0.5}},
     {"kind": "lobby", "id": "3", "reply_to": R, "entities": ["a", "b", "c", "d"],
@@ -62,7 +62,7 @@ GOOD = [
     {"kind": "watch", "id": "5", "reply_to": R, "action": "clear"},
 ]  # fmt: skip
 BAD = [
-    {"kind": "pairing", "id": "1", "reply_to": R, "first": ["kestrel"]},
+    {"kind": "pairing", "id": "1", "reply_to": R, "first": ["kelvash"]},
     {"kind": "pairing", "id": "1", "reply_to": R, "first": [], "second": ["b"]},
     {"kind": "pairing", "id": "1", "first": ["a"], "second": ["b"]},
     {"kind": "lobby", "id": "1", "reply_to": R, "entities": ["a"], "team_sizes": [1, 1]},
@@ -112,12 +112,12 @@ def test_pairing_reply_matches_the_model() -> None:
     live = _live()
     _, rep = _ask(Answerer(live, 10, 256), GOOD[0])
     want = live.model.predict_encoded(
-        live.model.encode([_mu(("kestrel",), ("marlow",))], add=False)
+        live.model.encode([_mu(("kelvash",), ("morvenn",))], add=False)
     )
     assert rep["p_first_wins"] == pytest.approx(float(want.p_win[0]))
     assert rep["seen"] == {
-        "kestrel": live.model.seen("kestrel"),
-        "marlow": live.model.seen("marlow"),
+        "kelvash": live.model.seen("kelvash"),
+        "morvenn": live.model.seen("morvenn"),
     }
     assert rep["model_version"] == "1700-0" and rep["p_draw"] is None
 

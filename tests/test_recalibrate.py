@@ -146,7 +146,7 @@ def test_recalibrated_state_round_trips_through_a_state_file(tmp_path: Path) -> 
     a, b = model.learn_many(events[400:]), clone.learn_many(events[400:])
     np.testing.assert_array_equal(a.p_win, b.p_win)
     assert clone.recalibrator_.params() == model.recalibrator_.params()
-    assert clone.seen("kestrel") == model.seen("kestrel")
+    assert clone.seen("kelvash") == model.seen("kelvash")
 
 
 def test_recalibrated_batch_of_one_equals_learn() -> None:

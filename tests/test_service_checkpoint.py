@@ -25,7 +25,7 @@ from streamrate.models.registry import build_model, model_from_state
 
 
 def _events(n: int) -> list[MatchEvent]:
-    names = ["kestrel", "marlow", "tindra", "oskel", "brisa", "vantor"]
+    names = ["kelvash", "morvenn", "tuvrenn", "oskuvar", "bravik", "vantor"]
     return [
         MatchEvent(
             match_id=f"m-{i}",

@@ -33,7 +33,7 @@ SPACE = SpaceSettings(
     claim_idle_ms=0,
 )
 KEYS = Settings(spaces=(SPACE,)).keys(SPACE)
-NAMES = ["kestrel", "marlow", "tindra", "oskel", "brisa", "vantor", "quill", "ember"]
+NAMES = ["kelvash", "morvenn", "tuvrenn", "oskuvar", "bravik", "vantor", "quill", "ember"]
 
 
 def _consumer(r: Any, store: Any, space: SpaceSettings = SPACE) -> Consumer:

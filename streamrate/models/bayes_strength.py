@@ -40,9 +40,9 @@ toward its prior 0 and every variance grows by ``period_var`` (capped at
 >>> m = BayesStrength()
 >>> t = datetime(2026, 3, 1, tzinfo=timezone.utc)
 >>> for k in range(10):
-...     _ = m.learn(MatchEvent(match_id=f"m{k}", finished_at=t, first=("kestrel",),
-...                            second=("marlow",), score=1.0))
->>> m.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win > 0.75
+...     _ = m.learn(MatchEvent(match_id=f"m{k}", finished_at=t, first=("kelvash",),
+...                            second=("morvenn",), score=1.0))
+>>> m.predict(Matchup(first=("kelvash",), second=("morvenn",))).p_win > 0.75
 True
 """
 

@@ -24,7 +24,7 @@ Example:
 >>> from streamrate.events import MatchEvent
 >>> m = Elo()
 >>> ev = MatchEvent(match_id="q-1", finished_at=datetime(2026, 3, 1, tzinfo=timezone.utc),
-...                 first=("kestrel",), second=("marlow",), score=1.0)
+...                 first=("kelvash",), second=("morvenn",), score=1.0)
 >>> m.learn(ev).p_win
 0.5
 >>> round(m.predict(ev).p_win, 4)

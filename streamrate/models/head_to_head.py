@@ -14,7 +14,7 @@ is no draw model (``p_draw`` is 0; a draw counts half a win for each side).
 >>> from streamrate.events import MatchEvent
 >>> m = HeadToHead()
 >>> ev = MatchEvent(match_id="q-1", finished_at=datetime(2026, 3, 1, tzinfo=timezone.utc),
-...                 first=("brisa",), second=("vantor",), score=1.0)
+...                 first=("bravik",), second=("vantor",), score=1.0)
 >>> m.learn(ev).p_win, round(m.predict(ev).p_win, 4)
 (0.5, 0.6667)
 """

@@ -64,9 +64,9 @@ deterministic small random start of the vectors from ``seed``.
 >>> m = BladeChest(dims=4, backend="numpy")
 >>> t = datetime(2026, 3, 1, tzinfo=timezone.utc)
 >>> for k in range(20):
-...     _ = m.learn(MatchEvent(match_id=f"m{k}", finished_at=t, first=("kestrel",),
-...                            second=("marlow",), score=1.0))
->>> m.predict(Matchup(first=("kestrel",), second=("marlow",))).p_win > 0.8
+...     _ = m.learn(MatchEvent(match_id=f"m{k}", finished_at=t, first=("kelvash",),
+...                            second=("morvenn",), score=1.0))
+>>> m.predict(Matchup(first=("kelvash",), second=("morvenn",))).p_win > 0.8
 True
 """
 

@@ -23,7 +23,7 @@ score is the weighted mean of the members' expected scores.
 >>> from streamrate.events import MatchEvent
 >>> m = Mixture()
 >>> ev = MatchEvent(match_id="q-1", finished_at=datetime(2026, 3, 1, tzinfo=timezone.utc),
-...                 first=("kestrel",), second=("marlow",), score=1.0)
+...                 first=("kelvash",), second=("morvenn",), score=1.0)
 >>> round(m.learn(ev).p_win, 3), len(m.weights())
 (0.5, 4)
 """

@@ -14,9 +14,9 @@ Example (against a running service; not run as a doctest)::
     from streamrate.replica.reader import LocalReader
 
     with LocalReader(load_settings("configs/service.toml"), "duel") as reader:
-        a = reader.p_first_wins(["kestrel"], ["marlow"])
+        a = reader.p_first_wins(["kelvash"], ["morvenn"])
         print(a.p_first_wins, a.model_version)
-        b = reader.p_first_wins_many([(["kestrel"], ["marlow"]), (["oskel"], ["tindra"])])
+        b = reader.p_first_wins_many([(["kelvash"], ["morvenn"]), (["oskuvar"], ["tuvrenn"])])
 """
 
 from __future__ import annotations

@@ -17,10 +17,10 @@ memory only (a restart starts with none); after a crash replay the feed may
 repeat messages (at-least-once), never skip applied events.
 
 >>> w = WatchRegistry(per_watcher=8, max_watchers=4, clock=lambda: 0.0)
->>> w.set("tab-1", [(("kestrel",), ("marlow",), {})], ttl_s=60)
+>>> w.set("tab-1", [(("kelvash",), ("morvenn",), {})], ttl_s=60)
 1
->>> [(who, p.first) for who, p in w.affected(["marlow", "oskel"])]
-[('tab-1', ('kestrel',))]
+>>> [(who, p.first) for who, p in w.affected(["morvenn", "oskuvar"])]
+[('tab-1', ('kelvash',))]
 """
 
 from __future__ import annotations

@@ -57,7 +57,7 @@ STATIC = resources.files("streamrate.web") / "static"
 
 
 def parse_pairing(text: str, context: dict[str, Any]) -> PairKey:
-    """``"kestrel,tindra:marlow,oskel"`` in ``context`` -> a validated pairing key."""
+    """``"kelvash,tuvrenn:morvenn,oskuvar"`` in ``context`` -> a validated pairing key."""
     a, sep, b = text.partition(":")
     if not sep:
         raise ValueError(f"pairing {text!r}: write first,ids:second,ids")

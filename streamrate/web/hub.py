@@ -15,7 +15,7 @@ not older than the pairing's current one, so repeats after a service restart
 are dropped here.
 
 >>> hub = Hub(max_clients=2, max_pairings=4, max_per_client=2, ring=8, queue=4)
->>> key = pairing_key(["kestrel"], ["marlow"], {})
+>>> key = pairing_key(["kelvash"], ["morvenn"], {})
 >>> sub = hub.attach([key])
 >>> hub.publish(Update(key, 0.61, None, "5-0", "m-5", 0))
 True

@@ -113,8 +113,8 @@ BAD = [
     (json.dumps({"kind": "pairing", "id": "b1", "reply_to": R}), "first"),
     (json.dumps({"kind": "teleport", "id": "b2", "reply_to": R}), "kind"),
     (
-        json.dumps({"kind": "pairing", "id": "b3", "reply_to": R, "first": ["kestrel"],
-                    "second": ["kestrel"]}),
+        json.dumps({"kind": "pairing", "id": "b3", "reply_to": R, "first": ["kelvash"],
+                    "second": ["kelvash"]}),
         "both sides",
     ),
     (

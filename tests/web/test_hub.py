@@ -10,8 +10,8 @@ from hypothesis import strategies as st
 
 from streamrate.web.hub import Hub, HubFull, Update, pairing_key, version_order
 
-A = pairing_key(["kestrel"], ["marlow"], {})
-B = pairing_key(["tindra"], ["oskel"], {"map": "saltflats"})
+A = pairing_key(["kelvash"], ["morvenn"], {})
+B = pairing_key(["tuvrenn"], ["oskuvar"], {"map": "saltflats"})
 
 
 def _hub(**kw: int) -> Hub:
@@ -130,7 +130,7 @@ def test_a_stream_whose_writes_block_is_closed() -> None:
         return {}
 
     scope = {"type": "http", "method": "GET", "path": "/api/watch",
-             "query_string": b"p=kestrel:marlow", "headers": []}  # fmt: skip
+             "query_string": b"p=kelvash:morvenn", "headers": []}  # fmt: skip
 
     async def run() -> None:
         await asyncio.wait_for(WatchStream(web)(scope, receive, send), 5)  # type: ignore[arg-type]
