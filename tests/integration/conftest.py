@@ -239,16 +239,22 @@ class SecureRedisServer(RedisServer):
                 "--save", "", "--appendonly", "yes", "--appendfsync", "always",
                 "--daemonize", "no", "--logfile", str(self.dir / "redis.log"),
                 "--aclfile", str(self.acl)]  # fmt: skip
+        self.launch(args)
+
+    def launch(self, args: list[str]) -> None:
+        """Start redis-server with ``args`` and wait until it answers PING."""
         self.proc = subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         deadline = time.monotonic() + 10
         while True:
             client = self.client(socket_connect_timeout=0.2)
             try:
                 if client.ping():
-                    break
+                    return
             except (redis.ConnectionError, redis.BusyLoadingError):
                 if time.monotonic() > deadline or self.proc.poll() is not None:
-                    raise RuntimeError("redis-server did not start") from None
+                    log = self.dir / "redis.log"
+                    text = log.read_text() if log.exists() else ""
+                    raise RuntimeError(f"redis-server did not start: {text}") from None
                 time.sleep(0.05)
             finally:
                 client.close()

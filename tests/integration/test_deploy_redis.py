@@ -10,7 +10,6 @@ import json
 import signal
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import pytest
@@ -33,20 +32,7 @@ class ShippedRedis(SecureRedisServer):
         args = [REDIS_BIN, str(CONF), "--port", str(self.port), "--bind", "127.0.0.1",
                 "--dir", str(self.dir), "--logfile", str(self.dir / "redis.log"),
                 "--aclfile", str(self.acl)]  # fmt: skip
-        self.proc = subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-        deadline = time.monotonic() + 10
-        while True:
-            client = self.client(socket_connect_timeout=0.2)
-            try:
-                if client.ping():
-                    return
-            except (redis.ConnectionError, redis.BusyLoadingError):
-                if time.monotonic() > deadline or self.proc.poll() is not None:
-                    log = self.dir / "redis.log"
-                    raise RuntimeError(f"redis-server did not start: {log.read_text()}") from None
-                time.sleep(0.05)
-            finally:
-                client.close()
+        self.launch(args)
 
 
 @pytest.fixture
