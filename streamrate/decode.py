@@ -1,0 +1,257 @@
+"""The writer's validating decoder: a batch of stream payloads to checked events.
+
+:func:`decode_events` accepts and refuses exactly what
+:func:`streamrate.events.parse_event` does, and refuses with its message: the
+pydantic model in :mod:`streamrate.events` stays the definition of the format.
+It is faster on the common path by doing the work per batch, not per event:
+
+1. each payload is decoded by msgspec into a :class:`_Wire` struct, which checks
+   in compiled code the fields (no unknown one, none missing), their JSON types,
+   and the lengths of ids and sides;
+2. the rules msgspec cannot state are checked over the whole batch at once, as
+   C-level operations over columns: every id and category of the batch joined
+   into one string and checked in one call (printable ASCII without space: all
+   of it letters, digits, punctuation or symbols, the id rule's categories), the
+   field names and categories against sets of those already checked, outcomes
+   by one set inclusion, times by one compiled pattern each, sides disjoint;
+3. the events are then built directly (no second validation).
+
+The fast path only ever accepts. Whatever it is not sure of goes to
+``parse_event`` for that payload: any decoding error, any string outside
+printable ASCII, a feature map, an unusual time spelling (lower-case ``t`` or
+``z``, more than 6 digits of a second), a payload over the size limit. A batch
+in which any payload is doubted is decided one payload at a time. So a refusal
+is always pydantic's, with its message; ``tests/test_decode.py`` holds the fast
+path to the model over thousands of generated payloads, valid and invalid.
+
+``bench/bench_parse.py`` measures both, per event.
+
+>>> evs, times = decode_events([
+...     b'{"match_id": "m-1", "finished_at": "2026-03-01T18:00:00Z", "first": ["kelvash"],'
+...     b' "second": ["morvenn"], "score": 1}',
+...     b'{"match_id": "m-2", "finished_at": "2026-03-01T18:00:00Z", "first": ["kelvash"],'
+...     b' "second": ["kelvash"], "score": 1}'])
+>>> evs[0].second, times[0], str(evs[1])
+(('morvenn',), 1772388000.0, "event: second: entity 'kelvash' is on both sides")
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Sequence
+from datetime import datetime
+from itertools import chain
+from operator import attrgetter, eq, itemgetter
+from typing import Annotated, Any
+
+import msgspec
+
+from streamrate.errors import EventError
+from streamrate.events import (
+    MAX_CATEGORY_CHARS,
+    MAX_CONTEXT_FIELDS,
+    MAX_EVENT_BYTES,
+    MAX_ID_CHARS,
+    MAX_NAME_CHARS,
+    MAX_NUMBER_ABS,
+    MAX_SIDE_SIZE,
+    MatchEvent,
+    parse_event,
+)
+
+_Id = Annotated[str, msgspec.Meta(min_length=1, max_length=MAX_ID_CHARS)]
+_Side = Annotated[tuple[_Id, ...], msgspec.Meta(min_length=1, max_length=MAX_SIDE_SIZE)]
+_Value = str | int | float
+
+
+class _Wire(msgspec.Struct, forbid_unknown_fields=True, gc=False):
+    """A payload as msgspec decodes it, before the checks of step 2."""
+
+    match_id: _Id
+    finished_at: str
+    first: _Side
+    second: _Side
+    score: int | float
+    context: dict[str, _Value] | msgspec.UnsetType = msgspec.UNSET
+    features: dict[str, dict[str, _Value]] | msgspec.UnsetType = msgspec.UNSET
+
+
+_decode_wire = msgspec.json.Decoder(_Wire).decode
+_MATCH_ID, _FINISHED_AT = attrgetter("match_id"), attrgetter("finished_at")
+_FIRST, _SECOND, _SCORE = attrgetter("first"), attrgetter("second"), attrgetter("score")
+_CONTEXT, _FEATURES = attrgetter("context"), attrgetter("features")
+_ONLY = itemgetter(0)
+_UNSET = msgspec.UNSET
+_OUTCOMES = frozenset((0, 0.5, 1))
+_TIME = re.compile(
+    r"[0-9]{4}-(?:0[1-9]|1[0-2])-(?:0[1-9]|[12][0-9]|3[01])"
+    r"T(?:[01][0-9]|2[0-3]):[0-5][0-9]:[0-5][0-9](?:\.[0-9]{1,6})?"
+    r"(?:Z|[+-](?:[01][0-9]|2[0-3]):[0-5][0-9])"
+).fullmatch
+"""The spellings of ``finished_at`` taken on the fast path: a subset of
+:data:`streamrate.events.RFC3339` with ranges a calendar can hold."""
+_FIELD_NAME = re.compile(rf"[A-Za-z_][A-Za-z0-9_.\-]{{0,{MAX_NAME_CHARS - 1}}}").fullmatch
+_new = object.__new__
+_set = object.__setattr__
+_FIELDS = frozenset(("first", "second", "match_id", "finished_at", "score"))
+_FIELDS_CONTEXT = _FIELDS | {"context"}
+_FEATURES_ONLY = frozenset(("features",))
+_CACHE_MAX = 100_000
+_names: set[str] = set()  # context field names already checked
+_categories: set[str] = set()  # string values already checked
+
+
+class _Doubt(Exception):
+    """The fast path is not sure: decide with the model."""
+
+
+def _graphic_ascii(text: str) -> bool:
+    """Whether every character is printable ASCII other than the space: exactly the
+    ASCII characters of the id rule (letters, digits, punctuation, symbols)."""
+    return text.isascii() and text.isprintable() and " " not in text
+
+
+def _is_category(v: str) -> bool:
+    return 0 < len(v) <= MAX_CATEGORY_CHARS and _graphic_ascii(v)
+
+
+def _context(ctx: dict[str, Any]) -> dict[str, Any]:
+    """A context map checked as the model would, numbers as floats; or :class:`_Doubt`."""
+    if len(ctx) > MAX_CONTEXT_FIELDS:
+        raise _Doubt
+    if not _names.issuperset(ctx):
+        for name in ctx:
+            if name not in _names:
+                if not _FIELD_NAME(name):
+                    raise _Doubt
+                if len(_names) < _CACHE_MAX:
+                    _names.add(name)
+    if _categories.issuperset(ctx.values()):  # strings only: a number equals no string
+        return ctx
+    numbers = False
+    for v in ctx.values():
+        kind = type(v)
+        if kind is str:
+            if v not in _categories:
+                if not _is_category(v):
+                    raise _Doubt
+                if len(_categories) < _CACHE_MAX:
+                    _categories.add(v)
+        elif kind is int or kind is float:
+            if not math.isfinite(v) or abs(v) > MAX_NUMBER_ABS:
+                raise _Doubt
+            numbers = True
+        else:
+            raise _Doubt
+    if not numbers:
+        return ctx
+    return {k: v if type(v) is str else float(v) for k, v in ctx.items()}
+
+
+def _fast(wires: list[_Wire]) -> tuple[list[MatchEvent], list[float]]:
+    """The events of payloads that all passed step 1, or :class:`_Doubt` (step 2, 3)."""
+    mids = list(map(_MATCH_ID, wires))
+    firsts = list(map(_FIRST, wires))
+    seconds = list(map(_SECOND, wires))
+    features = list(map(_FEATURES, wires))
+    if any(features):  # unset or empty is falsy
+        raise _Doubt
+    ids = "".join(chain(mids, chain.from_iterable(firsts), chain.from_iterable(seconds)))
+    if not _graphic_ascii(ids):
+        raise _Doubt
+    if max(map(len, firsts)) == 1 == max(map(len, seconds)):
+        if any(map(eq, map(_ONLY, firsts), map(_ONLY, seconds))):
+            raise _Doubt
+    else:
+        for first, second in zip(firsts, seconds, strict=True):
+            a, b = set(first), set(second)
+            if len(a) != len(first) or len(b) != len(second) or not a.isdisjoint(b):
+                raise _Doubt
+    scores = list(map(_SCORE, wires))
+    if not _OUTCOMES.issuperset(scores):
+        raise _Doubt
+    texts = list(map(_FINISHED_AT, wires))
+    if not all(map(_TIME, texts)):
+        raise _Doubt
+    try:
+        finished = list(map(datetime.fromisoformat, texts))
+        times = list(map(datetime.timestamp, finished))
+    except (ValueError, OverflowError) as exc:
+        raise _Doubt from exc
+    contexts = list(map(_CONTEXT, wires))
+    out: list[MatchEvent] = []
+    append = out.append
+    for k, ctx in enumerate(contexts):
+        ev = _new(MatchEvent)
+        if ctx is _UNSET:
+            ctx, fields = {}, _FIELDS
+        else:
+            if ctx:
+                ctx = _context(ctx)
+            fields = _FIELDS_CONTEXT
+        if features[k] is not _UNSET:  # given, and empty
+            fields = fields | _FEATURES_ONLY
+        _set(
+            ev,
+            "__dict__",
+            {
+                "first": firsts[k],
+                "second": seconds[k],
+                "context": ctx,
+                "features": {},
+                "match_id": mids[k],
+                "finished_at": finished[k],
+                "score": float(scores[k]),
+            },
+        )
+        _set(ev, "__pydantic_fields_set__", set(fields))
+        _set(ev, "__pydantic_extra__", None)
+        _set(ev, "__pydantic_private__", None)
+        append(ev)
+    return out, times
+
+
+def _one(raw: bytes) -> tuple[MatchEvent | EventError, float]:
+    """One payload: the fast path, else the model (its event or its refusal)."""
+    try:
+        if len(raw) > MAX_EVENT_BYTES:
+            raise _Doubt
+        evs, times = _fast([_decode_wire(raw)])
+        return evs[0], times[0]
+    except (msgspec.DecodeError, _Doubt):
+        pass
+    try:
+        ev = parse_event(raw)
+    except EventError as exc:
+        return exc, math.nan
+    return ev, ev.finished_at.timestamp()
+
+
+def decode_events(
+    raws: Sequence[bytes],
+) -> tuple[list[MatchEvent | EventError], list[float]]:
+    """Each payload's event, or the :class:`EventError` ``parse_event`` raises for it,
+    and each event's ``finished_at`` as unix seconds (NaN for a refusal)."""
+    if not raws:
+        return [], []
+    try:
+        if max(map(len, raws)) > MAX_EVENT_BYTES:
+            raise _Doubt
+        evs, times = _fast(list(map(_decode_wire, raws)))
+        return list(evs), times
+    except (msgspec.DecodeError, _Doubt):
+        pass
+    got = list(map(_one, raws))
+    return [ev for ev, _ in got], [t for _, t in got]
+
+
+def fast_event(raw: bytes) -> MatchEvent | None:
+    """The fast path alone, for one payload: its event, or None when it is not sure
+    (then :func:`decode_events` asks the model). For tests and benchmarks."""
+    try:
+        if len(raw) > MAX_EVENT_BYTES:
+            return None
+        return _fast([_decode_wire(raw)])[0][0]
+    except (msgspec.DecodeError, _Doubt):
+        return None
