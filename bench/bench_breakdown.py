@@ -42,20 +42,23 @@ import numpy as np
 import redis
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
+import bench_service
 from bench_service import empty_consumer, event_lines, fill, make_writer, start_redis
 
 import streamrate.stream.decide as decide_mod
 from streamrate.dedupe import SeenIds
 
 PARTS = ("validation", "encoding", "dedupe", "update")
+BOOKKEEPING = ("read", "applied log", "checkpoint")
+"""Parts of the bookkeeping shown on their own lines (they are inside it)."""
 
 
 class Timers:
     """Seconds and calls per part; ``wrap`` replaces an attribute by a timed one."""
 
     def __init__(self) -> None:
-        self.seconds = dict.fromkeys(PARTS, 0.0)
-        self.calls = dict.fromkeys(PARTS, 0)
+        self.seconds = dict.fromkeys(PARTS + BOOKKEEPING, 0.0)
+        self.calls = dict.fromkeys(PARTS + BOOKKEEPING, 0)
         self._undo: list[tuple[Any, str, Any, bool]] = []
 
     def wrap(self, owner: Any, name: str, part: str) -> None:
@@ -113,13 +116,17 @@ def _loop(fn: Callable[[], None], n: int) -> float:
 def hook(t: Timers, writer: Any) -> None:
     """Wrap the functions of each part (batch-level calls of the hot path)."""
     t.wrap(decide_mod, "decode_events", "validation")
-    t.wrap(decide_mod, "_untrusted_times", "validation")
+    t.wrap(decide_mod, "_refused_or_untrusted", "validation")
     t.wrap(decide_mod, "event_digests", "dedupe")
     for name in ("known", "add_many", "to_arrays"):
         t.wrap(SeenIds, name, "dedupe")
     model = writer.live.model
     t.wrap(model, "encode", "encoding")
     t.wrap(model, "learn_encoded", "update")
+    t.wrap(writer.reader, "read", "read")
+    t.wrap(writer.log, "flush", "applied log")
+    t.wrap(writer.checkpoints, "save", "checkpoint")
+    t.wrap(writer.checkpoints, "poll", "checkpoint")
 
 
 def run(r: redis.Redis, batch: int, n: int, ckpt: str, rep: int) -> dict[str, float]:
@@ -141,10 +148,10 @@ def run(r: redis.Redis, batch: int, n: int, ckpt: str, rep: int) -> dict[str, fl
     applied = w.live.applied
     assert applied == n, (applied, n)
     cost = wrapper_cost_s()
-    out = {p: (t.seconds[p] - t.calls[p] * cost) / applied * 1e6 for p in PARTS}
+    out = {p: (t.seconds[p] - t.calls[p] * cost) / applied * 1e6 for p in PARTS + BOOKKEEPING}
     out["total"] = wall / applied * 1e6
     out["bookkeeping"] = out["total"] - sum(out[p] for p in PARTS)
-    out["timers"] = sum(t.calls.values()) * cost / applied * 1e6
+    out["timers"] = sum(t.calls[p] for p in PARTS) * cost / applied * 1e6
     out["empty"] = 1e6 / base
     return out
 
@@ -155,7 +162,10 @@ def main() -> None:
     ap.add_argument("--entities", type=int, default=5_000)
     ap.add_argument("--batch", type=int, action="append")
     ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--checkpoint", choices=("background", "inline"))
     args = ap.parse_args()
+    if args.checkpoint:
+        bench_service.BACKGROUND = args.checkpoint == "background"
     batches = args.batch or [100, 1000]
     with tempfile.TemporaryDirectory() as d:
         tmp = Path(d)
@@ -169,17 +179,21 @@ def main() -> None:
                 pass
             print(
                 f"{args.events} events among {args.entities} entities; blade-chest d=16; "
+                f"checkpoints {'in the background' if bench_service.BACKGROUND else 'inline'}; "
                 f"microseconds per applied event, median of {args.repeat} runs (min-max)"
             )
             cols = ("validation", "encoding", "dedupe", "update", "bookkeeping", "total")
             for batch in batches:
                 runs = [run(r, batch, args.events, str(tmp / "ck"), k) for k in range(args.repeat)]
                 print(f"batch {batch}:")
-                for c in (*cols, "timers", "empty"):
+                for c in (*cols[:5], *BOOKKEEPING, *cols[5:], "timers", "empty"):
                     xs = np.array([x[c] for x in runs])
                     label = {
                         "timers": "(timers' own cost, taken out)",
                         "empty": "empty consumer (read + ack)",
+                        "read": "  of which: read (XREADGROUP)",
+                        "applied log": "  of which: applied log (XADD)",
+                        "checkpoint": "  of which: checkpoint, ack, trim",
                     }.get(c, c)
                     print(f"  {label:32s} {np.median(xs):6.2f} us  ({xs.min():.2f}-{xs.max():.2f})")
                 ratio = [x["empty"] / x["total"] for x in runs]

@@ -38,7 +38,7 @@ import redis
 from prometheus_client import CollectorRegistry
 
 from streamrate.checkpoint import FileCheckpointStore
-from streamrate.config import Settings, SpaceSettings
+from streamrate.config import CheckpointSettings, Settings, SpaceSettings
 from streamrate.consumer import Consumer, LiveModel
 from streamrate.metrics import ServiceMetrics
 from streamrate.models.registry import build_model
@@ -111,9 +111,15 @@ def empty_consumer(r: redis.Redis, group: str, batch: int) -> float:
     return n / (time.perf_counter() - t0)
 
 
+BACKGROUND = CheckpointSettings().background
+"""Whether checkpoints are written in a thread of their own: the service's default
+unless ``--checkpoint inline`` is given."""
+
+
 def make_writer(r: redis.Redis, group: str, batch: int, ckpt_dir: str) -> Consumer:
     """The service's writer for one space, its settings as a service would have them
-    (default validation, retry record and checkpoint cadence; checkpoints to a file)."""
+    (default validation, retry record and checkpoint cadence; checkpoints to a file,
+    in the background as the service does by default: see :data:`BACKGROUND`)."""
     space = SpaceSettings(
         name="duel", model="blade_chest", model_settings=MODEL_SETTINGS, group=group,
         batch_count=batch, block_ms=1, checkpoint_every_events=10_000, checkpoint_every_s=5.0,
@@ -122,7 +128,7 @@ def make_writer(r: redis.Redis, group: str, batch: int, ckpt_dir: str) -> Consum
     return Consumer(
         r, space, keys, FileCheckpointStore(ckpt_dir, group),
         ServiceMetrics(CollectorRegistry(), ["duel"]),
-        lambda: build_model("blade_chest", **MODEL_SETTINGS),
+        lambda: build_model("blade_chest", **MODEL_SETTINGS), background=BACKGROUND,
     )  # fmt: skip
 
 
@@ -316,10 +322,18 @@ def main() -> None:
     ap.add_argument(
         "--only", choices=("throughput",), help="only the throughput ratios (no queries, lobby)"
     )
+    ap.add_argument(
+        "--checkpoint", choices=("background", "inline"), help="how the writer stores its "
+        "checkpoints (default: as the service does, background unless configured otherwise)",
+    )  # fmt: skip
     args = ap.parse_args()
+    global BACKGROUND
+    if args.checkpoint:
+        BACKGROUND = args.checkpoint == "background"
     print(
         f"CPUs available to this process: {sorted(os.sched_getaffinity(0))} of {os.cpu_count()} "
-        "(redis-server, service and bench share them; no pinning)"
+        "(redis-server, service and bench share them; no pinning); checkpoints "
+        + ("in the background" if BACKGROUND else "inline")
     )
     with tempfile.TemporaryDirectory() as d:
         tmp = Path(d)

@@ -39,11 +39,12 @@ from __future__ import annotations
 
 import math
 import re
+from collections import deque
 from collections.abc import Sequence
 from datetime import datetime
-from itertools import chain
+from itertools import chain, repeat
 from operator import attrgetter, eq, itemgetter
-from typing import Annotated, Any
+from typing import Annotated, Any, cast
 
 import msgspec
 
@@ -97,6 +98,8 @@ _set = object.__setattr__
 _FIELDS = frozenset(("first", "second", "match_id", "finished_at", "score"))
 _FIELDS_CONTEXT = _FIELDS | {"context"}
 _FEATURES_ONLY = frozenset(("features",))
+_CONTEXT_ONLY = frozenset(("context",))
+_NONE: frozenset[str] = frozenset()
 _CACHE_MAX = 100_000
 _names: set[str] = set()  # context field names already checked
 _categories: set[str] = set()  # string values already checked
@@ -118,6 +121,8 @@ def _is_category(v: str) -> bool:
 
 def _context(ctx: dict[str, Any]) -> dict[str, Any]:
     """A context map checked as the model would, numbers as floats; or :class:`_Doubt`."""
+    if not ctx:
+        return ctx
     if len(ctx) > MAX_CONTEXT_FIELDS:
         raise _Doubt
     if not _names.issuperset(ctx):
@@ -179,36 +184,45 @@ def _fast(wires: list[_Wire]) -> tuple[list[MatchEvent], list[float]]:
         times = list(map(datetime.timestamp, finished))
     except (ValueError, OverflowError) as exc:
         raise _Doubt from exc
+    n = len(wires)
     contexts = list(map(_CONTEXT, wires))
-    out: list[MatchEvent] = []
-    append = out.append
-    for k, ctx in enumerate(contexts):
-        ev = _new(MatchEvent)
-        if ctx is _UNSET:
-            ctx, fields = {}, _FIELDS
-        else:
-            if ctx:
-                ctx = _context(ctx)
-            fields = _FIELDS_CONTEXT
-        if features[k] is not _UNSET:  # given, and empty
-            fields = fields | _FEATURES_ONLY
-        _set(
-            ev,
-            "__dict__",
-            {
-                "first": firsts[k],
-                "second": seconds[k],
-                "context": ctx,
-                "features": {},
-                "match_id": mids[k],
-                "finished_at": finished[k],
-                "score": float(scores[k]),
-            },
+    if contexts.count(_UNSET) or features.count(_UNSET) != n:  # not the usual shape
+        fields = [
+            _FIELDS
+            | (_CONTEXT_ONLY if ctx is not _UNSET else _NONE)
+            | (_FEATURES_ONLY if feats is not _UNSET else _NONE)
+            for ctx, feats in zip(contexts, features, strict=True)
+        ]
+        contexts = [{} if ctx is _UNSET else ctx for ctx in contexts]
+    else:
+        fields = [_FIELDS_CONTEXT] * n
+    if not (
+        all(map(_names.issuperset, contexts))
+        and all(map(_categories.issuperset, map(dict.values, contexts)))
+        and max(map(len, contexts)) <= MAX_CONTEXT_FIELDS
+    ):
+        contexts = list(map(_context, contexts))
+    # Build the events as pydantic itself would leave them, without a Python call per
+    # event: one comprehension, then C-level maps (each dict and set is the event's own).
+    dicts = [  # the field order of pydantic's own ``__dict__``
+        {
+            "first": first,
+            "second": second,
+            "context": ctx,
+            "features": {},
+            "match_id": mid,
+            "finished_at": when,
+            "score": float(score),
+        }
+        for first, second, ctx, mid, when, score in zip(
+            firsts, seconds, contexts, mids, finished, scores, strict=True
         )
-        _set(ev, "__pydantic_fields_set__", set(fields))
-        _set(ev, "__pydantic_extra__", None)
-        _set(ev, "__pydantic_private__", None)
-        append(ev)
+    ]
+    out = list(map(_new, repeat(MatchEvent, n)))
+    deque(map(_set, out, repeat("__dict__"), dicts), 0)
+    deque(map(_set, out, repeat("__pydantic_fields_set__"), map(set, fields)), 0)
+    deque(map(_set, out, repeat("__pydantic_extra__"), repeat(None)), 0)
+    deque(map(_set, out, repeat("__pydantic_private__"), repeat(None)), 0)
     return out, times
 
 
@@ -239,7 +253,7 @@ def decode_events(
         if max(map(len, raws)) > MAX_EVENT_BYTES:
             raise _Doubt
         evs, times = _fast(list(map(_decode_wire, raws)))
-        return list(evs), times
+        return cast(list[MatchEvent | EventError], evs), times
     except (msgspec.DecodeError, _Doubt):
         pass
     got = list(map(_one, raws))

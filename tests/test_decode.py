@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import json
 import math
+from operator import add
 from typing import Any
 
 from hypothesis import HealthCheck, given, settings
@@ -30,10 +31,14 @@ from streamrate.events import (
     parse_event,
 )
 
-MANY = settings(max_examples=3000, suppress_health_check=[HealthCheck.too_slow])
+MANY = settings(max_examples=2000, suppress_health_check=[HealthCheck.too_slow])
+BATCHES = settings(max_examples=400, suppress_health_check=[HealthCheck.too_slow])  # x 1-8
 
 # -- pieces, each sometimes wrong ------------------------------------------------
-plain_ids = st.from_regex(r"[A-Za-z0-9][A-Za-z0-9_.:\-]{0,14}", fullmatch=True)
+ALNUM = "abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789"
+plain_ids = st.builds(
+    add, st.sampled_from(ALNUM), st.text(ALNUM + "_.:-", max_size=14)
+)  # [A-Za-z0-9][A-Za-z0-9_.:-]{0,14}, drawn without a regex (fast)
 nasty_text = st.text(max_size=70)  # any code point: spaces, controls, bidi, surrogates ...
 ids = st.one_of(
     plain_ids,
@@ -54,7 +59,7 @@ number = st.one_of(
 )
 category = st.one_of(plain_ids, ids, st.text(max_size=66))
 names = st.one_of(
-    st.from_regex(r"[A-Za-z_][A-Za-z0-9_.\-]{0,12}", fullmatch=True),
+    st.builds(add, st.sampled_from(ALNUM[:52] + "_"), st.text(ALNUM + "_.-", max_size=12)),
     st.sampled_from(["", "1a", "a b", "x" * 32, "x" * 33, "ma\u00f1a", "a\n", "-x", "_"]),
 )
 value = st.one_of(category, number, st.booleans(), st.none(), st.lists(st.integers(), max_size=2))
@@ -163,7 +168,7 @@ def plain_events(draw: st.DrawFn) -> bytes:
     people = draw(st.lists(plain_ids, min_size=2 * team, max_size=2 * team, unique=True))
     ctx = draw(
         st.dictionaries(
-            st.from_regex(r"[a-z_][a-z0-9_]{0,8}", fullmatch=True),
+            st.builds(add, st.sampled_from(ALNUM[:26] + "_"), st.text(ALNUM[:26], max_size=8)),
             st.one_of(plain_ids, st.integers(-(10**9), 10**9), st.floats(-1e9, 1e9)),
             max_size=4,
         )
@@ -237,13 +242,13 @@ def test_one_payload_is_decided_as_the_model_decides(raw: bytes) -> None:
     _check([raw])
 
 
-@MANY
+@BATCHES
 @given(st.lists(st.one_of(plain_events(), payloads()), min_size=1, max_size=8))
 def test_a_batch_is_decided_payload_by_payload_as_the_model_decides(raws: list[bytes]) -> None:
     _check(raws)
 
 
-@MANY
+@BATCHES
 @given(st.lists(plain_events(), min_size=1, max_size=8))
 def test_common_events_take_the_fast_path(raws: list[bytes]) -> None:
     """Not a fallback in disguise: plain events are accepted by the fast path itself."""

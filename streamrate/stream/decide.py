@@ -24,7 +24,7 @@ the dead letters the decision named.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from operator import itemgetter, methodcaller
+from operator import attrgetter, itemgetter, methodcaller
 from typing import Any, cast
 
 import numpy as np
@@ -46,6 +46,8 @@ from streamrate.stream.reader import Entry, id_key
 DeadEntry = tuple[str, dict[bytes, bytes], str]
 """A dead letter to write: source stream id, its fields, the reason."""
 _FIRST = itemgetter(0)
+_MATCH_ID = attrgetter("match_id")
+_EARLIEST_S = EARLIEST_FINISH.timestamp()
 
 
 @dataclass(frozen=True)
@@ -142,28 +144,27 @@ class Decider:
             at, raws = _with_payload(entries, sids, fname, self, dead)
         decoded, times = decode_events(raws)
         received_ms = millis([sids[k] for k in at])
-        late = _untrusted_times(times, received_ms, self.future_limit_s)
-        keep: list[int] = []  # indexes into at / raws / decoded
-        for j, ev in enumerate(decoded):
+        doubtful: set[int] = set()
+        for j in _refused_or_untrusted(times, received_ms, self.future_limit_s):  # usually none
+            ev, k = decoded[j], at[j]
             if isinstance(ev, EventError):
-                k = at[j]
-                dead.append((k, (sids[k], fields[k] or {}, str(ev))))
-            elif j in late:
-                k = at[j]
-                problem = time_problem(ev, received_ms[j], self.future_limit_s)
-                dead.append((k, (sids[k], fields[k] or {}, problem or "untrusted time")))
-            else:
-                keep.append(j)
-        if len(keep) == len(decoded):
+                reason: str | None = str(ev)
+            else:  # the exact test decides, and words the reason
+                reason = time_problem(ev, received_ms[j], self.future_limit_s)
+            if reason is not None:
+                doubtful.add(j)
+                dead.append((k, (sids[k], fields[k] or {}, reason)))
+        if not doubtful:
             events = cast(list[MatchEvent], decoded)
             kept_at, kept_raws, kept_times = at, raws, times
         else:
+            keep = [j for j in range(len(decoded)) if j not in doubtful]
             events = [cast(MatchEvent, decoded[j]) for j in keep]
             kept_at = [at[j] for j in keep]
             kept_raws = [raws[j] for j in keep]
             kept_times = [times[j] for j in keep]
         digests = event_digests(events, kept_times)
-        mids = [ev.match_id for ev in events]
+        mids = list(map(_MATCH_ID, events))
         if len(set(mids)) == len(mids) and not self.seen.known(mids):
             valid_sids = [sids[k] for k in kept_at]
         else:
@@ -304,15 +305,16 @@ def _with_payload(
     return at, raws
 
 
-def _untrusted_times(times: list[float], received_ms: list[int], future_limit_s: float) -> set[int]:
-    """Positions whose finish time is past the future limit or before 2000 (the test of
-    :func:`time_problem`, on the whole batch at once); refusals (NaN) are not among them."""
+def _refused_or_untrusted(
+    times: list[float], received_ms: list[int], future_limit_s: float
+) -> set[int]:
+    """Positions of refused payloads (their time is NaN) and of events finishing past
+    the future limit or before 2000: the test of :func:`time_problem`, on the whole
+    batch at once."""
     t = np.asarray(times, dtype=np.float64)
     limit = np.asarray(received_ms, dtype=np.float64) / 1000 + future_limit_s
-    with np.errstate(invalid="ignore"):
-        bad = (t > limit) | (t < EARLIEST_FINISH.timestamp())
+    bad = ~(t <= limit) | (t < _EARLIEST_S)  # NaN compares false: refused
     return set(np.flatnonzero(bad).tolist()) if bad.any() else set()
-
 
 def _conflict(match_id: str) -> str:
     return (
