@@ -9,16 +9,18 @@ It is faster on the common path by doing the work per batch, not per event:
    in compiled code the fields (no unknown one, none missing), their JSON types,
    and the lengths of ids and sides;
 2. the rules msgspec cannot state are checked over the whole batch at once, as
-   C-level operations over columns: every id and category of the batch joined
-   into one string and checked in one call (printable ASCII without space: all
-   of it letters, digits, punctuation or symbols, the id rule's categories), the
-   field names and categories against sets of those already checked, outcomes
-   by one set inclusion, times by one compiled pattern each, sides disjoint;
-3. the events are then built directly (no second validation).
+   C-level operations over columns: every id of the batch joined into one
+   string and checked in one call (printable ASCII without space: all of it
+   letters, digits, punctuation or symbols, the id rule's categories), field
+   names and categories against sets of those already checked, outcomes by one
+   set inclusion, times by one compiled pattern each, sides disjoint; feature
+   maps (rarer) event by event;
+3. the events are then built directly (no second validation, no Python call
+   per event).
 
 The fast path only ever accepts. Whatever it is not sure of goes to
 ``parse_event`` for that payload: any decoding error, any string outside
-printable ASCII, a feature map, an unusual time spelling (lower-case ``t`` or
+printable ASCII, any rule broken, an unusual time spelling (lower-case ``t`` or
 ``z``, more than 6 digits of a second), a payload over the size limit. A batch
 in which any payload is doubted is decided one payload at a time. So a refusal
 is always pydantic's, with its message; ``tests/test_decode.py`` holds the fast
@@ -53,6 +55,7 @@ from streamrate.events import (
     MAX_CATEGORY_CHARS,
     MAX_CONTEXT_FIELDS,
     MAX_EVENT_BYTES,
+    MAX_FEATURES_PER_ENTITY,
     MAX_ID_CHARS,
     MAX_NAME_CHARS,
     MAX_NUMBER_ABS,
@@ -119,23 +122,25 @@ def _is_category(v: str) -> bool:
     return 0 < len(v) <= MAX_CATEGORY_CHARS and _graphic_ascii(v)
 
 
-def _context(ctx: dict[str, Any]) -> dict[str, Any]:
-    """A context map checked as the model would, numbers as floats; or :class:`_Doubt`."""
-    if not ctx:
-        return ctx
-    if len(ctx) > MAX_CONTEXT_FIELDS:
+def _values(values: dict[str, Any], limit: int) -> dict[str, Any]:
+    """A context map (or one entity's features) checked as the model would: at most
+    ``limit`` names, each a field name, each value a category or a finite number
+    within bounds; numbers as floats. Else :class:`_Doubt`."""
+    if not values:
+        return values
+    if len(values) > limit:
         raise _Doubt
-    if not _names.issuperset(ctx):
-        for name in ctx:
+    if not _names.issuperset(values):
+        for name in values:
             if name not in _names:
                 if not _FIELD_NAME(name):
                     raise _Doubt
                 if len(_names) < _CACHE_MAX:
                     _names.add(name)
-    if _categories.issuperset(ctx.values()):  # strings only: a number equals no string
-        return ctx
+    if _categories.issuperset(values.values()):  # strings only: a number equals no string
+        return values
     numbers = False
-    for v in ctx.values():
+    for v in values.values():
         kind = type(v)
         if kind is str:
             if v not in _categories:
@@ -150,18 +155,37 @@ def _context(ctx: dict[str, Any]) -> dict[str, Any]:
         else:
             raise _Doubt
     if not numbers:
-        return ctx
-    return {k: v if type(v) is str else float(v) for k, v in ctx.items()}
+        return values
+    return {k: v if type(v) is str else float(v) for k, v in values.items()}
+
+
+def _context(ctx: dict[str, Any]) -> dict[str, Any]:
+    return _values(ctx, MAX_CONTEXT_FIELDS)
+
+
+def _features(
+    features: dict[str, dict[str, Any]], first: tuple[str, ...], second: tuple[str, ...]
+) -> dict[str, dict[str, Any]]:
+    """An event's feature maps checked as the model would (each entity one of this
+    match, whose id the batch check has passed), or :class:`_Doubt`."""
+    if len(features) > 2 * MAX_SIDE_SIZE:
+        raise _Doubt
+    out: dict[str, dict[str, Any]] = {}
+    for entity, values in features.items():
+        if entity not in first and entity not in second:
+            raise _Doubt
+        out[entity] = _values(values, MAX_FEATURES_PER_ENTITY)
+    return out
 
 
 def _fast(wires: list[_Wire]) -> tuple[list[MatchEvent], list[float]]:
     """The events of payloads that all passed step 1, or :class:`_Doubt` (step 2, 3)."""
+    if not wires:
+        return [], []
     mids = list(map(_MATCH_ID, wires))
     firsts = list(map(_FIRST, wires))
     seconds = list(map(_SECOND, wires))
     features = list(map(_FEATURES, wires))
-    if any(features):  # unset or empty is falsy
-        raise _Doubt
     ids = "".join(chain(mids, chain.from_iterable(firsts), chain.from_iterable(seconds)))
     if not _graphic_ascii(ids):
         raise _Doubt
@@ -204,18 +228,25 @@ def _fast(wires: list[_Wire]) -> tuple[list[MatchEvent], list[float]]:
         contexts = list(map(_context, contexts))
     # Build the events as pydantic itself would leave them, without a Python call per
     # event: one comprehension, then C-level maps (each dict and set is the event's own).
+    if any(features):  # unset or empty is falsy
+        feature_maps = [
+            _features(f, a, b) if f else {}
+            for f, a, b in zip(features, firsts, seconds, strict=True)
+        ]
+    else:
+        feature_maps = list(map(dict, repeat((), n)))
     dicts = [  # the field order of pydantic's own ``__dict__``
         {
             "first": first,
             "second": second,
             "context": ctx,
-            "features": {},
+            "features": feats,
             "match_id": mid,
             "finished_at": when,
             "score": float(score),
         }
-        for first, second, ctx, mid, when, score in zip(
-            firsts, seconds, contexts, mids, finished, scores, strict=True
+        for first, second, ctx, feats, mid, when, score in zip(
+            firsts, seconds, contexts, feature_maps, mids, finished, scores, strict=True
         )
     ]
     out = list(map(_new, repeat(MatchEvent, n)))
@@ -226,20 +257,24 @@ def _fast(wires: list[_Wire]) -> tuple[list[MatchEvent], list[float]]:
     return out, times
 
 
+def _model(raw: bytes) -> tuple[MatchEvent | EventError, float]:
+    """The model's decision on one payload: its event, or its refusal."""
+    try:
+        ev = parse_event(raw)
+    except EventError as exc:
+        return exc, math.nan
+    return ev, ev.finished_at.timestamp()
+
+
 def _one(raw: bytes) -> tuple[MatchEvent | EventError, float]:
-    """One payload: the fast path, else the model (its event or its refusal)."""
+    """One payload: the fast path, else the model."""
     try:
         if len(raw) > MAX_EVENT_BYTES:
             raise _Doubt
         evs, times = _fast([_decode_wire(raw)])
         return evs[0], times[0]
     except (msgspec.DecodeError, _Doubt):
-        pass
-    try:
-        ev = parse_event(raw)
-    except EventError as exc:
-        return exc, math.nan
-    return ev, ev.finished_at.timestamp()
+        return _model(raw)
 
 
 def decode_events(
@@ -252,10 +287,18 @@ def decode_events(
     try:
         if max(map(len, raws)) > MAX_EVENT_BYTES:
             raise _Doubt
-        evs, times = _fast(list(map(_decode_wire, raws)))
-        return cast(list[MatchEvent | EventError], evs), times
+        wires = list(map(_decode_wire, raws))
     except (msgspec.DecodeError, _Doubt):
-        pass
+        return _each(raws)
+    try:
+        fast, stamps = _fast(wires)
+    except _Doubt:
+        return _each(raws)
+    return cast(list[MatchEvent | EventError], fast), stamps
+
+
+def _each(raws: Sequence[bytes]) -> tuple[list[MatchEvent | EventError], list[float]]:
+    """Payload by payload (a batch in which some payload is doubted)."""
     got = list(map(_one, raws))
     return [ev for ev, _ in got], [t for _, t in got]
 

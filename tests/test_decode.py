@@ -192,6 +192,9 @@ def plain_events(draw: st.DrawFn) -> bytes:
         "score": draw(st.sampled_from([0, 0.5, 1, 1.0])),
         "context": ctx,
     }
+    if draw(st.booleans()):
+        who = draw(st.sampled_from(people))
+        data["features"] = {who: {"training_hours": draw(st.floats(0, 100)), "style": "rush"}}
     return json.dumps(data).encode()
 
 
