@@ -390,7 +390,6 @@ def event_digests(events: Sequence[MatchEvent], times: Sequence[float]) -> list[
     append = out.append
     blake2b = hashlib.blake2b
     join = "\x1f".join
-    cache = _canonical_contexts
     for event, t in zip(events, times, strict=True):
         ctx = event.context
         text = (
@@ -398,15 +397,7 @@ def event_digests(events: Sequence[MatchEvent], times: Sequence[float]) -> list[
             f"\x1e{event.score!r}"
         )
         if ctx:
-            key = tuple(ctx.items())
-            canon = cache.get(key)
-            if canon is None:
-                canon = _canonical_values(ctx)
-                # Categories only: a number never equals a string, so a context
-                # with numbers (where 0.0 and -0.0 would share a key) never hits.
-                if len(cache) < 10_000 and all(type(v) is str for v in ctx.values()):
-                    cache[key] = canon
-            text = f"{text}\x1e{canon}"
+            text = f"{text}\x1e{_canonical_context(ctx)}"
         if event.features:
             feats = "\x1c".join(
                 f"{k}\x1b{_canonical_values(v)}" for k, v in sorted(event.features.items())
@@ -417,6 +408,19 @@ def event_digests(events: Sequence[MatchEvent], times: Sequence[float]) -> list[
 
 
 _canonical_contexts: dict[tuple[tuple[str, Any], ...], str] = {}
+
+
+def _canonical_context(ctx: dict[str, Any]) -> str:
+    """The canonical text of a context; kept for contexts of categories only (a number
+    never equals a string, so a context with numbers, where 0.0 and -0.0 would share
+    a key, never hits)."""
+    key = tuple(ctx.items())
+    canon = _canonical_contexts.get(key)
+    if canon is None:
+        canon = _canonical_values(ctx)
+        if len(_canonical_contexts) < 10_000 and all(type(v) is str for v in ctx.values()):
+            _canonical_contexts[key] = canon
+    return canon
 
 
 def _canonical_values(values: dict[str, Any]) -> str:
