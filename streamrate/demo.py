@@ -85,7 +85,7 @@ def run_demo(
     matches: int = 6000,
     entities: int = 40,
     rate_per_s: float = 1500.0,
-    model: str = "blade_chest",
+    model: str = "recalibrated",
     seed: int = 7,
     out: Callable[[str], None] = print,
 ) -> dict[str, Any]:

@@ -222,7 +222,7 @@ class Recalibrated(Model):
 
     def __init__(
         self,
-        base: str = "elo",
+        base: str = "mixture",
         base_settings: dict[str, Any] | None = None,
         method: Method = "slope_intercept",
         forgetting: float = 0.9995,

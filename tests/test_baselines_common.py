@@ -28,6 +28,7 @@ MODELS: list[tuple[str, dict[str, Any]]] = [
     ("elo", {"first_advantage": 35.0, "compiled": False}),
     ("elo", {"advantage_k": 0.0}),
     ("bayes_strength", {"period_field": "map", "period_pull": 0.2, "period_var": 0.1}),
+    ("bayes_strength", {"newcomer_matches": 2, "shared_noise_per_day": 0.01}),
     (
         "mixture",
         {
