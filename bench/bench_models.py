@@ -1,7 +1,7 @@
 """Speed and memory of the models, on pre-encoded and on pre-parsed events.
 
 Run by hand:  python bench/bench_models.py [--events 1000000] [--entities 100000]
-              [--memory-entities 1000000] [--only encoded|parsed|ratings|memory]
+              [--memory-entities 1000000] [--only encoded|parsed|ratings|memory|default]
 
 Times are CPU seconds of this process (see :func:`timed`).
 
@@ -25,6 +25,10 @@ both.
 ``ratings``: Glicko-2 and TrueSkill, compiled, against the former plain-Python
 models with the former encoder (tests/rating_reference.py), on the same paths
 (``learn_many``, ``learn_batch`` of 100 and 1000), and the update alone.
+
+``default``: the served default model (``SpaceSettings().model``) against
+blade-chest d=16 (stacked context, with and without uncertainty): learn rate in
+chunks of 64 events and microseconds per ``predict``, as ratios.
 
 Memory: bytes per entity at d=16 with ``--memory-entities`` entities (model
 arrays + AdaGrad sums + id map), by tracemalloc; resident memory of a process
@@ -395,6 +399,46 @@ def memory(n_ent: int, dims: int = 16) -> None:
           f" {peak / n_ent:.1f})")  # fmt: skip
 
 
+def speed_default(n: int, n_ent: int, chunk: int = 64) -> None:
+    """The served default (``SpaceSettings().model``) against blade-chest d=16 with
+    stacked context (the example service configuration), on the same pre-parsed
+    events through ``learn_many`` in chunks of ``chunk`` (the apply step's lock
+    slice) and one ``predict`` per pairing (the query path); second pass timed."""
+    from streamrate.config import SpaceSettings
+    from streamrate.events import Matchup
+    from streamrate.models.registry import build_model
+
+    space = SpaceSettings()
+    events = make_events(n, n_ent)
+    queries = [Matchup(first=ev.first, second=ev.second, context=ev.context) for ev in events]
+    queries = queries[: min(len(queries), 20_000)]
+    served = f"served default: {space.model}"
+    makers: list[tuple[str, Callable[[], Model]]] = [
+        ("blade_chest d=16 (context stacked)", lambda: BladeChest(dims=16)),
+        ("blade_chest d=16, uncertainty off", lambda: BladeChest(dims=16, uncertainty=False)),
+        (served, lambda: build_model(space.model, **space.model_settings)),
+    ]
+    rows = []
+    for name, make in makers:
+        m = make()
+        warm_up(m)
+
+        def learn(m: Model = m) -> None:
+            for k in range(0, n, chunk):
+                m.learn_many(events[k : k + chunk])
+
+        learn()  # ids registered, kernels compiled
+        learn_s = timed(learn, repeat=3) / n
+        ask_s = timed(lambda m=m: [m.predict(q) for q in queries], repeat=3) / len(queries)
+        rows.append((name, learn_s, ask_s))
+    print(f"\n{n:,} pre-parsed 1v1 events (map + mode context), learn_many in chunks of {chunk}")
+    print(f"{'model':<44}{'learn ev/s':>12}{'x bc16':>8}{'predict us':>12}{'x bc16':>8}")
+    base_learn, base_ask = rows[0][1], rows[0][2]
+    for name, learn_s, ask_s in rows:
+        print(f"{name:<44}{1 / learn_s:>12,.0f}{base_learn / learn_s:>8.2f}"
+              f"{ask_s * 1e6:>12.1f}{base_ask / ask_s:>8.2f}")  # fmt: skip
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--events", type=int, default=1_000_000)
@@ -402,7 +446,10 @@ def main() -> None:
     ap.add_argument("--slow-events", type=int, default=20_000)
     ap.add_argument("--parsed-events", type=int, default=200_000)
     ap.add_argument("--rating-events", type=int, default=200_000)
-    ap.add_argument("--only", choices=("encoded", "parsed", "ratings", "memory"), default=None)
+    ap.add_argument("--default-events", type=int, default=100_000)
+    ap.add_argument(
+        "--only", choices=("encoded", "parsed", "ratings", "memory", "default"), default=None
+    )
     ap.add_argument("--memory-entities", type=int, default=1_000_000)
     args = ap.parse_args()
     run = {
@@ -410,6 +457,7 @@ def main() -> None:
         "parsed": lambda: speed_events(args.parsed_events, args.entities),
         "ratings": lambda: speed_ratings(args.rating_events, args.entities, args.slow_events),
         "memory": lambda: memory(args.memory_entities),
+        "default": lambda: speed_default(args.default_events, args.entities),
     }
     for name, part in run.items():
         if args.only in (None, name):

@@ -9,17 +9,21 @@ from datetime import UTC, datetime, timedelta
 import numpy as np
 import pytest
 
+from streamrate.config import SpaceSettings
 from streamrate.events import MatchEvent, Matchup
-from streamrate.models.base import ModelState
+from streamrate.models.base import ModelState, warm_up
 from streamrate.models.bayes_strength import (
     PROBIT,
     BayesStrength,
     _strength_loop,
     _strength_loop_compiled,
 )
-from streamrate.models.mixture import Mixture, member_log_loss
-from streamrate.models.registry import model_from_state
+from streamrate.models.mixture import DEFAULT_MEMBERS, Mixture, member_log_loss
+from streamrate.models.registry import build_model, model_from_state
+from streamrate.recalibrate import Recalibrated
+from streamrate.replica import fastpath
 from streamrate.simulate import WorldSpec, simulate
+from streamrate.statefile import state_from_bytes, state_to_bytes
 
 T0 = datetime(2026, 3, 1, tzinfo=UTC)
 
@@ -283,3 +287,29 @@ def test_mixture_weights_are_those_of_the_losses_before_each_event() -> None:
         w /= w.sum()
         assert got.expected_score[i] == pytest.approx(float(w @ np.clip(e[:, i], 1e-9, 1 - 1e-9)))
         cum += losses[:, i]
+
+
+def test_the_served_default_works_through_the_service_paths() -> None:
+    # The default of a model space is the default mixture under a recalibration.
+    space = SpaceSettings()
+    model = build_model(space.model, **space.model_settings)
+    assert isinstance(model, Recalibrated) and isinstance(model.model_, Mixture)
+    assert model.model_.members == [dict(m) for m in DEFAULT_MEMBERS]
+    warm_up(model)  # every path once on a throwaway copy (kernels compiled)
+    world = simulate(WorldSpec(entities=20, matches=900, seasons=3, draw_rate=0.2, seed=36))
+    model.learn_many(world.events[:600])
+    # The checkpoint blob round trip: the same forecasts afterwards, bit for bit,
+    # and the Gaussian members still share one id table (one count per match).
+    state, _ = state_from_bytes(state_to_bytes(model.to_state()))
+    clone = model_from_state(state)
+    assert isinstance(clone, Recalibrated) and isinstance(clone.model_, Mixture)
+    tables = {id(m.entities_) for m in clone.model_.models_ if isinstance(m, BayesStrength)}
+    assert len(tables) == 1
+    rest = world.events[600:]
+    np.testing.assert_array_equal(model.learn_many(rest).p_win, clone.learn_many(rest).p_win)
+    who = world.events[0].first[0]
+    assert clone.seen(who) == model.seen(who) == sum(who in ev.entities() for ev in world.events)
+    # In-process readers take the general path for it: the same numbers as predict.
+    one = fastpath.single(clone)
+    ev = world.events[-1]
+    assert one(ev.first, ev.second, {}) == clone.predict(Matchup(first=ev.first, second=ev.second))

@@ -70,7 +70,7 @@ from typing import Any, ClassVar
 import numpy as np
 from numba import njit
 
-from streamrate.batch import count_matches, encode_events
+from streamrate.batch import EncodedBatch, count_matches, encode_events
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
@@ -272,8 +272,7 @@ class BayesStrength(Model):
             return None
         return str(event.context[self.period_field])
 
-    def _enter_period(self, event: Matchup) -> None:
-        period = self._period_of(event)
+    def _enter_period(self, period: str | None) -> None:
         if period is None:
             return
         if self.period_ is not None and period != self.period_:
@@ -304,21 +303,31 @@ class BayesStrength(Model):
         return self.learn_many([event]).one(0)
 
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
+        return self.learn_encoded(events, encode_events(events, self.entities_))
+
+    def learn_encoded(
+        self, events: Sequence[MatchEvent], batch: EncodedBatch, count: bool = True
+    ) -> Predictions:
+        """The sequential path over ``events`` already encoded against this model's
+        entity table (``batch``); ``count=False`` leaves the match counts alone (a
+        mixture whose members share one table counts once)."""
+        self._fit_capacity()
         out = np.empty(len(events))
+        periods = [self._period_of(ev) for ev in events]
         start = 0
         # Runs of one period go through the loop together; a change of period
         # between two runs pulls and widens first.
         for i in range(1, len(events) + 1):
-            if i < len(events) and self._period_of(events[i]) == self._period_of(events[i - 1]):
+            if i < len(events) and periods[i] == periods[i - 1]:
                 continue
-            self._enter_period(events[start])
-            out[start:i] = self._run(events[start:i])
+            self._enter_period(periods[start])
+            out[start:i] = self._run(batch.take(slice(start, i)))
             start = i
+        if count:
+            count_matches(batch, self.entities_)
         return Predictions(out, np.zeros_like(out))
 
-    def _run(self, events: Sequence[MatchEvent], compiled: bool | None = None) -> np.ndarray:
-        batch = encode_events(events, self.entities_)
-        self._fit_capacity()
+    def _run(self, batch: EncodedBatch, compiled: bool | None = None) -> np.ndarray:
         out = np.empty(len(batch))
         use = self.compiled if compiled is None else compiled
         loop = _strength_loop_compiled if use and len(batch) > 1 else _strength_loop
@@ -342,7 +351,6 @@ class BayesStrength(Model):
             self.clock_,
             self.shared_noise_per_day,
         )
-        count_matches(batch, self.entities_)
         return out
 
     def learn_batch(self, events: Sequence[MatchEvent]) -> Predictions:
@@ -350,8 +358,15 @@ class BayesStrength(Model):
         the mean steps and multiply the variance factors of every event."""
         if not events:
             return Predictions(np.zeros(0), np.zeros(0))
-        self._enter_period(events[0])
-        b = encode_events(events, self.entities_)
+        return self.learn_batch_encoded(events, encode_events(events, self.entities_))
+
+    def learn_batch_encoded(
+        self, events: Sequence[MatchEvent], b: EncodedBatch, count: bool = True
+    ) -> Predictions:
+        """:meth:`learn_batch` on events already encoded (see :meth:`learn_encoded`)."""
+        if not events:
+            return Predictions(np.zeros(0), np.zeros(0))
+        self._enter_period(self._period_of(events[0]))
         self._fit_capacity()
         day = b.time_s / DAY_S
         for i in range(len(b)):  # idle widening, as the sequential loop does it
@@ -397,7 +412,8 @@ class BayesStrength(Model):
                     if self.age_[r] >= nm:
                         self.mu_[r] += self.newcomer_[0]
                         self.var_[r] = min(self.var_[r] + self.newcomer_[1], self.prior_var)
-        count_matches(b, self.entities_)
+        if count:
+            count_matches(b, self.entities_)
         return Predictions(p, np.zeros_like(p))
 
     # -- persistence --------------------------------------------------------------

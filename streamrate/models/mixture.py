@@ -36,6 +36,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
+from streamrate.batch import EncodedBatch, encode_events
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
@@ -102,9 +103,37 @@ class Mixture(Model):
         self.members = specs
         self.eta = float(eta)
         self.models_ = [build_model(s["kind"], **s["settings"]) for s in specs]
+        self._share_ids()
         self.has_draws = any(m.has_draws for m in self.models_)  # type: ignore[misc]
         self.loss_ = np.zeros(len(specs))  # cumulative clipped log loss per member
         self.last_: dict[str, Predictions] = {}
+        self._w: list[float] = []
+        self._w_key = b""
+
+    def _share_ids(self) -> None:
+        """Gaussian-strength members see the same events, so they give every id the
+        same row: they share the first one's table, and the mixture encodes each
+        run of events once for them all (and counts matches once)."""
+        from streamrate.models.bayes_strength import BayesStrength
+
+        group = [m for m in self.models_ if isinstance(m, BayesStrength)]
+        for m in group[1:]:
+            m.entities_ = group[0].entities_
+        self._bayes = group
+
+    def _member_preds(self, events: Sequence[MatchEvent], batch: bool) -> list[Predictions]:
+        shared: EncodedBatch | None = None
+        if len(self._bayes) > 1:
+            shared = encode_events(events, self._bayes[0].entities_)
+        preds = []
+        for m in self.models_:
+            if shared is not None and m in self._bayes:
+                lead = m is self._bayes[0]
+                run = m.learn_batch_encoded if batch else m.learn_encoded  # type: ignore[attr-defined]
+                preds.append(run(events, shared, count=lead))
+            else:
+                preds.append(m.learn_batch(events) if batch else m.learn_many(events))
+        return preds
 
     @property
     def entities_(self) -> EntityTable:  # type: ignore[override]
@@ -127,11 +156,14 @@ class Mixture(Model):
 
     # -- the online API -----------------------------------------------------------
     def predict(self, matchup: Matchup) -> Prediction:
-        w = self.weights()
+        key = self.loss_.tobytes()  # the weights change only when the losses do
+        if self._w_key != key:
+            self._w, self._w_key = [float(x) for x in self.weights()], key
         p_win = p_draw = 0.0
-        for wi, m in zip(w, self.models_, strict=True):
+        for wi, m in zip(self._w, self.models_, strict=True):
             pr = m.predict(matchup)
-            p_win += wi * float(_clip(np.array(pr.expected_score))) - wi * 0.5 * pr.p_draw
+            e = min(max(pr.p_win + 0.5 * pr.p_draw, CLIP), 1.0 - CLIP)
+            p_win += wi * e - wi * 0.5 * pr.p_draw
             p_draw += wi * pr.p_draw
         return Prediction(p_win, p_draw)
 
@@ -144,14 +176,17 @@ class Mixture(Model):
         losses = member_log_loss(e, y)
         if batch:  # every forecast of a mini-batch uses the batch-start weights
             before = np.repeat(self.loss_[:, None], len(events), axis=1)
-        else:  # the weights before event i count the losses of events 0..i-1
-            before = self.loss_[:, None] + np.cumsum(losses, axis=1) - losses
+            after = self.loss_ + losses.sum(axis=1)
+        else:  # the weights before event i count the losses of events 0..i-1, added
+            # one at a time in order (cumsum runs sequentially): as learn in a loop
+            run = np.cumsum(np.concatenate([self.loss_[:, None], losses], axis=1), axis=1)
+            before, after = run[:, :-1], run[:, -1]
         z = -self.eta * (before - before.min(axis=0))
         w = np.exp(z)
         w /= w.sum(axis=0)
         p_win = (w * (e - 0.5 * draw)).sum(axis=0)
         p_draw = (w * draw).sum(axis=0)
-        self.loss_ += losses.sum(axis=1)
+        self.loss_ = after.copy()
         self.last_ = dict(zip(self.labels, preds, strict=True))
         return Predictions(p_win, p_draw)
 
@@ -161,12 +196,12 @@ class Mixture(Model):
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
         if not events:
             return Predictions(np.zeros(0), np.zeros(0))
-        return self._mix([m.learn_many(events) for m in self.models_], events, batch=False)
+        return self._mix(self._member_preds(events, batch=False), events, batch=False)
 
     def learn_batch(self, events: Sequence[MatchEvent]) -> Predictions:
         if not events:
             return Predictions(np.zeros(0), np.zeros(0))
-        return self._mix([m.learn_batch(events) for m in self.models_], events, batch=True)
+        return self._mix(self._member_preds(events, batch=True), events, batch=True)
 
     def component_predictions(self, n: int) -> dict[str, Predictions]:
         out = {}
@@ -199,4 +234,5 @@ class Mixture(Model):
             state = ModelState(spec["kind"], version, m.get_params(), mine)
             models.append(type(m).from_state(state))
         self.models_ = models
+        self._share_ids()
         self.loss_ = loss.copy()
