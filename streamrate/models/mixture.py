@@ -65,7 +65,7 @@ DEFAULT_MEMBERS: tuple[dict[str, Any], ...] = (
 seasons; a season is the context field ``season`` when events carry it) for
 transitive strengths with a drifting first-side edge and a learned newcomer
 offset, and blade-chest vectors for cyclic styles. Chosen on the first 80% of the
-football results (bench/football_events.py) and seed 11 of the seasons world."""
+football results (bench/football_events.py), checked on seed 11 of the seasons world."""
 
 
 def _clip(e: np.ndarray) -> np.ndarray:
