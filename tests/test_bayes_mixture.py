@@ -313,3 +313,25 @@ def test_the_served_default_works_through_the_service_paths() -> None:
     one = fastpath.single(clone)
     ev = world.events[-1]
     assert one(ev.first, ev.second, {}) == clone.predict(Matchup(first=ev.first, second=ev.second))
+
+
+@pytest.mark.parametrize("n", [0, 3])
+def test_predict_of_unknowns_counts_the_newcomer_offset_only_when_it_is_on(n: int) -> None:
+    m = BayesStrength(newcomer_matches=n, newcomer_var=0.4, advantage_var=0.0)
+    m.learn(duel("kelvash", "morvenn", 1.0))
+    mu = float(m.mu_[m.entities_.get("kelvash")])
+    var = m.variance("kelvash")
+    # kelvash (new while n > 0, one match) against an unknown: x_b = 1 - 1 = 0 when on.
+    got = m.predict(Matchup(first=("kelvash",), second=("ghost",))).p_win
+    want = 1 / (1 + math.exp(-mu / math.sqrt(1 + PROBIT * (var + m.prior_var))))
+    assert got == pytest.approx(want, rel=1e-12)
+    # A settled entity (never new when n = 0) against an unknown: x_b = -1 when on.
+    m2 = BayesStrength(newcomer_matches=n, newcomer_var=0.4, advantage_var=0.0)
+    for k in range(4):
+        m2.learn(duel("kelvash", f"rookie{k}", 1.0))
+    mu, var = float(m2.mu_[0]), m2.variance("kelvash")
+    b_mu, b_var = (float(m2.newcomer_[0]), float(m2.newcomer_[1])) if n else (0.0, 0.0)
+    got = m2.predict(Matchup(first=("kelvash",), second=("ghost",))).p_win
+    spread = var + m2.prior_var + b_var
+    want = 1 / (1 + math.exp(-(mu - b_mu) / math.sqrt(1 + PROBIT * spread)))
+    assert got == pytest.approx(want, rel=1e-12)

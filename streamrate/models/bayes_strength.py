@@ -294,7 +294,8 @@ class BayesStrength(Model):
                 r = self.entities_.get(e)
                 m += x * (0.0 if r < 0 else float(self.mu_[r]))
                 big_v += x * x * (self.prior_var if r < 0 else float(self.var_[r]))
-                xb += x if r < 0 or self.age_[r] < self.newcomer_matches else 0.0
+                if self.newcomer_matches and (r < 0 or self.age_[r] < self.newcomer_matches):
+                    xb += x  # an unknown entity would be new
         m += xb * float(self.newcomer_[0])
         big_v += xb * xb * float(self.newcomer_[1])
         return Prediction(1.0 / (1.0 + math.exp(-m / math.sqrt(1.0 + PROBIT * big_v))))

@@ -41,6 +41,7 @@ from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
 from streamrate.models.base import Model, ModelState, Prediction, Predictions
+from streamrate.models.bayes_strength import BayesStrength
 
 CLIP = 1e-9
 
@@ -114,8 +115,6 @@ class Mixture(Model):
         """Gaussian-strength members see the same events, so they give every id the
         same row: they share the first one's table, and the mixture encodes each
         run of events once for them all (and counts matches once)."""
-        from streamrate.models.bayes_strength import BayesStrength
-
         group = [m for m in self.models_ if isinstance(m, BayesStrength)]
         for m in group[1:]:
             m.entities_ = group[0].entities_
@@ -127,9 +126,9 @@ class Mixture(Model):
             shared = encode_events(events, self._bayes[0].entities_)
         preds = []
         for m in self.models_:
-            if shared is not None and m in self._bayes:
+            if shared is not None and isinstance(m, BayesStrength):
                 lead = m is self._bayes[0]
-                run = m.learn_batch_encoded if batch else m.learn_encoded  # type: ignore[attr-defined]
+                run = m.learn_batch_encoded if batch else m.learn_encoded
                 preds.append(run(events, shared, count=lead))
             else:
                 preds.append(m.learn_batch(events) if batch else m.learn_many(events))
