@@ -83,8 +83,9 @@ class Subscriber:
 
     :meth:`get_message` returns data messages only, each a dict with ``type``
     ``"message"``, ``channel`` and ``data``; ``None`` when nothing came within
-    ``timeout`` or what came was not data (a subscribe confirmation). ``connection`` is the subscription's connection (redis-py
-    reconnects it and subscribes again by itself; its connect callbacks see that).
+    ``timeout`` or what came was not data (a subscribe confirmation).
+    ``connection`` is the subscription's connection (redis-py reconnects it and
+    subscribes again by itself; its connect callbacks see that).
     """
 
     def __init__(self, client: Any, *channels: str) -> None:
