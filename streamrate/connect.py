@@ -83,10 +83,11 @@ class LazyCluster:
                 self._client = rcluster.RedisCluster.from_url(self._url, **self._kwargs)
             except rcluster.RedisClusterException as exc:
                 cause = exc.__cause__
-                if isinstance(cause, redis.ConnectionError | redis.TimeoutError):
-                    raise redis.ConnectionError(f"Redis Cluster not reachable: {exc}") from exc
+                # (AuthenticationError is a ConnectionError in redis-py: asked first.)
                 if isinstance(cause, redis.AuthenticationError | redis.ResponseError):
                     raise cause from exc
+                if isinstance(cause, redis.ConnectionError | redis.TimeoutError):
+                    raise redis.ConnectionError(f"Redis Cluster not reachable: {exc}") from exc
                 raise  # e.g. cluster mode is off on that node: no retry fixes it
         return self._client
 

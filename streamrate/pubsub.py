@@ -11,18 +11,19 @@ keys, and one subscription connection per space is enough.
 
 :func:`publish` and :class:`Subscriber` pick the spelling from the client;
 :func:`sharded` says which one a client gets. A subscriber in a cluster reads
-from the node that owns the slot; when the slot moves (resharding, a replica
-promoted) that node ends the subscription and :meth:`Subscriber.get_message`
-raises :class:`redis.ConnectionError`, so the caller subscribes again through
-a fresh client, as after any lost connection.
+from the node that owns the slot. When the slot moves (resharding, a replica
+promoted) that node ends the subscription (``sunsubscribe``), or refuses a new
+one with ``MOVED`` when the client's slot map is old: :class:`Subscriber`
+then reads the slot map again and subscribes on the new owner by itself
+(counted in ``renewals``; messages sent in between are lost, as with any
+reconnect); :class:`AsyncSubscriber` raises :class:`redis.ConnectionError`
+and the caller subscribes again.
 
 >>> import fakeredis
 >>> r = fakeredis.FakeRedis()
 >>> sub = Subscriber(r, "{sr:duel}:live")
 >>> publish(r, "{sr:duel}:live", "hello")
 1
->>> sub.get_message(timeout=1.0) is None  # the subscribe confirmation: skipped
-True
 >>> sub.get_message(timeout=1.0)["data"]
 b'hello'
 >>> sub.close()
@@ -30,6 +31,8 @@ b'hello'
 
 from __future__ import annotations
 
+import collections
+import time
 from typing import Any
 
 import redis
@@ -79,55 +82,112 @@ def one_slot(keyslot: Any, channels: tuple[str, ...]) -> None:
 
 class Subscriber:
     """``SUBSCRIBE`` to ``channels`` (one server) or ``SSUBSCRIBE`` on the node that
-    owns their common slot (cluster). Subscribed when constructed.
+    owns their common slot (cluster). Subscribed when constructed: the
+    constructor returns once the server confirmed every channel (so a request
+    published next cannot overtake the subscription to its reply channel), and
+    raises :class:`redis.TimeoutError` when that takes longer than ``confirm_s``.
 
     :meth:`get_message` returns data messages only, each a dict with ``type``
     ``"message"``, ``channel`` and ``data``; ``None`` when nothing came within
     ``timeout`` or what came was not data (a subscribe confirmation).
     ``connection`` is the subscription's connection (redis-py reconnects it and
-    subscribes again by itself; its connect callbacks see that).
+    subscribes again by itself; its connect callbacks see that). ``renewals``
+    counts the subscriptions renewed on another node after a slot move.
     """
 
-    def __init__(self, client: Any, *channels: str) -> None:
+    def __init__(self, client: Any, *channels: str, confirm_s: float = 5.0) -> None:
         if not channels:
             raise ValueError("a subscriber needs at least one channel")
-        self.channels = channels
+        self.channels = tuple(dict.fromkeys(channels))
+        self.confirm_s = confirm_s
         self.sharded = sharded(client)
+        self.renewals = 0
+        self.where = ""
+        self._early: collections.deque[dict[str, Any]] = collections.deque()
         if self.sharded:
-            cluster = cluster_of(client)
-            one_slot(cluster.keyslot, channels)
-            node = cluster.get_node_from_key(channels[0])
-            node_client = cluster.get_redis_connection(node)
-            self.where = node.name
-            self.pubsub: Any = node_client.pubsub()
-            self.pubsub.ssubscribe(*channels)
+            self.cluster = cluster_of(client)
+            one_slot(self.cluster.keyslot, self.channels)
+            self._subscribe_on_owner()
         else:
-            self.where = ""
-            self.pubsub = client.pubsub()
-            self.pubsub.subscribe(*channels)
+            self.pubsub: Any = client.pubsub()
+            self.pubsub.subscribe(*self.channels)
+            self._confirm("subscribe")
+
+    def _subscribe_on_owner(self) -> None:
+        for attempt in range(3):
+            node = self.cluster.get_node_from_key(self.channels[0])
+            self.where = node.name
+            self.pubsub = self.cluster.get_redis_connection(node).pubsub()
+            self.pubsub.ssubscribe(*self.channels)
+            try:
+                self._confirm("ssubscribe")
+                return
+            except redis.exceptions.MovedError:  # our slot map is older than the move
+                self.pubsub.close()
+                if attempt == 2:
+                    raise
+                self.cluster.nodes_manager.initialize()
+
+    def _confirm(self, kind: str) -> None:
+        """Read one confirmation per channel; data that arrives meanwhile is kept."""
+        left = len(self.channels)
+        deadline = time.monotonic() + self.confirm_s
+        while left:
+            wait = deadline - time.monotonic()
+            if wait <= 0:
+                raise redis.TimeoutError(f"{kind} of {self.channels} not confirmed in time")
+            msg = self.pubsub.get_message(timeout=wait)
+            if msg is None:
+                continue
+            if _kind(msg) == kind:
+                left -= 1
+            elif (data := _data_message(msg, self.where)) is not None:
+                self._early.append(data)
+
+    def _renew(self) -> None:
+        """The slot moved: read the slot map again and subscribe on its owner."""
+        self.pubsub.close()
+        self.cluster.nodes_manager.initialize()
+        self._subscribe_on_owner()
+        self.renewals += 1
 
     @property
     def connection(self) -> Any:
         return self.pubsub.connection
 
     def get_message(self, timeout: float = 0.0) -> dict[str, Any] | None:
-        msg = self.pubsub.get_message(timeout=timeout)
-        return _data_message(msg, self.where)
+        if self._early:
+            return self._early.popleft()
+        try:
+            msg = self.pubsub.get_message(timeout=timeout)
+            return _data_message(msg, self.where)
+        except (redis.exceptions.MovedError, SlotMoved):
+            if not self.sharded:
+                raise
+            self._renew()
+            return None
 
     def close(self) -> None:
         self.pubsub.close()
 
 
+class SlotMoved(redis.ConnectionError):
+    """The node ended a sharded subscription: the channel's slot moved elsewhere."""
+
+
+def _kind(msg: dict[str, Any]) -> str:
+    kind = msg.get("type")
+    return kind.decode() if isinstance(kind, bytes) else str(kind)
+
+
 def _data_message(msg: dict[str, Any] | None, where: str) -> dict[str, Any] | None:
     if msg is None:
         return None
-    kind = msg.get("type")
-    if isinstance(kind, bytes):
-        kind = kind.decode()
+    kind = _kind(msg)
     if kind in _DATA:
         return {"type": "message", "channel": msg["channel"], "data": msg["data"]}
     if kind == "sunsubscribe":  # sent by the node when the slot moved away from it
-        raise redis.ConnectionError(
+        raise SlotMoved(
             f"the shard channel {msg.get('channel')!r} left node {where}; subscribe again"
         )
     return None
@@ -158,6 +218,7 @@ class AsyncSubscriber:
         if sharded(self.client):
             one_slot(self.client.keyslot, self.channels)
             await self.client.initialize()
+            await self.client.nodes_manager.initialize()  # the slot may have moved
             node = self.client.get_node_from_key(self.channels[0])
             self.where = node.name
             self.node = self.node_client(node.host, node.port)
@@ -168,7 +229,10 @@ class AsyncSubscriber:
             await self.pubsub.subscribe(*self.channels)
 
     async def get_message(self, timeout: float = 0.0) -> dict[str, Any] | None:
-        msg = await self.pubsub.get_message(timeout=timeout)
+        try:
+            msg = await self.pubsub.get_message(timeout=timeout)
+        except redis.exceptions.MovedError as exc:
+            raise SlotMoved(f"{self.channels[0]!r} is served elsewhere: {exc}") from exc
         return _data_message(msg, self.where)
 
     async def aclose(self) -> None:

@@ -388,9 +388,9 @@ class Responder:
         client = self.clients()
         pubsub: Subscriber | None = None
         try:
-            # SUBSCRIBE, or SSUBSCRIBE on the node of the space's slot in a cluster.
+            # SUBSCRIBE, or SSUBSCRIBE on the node of the space's slot in a cluster;
+            # returns once the server confirmed it.
             pubsub = Subscriber(client, self.keys.requests)
-            pubsub.get_message(timeout=1.0)  # the subscribe confirmation
             outage.ok()
             self.listening.set()
             self._probe_sent = None
@@ -400,7 +400,10 @@ class Responder:
             while not stop.is_set():
                 self._renewed = False
                 try:
+                    renewals = pubsub.renewals
                     msg = pubsub.get_message(timeout=0.1)
+                    if pubsub.renewals != renewals:  # the slot moved; subscribed again
+                        self._on_reconnect(None)
                 except REDIS_DOWN:
                     if not self._renewed:  # not yet counted by the callback
                         self._on_reconnect(None)
@@ -434,7 +437,8 @@ class Responder:
             "lost",
             logging.WARNING,
             "space %s: the request subscription's connection was closed"
-            " (for example on output-buffer overflow); subscribing again",
+            " (for example on output-buffer overflow) or its cluster slot moved;"
+            " subscribing again",
             self.space.name,
         )
 

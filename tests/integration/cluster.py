@@ -134,6 +134,20 @@ class LocalCluster:
                 return next(n for n in self.nodes if n.port == port)
         raise AssertionError(f"slot {slot} is not served")
 
+    def move_slot(self, slot: int, dst: ClusterNode) -> None:
+        """Move ``slot`` and its keys to master ``dst`` while clients use it
+        (``SETSLOT IMPORTING/MIGRATING``, ``MIGRATE``, ``SETSLOT NODE`` on every master)."""
+        src = self.owner(slot)
+        s, d = self.node_client(src), self.node_client(dst)
+        src_id, dst_id = s.cluster("myid"), d.cluster("myid")
+        d.execute_command("CLUSTER", "SETSLOT", slot, "IMPORTING", src_id)
+        s.execute_command("CLUSTER", "SETSLOT", slot, "MIGRATING", dst_id)
+        auth = ["AUTH2", "admin", self.password("admin")] if self.passwords else []
+        while keys := s.execute_command("CLUSTER", "GETKEYSINSLOT", slot, 100):
+            s.execute_command("MIGRATE", "127.0.0.1", dst.port, "", 0, 5000, *auth, "KEYS", *keys)
+        for node in (dst, src, *[n for n in self.nodes if n not in (src, dst)]):
+            self.node_client(node).execute_command("CLUSTER", "SETSLOT", slot, "NODE", dst_id)
+
     def stop(self) -> None:
         for node in self.nodes:
             node.stop()
