@@ -62,6 +62,33 @@ def cluster_url(url: str) -> str | None:
     return f"{node}{sep}{rest}" if sep and node else None
 
 
+def stream_read_keys(args: tuple[Any, ...]) -> list[Any]:
+    """The keys of an ``XREAD``/``XREADGROUP``: the first half of what follows ``STREAMS``.
+
+    >>> stream_read_keys(("XREADGROUP", "GROUP", "g", "c", "STREAMS", "{sr:a}:events", ">"))
+    ['{sr:a}:events']
+    """
+    words = [a.decode() if isinstance(a, bytes) else str(a) for a in args]
+    at = [w.upper() for w in words].index("STREAMS")
+    rest = list(args[at + 1 :])
+    return rest[: len(rest) // 2]
+
+
+class _Cluster(rcluster.RedisCluster):
+    """redis-py's cluster client, told where the keys of stream reads are.
+
+    redis-py finds the keys of commands whose key positions move (``XREAD``,
+    ``XREADGROUP``) by asking a node (``COMMAND GETKEYS``, twice per read);
+    these two are spelled here instead, saving those round trips on every read
+    of the writer and the replicas.
+    """
+
+    def _get_command_keys(self, *args: Any) -> Any:
+        if str(args[0]).upper() in ("XREAD", "XREADGROUP"):
+            return stream_read_keys(args)
+        return super()._get_command_keys(*args)
+
+
 class LazyCluster:
     """A :class:`~redis.cluster.RedisCluster` made at its first use.
 
@@ -80,7 +107,7 @@ class LazyCluster:
     def connected(self) -> rcluster.RedisCluster:
         if self._client is None:
             try:
-                self._client = rcluster.RedisCluster.from_url(self._url, **self._kwargs)
+                self._client = _Cluster.from_url(self._url, **self._kwargs)
             except rcluster.RedisClusterException as exc:
                 cause = exc.__cause__
                 # (AuthenticationError is a ConnectionError in redis-py: asked first.)
