@@ -48,7 +48,9 @@ _NAME = r"^[A-Za-z0-9_.\-]{1,48}$"
 class RedisSettings(BaseModel):
     """Where Redis is and how to prove who we are.
 
-    ``url`` may be ``redis://``, ``rediss://`` (TLS) or ``unix://``. The password
+    ``url`` may be ``redis://``, ``rediss://`` (TLS) or ``unix://``; a Redis Cluster
+    is ``redis+cluster://`` or ``rediss+cluster://`` and any one node's address
+    (:mod:`streamrate.connect`). The password
     comes from at most one place: the environment variable named by
     ``password_env``, the file ``password_file`` (its trailing newline dropped), or
     the URL (works, but shows in the process list and in shell history).
@@ -81,8 +83,12 @@ class RedisSettings(BaseModel):
 
     @model_validator(mode="after")
     def _url_scheme(self) -> RedisSettings:
-        if self.url is not None and not self.url.startswith(("redis://", "rediss://", "unix://")):
-            raise ValueError("url must start with redis://, rediss:// or unix://")
+        schemes = ("redis://", "rediss://", "unix://", "redis+cluster://", "rediss+cluster://")
+        if self.url is not None and not self.url.startswith(schemes):
+            raise ValueError(
+                "url must start with redis://, rediss://, unix://, redis+cluster:// "
+                "or rediss+cluster://"
+            )
         return self
 
     @model_validator(mode="after")
@@ -106,7 +112,7 @@ class RedisSettings(BaseModel):
         tls = [n for n in files if getattr(self, n) is not None]
         if not self.tls_verify:
             tls.append("tls_verify = false")
-        if tls and self.url is not None and not self.url.startswith("rediss://"):
+        if tls and self.url is not None and not self.url.startswith(("rediss://", "rediss+")):
             raise ValueError(f"{', '.join(tls)} need a rediss:// url (TLS)")
         if (self.tls_cert_file is None) != (self.tls_key_file is None):
             raise ValueError("tls_cert_file and tls_key_file go together")
