@@ -1,7 +1,8 @@
 """Speed and memory of the models, on pre-encoded and on pre-parsed events.
 
 Run by hand:  python bench/bench_models.py [--events 1000000] [--entities 100000]
-              [--memory-entities 1000000] [--only encoded|parsed|ratings|memory|default]
+              [--memory-entities 1000000]
+              [--only encoded|parsed|ratings|memory|default|default-service]
 
 Times are CPU seconds of this process (see :func:`timed`).
 
@@ -29,6 +30,8 @@ models with the former encoder (tests/rating_reference.py), on the same paths
 ``default``: the served default model (``SpaceSettings().model``) against
 blade-chest d=16 (stacked context, with and without uncertainty): learn rate in
 chunks of 64 events and microseconds per ``predict``, as ratios.
+``default-service``: the same two through the real consumer against a
+redis-server it starts (needs ``redis-server``), next to an empty consumer.
 
 Memory: bytes per entity at d=16 with ``--memory-entities`` entities (model
 arrays + AdaGrad sums + id map), by tracemalloc; resident memory of a process
@@ -439,6 +442,75 @@ def speed_default(n: int, n_ent: int, chunk: int = 64) -> None:
               f"{ask_s * 1e6:>12.1f}{base_ask / ask_s:>8.2f}")  # fmt: skip
 
 
+def speed_default_service(n: int, n_ent: int) -> None:
+    """The consumer (validation, update, checkpoints, acks) with the served default
+    against the same with blade-chest d=16, and both against an empty consumer that
+    only reads and acks, over one pre-filled stream of a real redis-server (started
+    here by :mod:`bench_service`'s helpers, stopped by its PID); medians of three."""
+    import os
+    import signal
+    import tempfile
+
+    import redis
+    from prometheus_client import CollectorRegistry
+
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    import bench_service as bs
+
+    from streamrate.checkpoint import FileCheckpointStore
+    from streamrate.config import Settings, SpaceSettings
+    from streamrate.consumer import Consumer
+    from streamrate.metrics import ServiceMetrics
+    from streamrate.models.registry import build_model
+
+    served = SpaceSettings()
+
+    def consume(r: Any, group: str, batch: int, ckpt: str, model: str, st: dict[str, Any]) -> float:
+        space = SpaceSettings(name="duel", model=model, model_settings=st, group=group,
+                              batch_count=batch, block_ms=1, checkpoint_every_events=10_000,
+                              checkpoint_every_s=5.0)  # fmt: skip
+        keys = Settings(spaces=(space,)).keys(space)
+        metrics = ServiceMetrics(CollectorRegistry(), ["duel"])
+        c = Consumer(r, space, keys, FileCheckpointStore(ckpt, group), metrics,
+                     lambda: build_model(model, **st))  # fmt: skip
+        c.recover()
+        t0 = time.perf_counter()
+        while True:
+            reading_new = c.cursor == ">"
+            if c.step() == 0 and reading_new:
+                break
+        c.checkpoint()
+        return c.live.applied / (time.perf_counter() - t0)
+
+    setups = [("blade_chest", {"dims": 16}), (served.model, dict(served.model_settings))]
+    with tempfile.TemporaryDirectory() as d:
+        proc, port = bs.start_redis(Path(d))
+        try:
+            r = redis.Redis(port=port)
+            bs.fill(r, bs.event_lines(n, n_ent, 0))
+            for k, (model, st) in enumerate(setups):
+                consume(r, f"warm{k}", 1000, d, model, st)  # kernels, page cache
+            print(f"\n{n:,} events in a redis stream; consumer rates, medians of 3 runs")
+            for batch in (100, 1000):
+                rows = []
+                for rep in range(3):
+                    empty = bs.empty_consumer(r, f"e{batch}-{rep}", batch)
+                    got = [consume(r, f"{k}-{batch}-{rep}", batch, d, model, st)
+                           for k, (model, st) in enumerate(setups)]  # fmt: skip
+                    rows.append([empty, *got])
+                a = np.array(rows)
+                med = np.median(a, axis=0)
+                of_empty = np.median(a[:, 1:] / a[:, :1], axis=0)
+                ratio = ", ".join(f"{x:.2f}" for x in a[:, 2] / a[:, 1])
+                print(f"batch {batch:4d}: empty {med[0]:,.0f} ev/s; blade_chest d=16 "
+                      f"{med[1]:,.0f} ({of_empty[0]:.3f} of empty); {served.model} "
+                      f"{med[2]:,.0f} ({of_empty[1]:.3f} of empty); default / blade-chest "
+                      f"per run: {ratio}")  # fmt: skip
+        finally:
+            os.kill(proc.pid, signal.SIGKILL)
+            proc.wait()
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--events", type=int, default=1_000_000)
@@ -448,7 +520,9 @@ def main() -> None:
     ap.add_argument("--rating-events", type=int, default=200_000)
     ap.add_argument("--default-events", type=int, default=100_000)
     ap.add_argument(
-        "--only", choices=("encoded", "parsed", "ratings", "memory", "default"), default=None
+        "--only",
+        choices=("encoded", "parsed", "ratings", "memory", "default", "default-service"),
+        default=None,
     )
     ap.add_argument("--memory-entities", type=int, default=1_000_000)
     args = ap.parse_args()
@@ -458,6 +532,7 @@ def main() -> None:
         "ratings": lambda: speed_ratings(args.rating_events, args.entities, args.slow_events),
         "memory": lambda: memory(args.memory_entities),
         "default": lambda: speed_default(args.default_events, args.entities),
+        "default-service": lambda: speed_default_service(args.default_events, 5_000),
     }
     for name, part in run.items():
         if args.only in (None, name):
