@@ -335,3 +335,25 @@ def test_predict_of_unknowns_counts_the_newcomer_offset_only_when_it_is_on(n: in
     spread = var + m2.prior_var + b_var
     want = 1 / (1 + math.exp(-(mu - b_mu) / math.sqrt(1 + PROBIT * spread)))
     assert got == pytest.approx(want, rel=1e-12)
+
+
+def test_the_default_mixture_keeps_its_bound_over_its_members() -> None:
+    # The same bound ('Prediction, Learning, and Games', 2006, chapter 3) for the
+    # default members, whose Gaussian ones share one id table and one encoding.
+    world = simulate(WorldSpec(entities=24, matches=2400, seasons=4, draw_rate=0.25,
+                               first_edge=0.35, turnover=0.15, seed=37))  # fmt: skip
+    mix = Mixture()
+    y = world.scores
+    mixed, members = [], []
+    for start in range(0, len(y), 64):
+        evs = world.events[start : start + 64]
+        mixed.append(mix.learn_many(evs).expected_score)
+        comp = mix.component_predictions(len(evs))
+        members.append(np.array([comp[f"mixture.{lb}"].expected_score for lb in mix.labels]))
+    member_e = np.concatenate(members, axis=1)
+    mix_cum = np.cumsum(member_log_loss(np.concatenate(mixed), y))
+    best_cum = np.min(np.cumsum(member_log_loss(member_e, y[None, :]), axis=1), axis=0)
+    assert np.all(mix_cum <= best_cum + mix.bound_nats + 1e-9)
+    # Each Gaussian member is what it would be on its own (sharing changes nothing).
+    alone = BayesStrength(**DEFAULT_MEMBERS[1]["settings"])
+    np.testing.assert_array_equal(alone.learn_many(world.events).p_win, member_e[1])
