@@ -198,12 +198,12 @@ class ServiceMetrics:
             registry=r,
         )
         self.pool_members = Gauge(
-            "streamrate_pool_members",
+            "streamrate_pool_member_entries",
             "Members of this process's pool alive at its last heartbeat (serve --role shared).",
             registry=r,
         )
         self.pool_spaces = Gauge(
-            "streamrate_pool_spaces_held",
+            "streamrate_pool_held_space_entries",
             "Spaces this pool member writes now (serve --role shared).",
             registry=r,
         )

@@ -59,7 +59,7 @@ from streamrate.serve.queries import MAX_WATCH
 from streamrate.serve.responder import Responder
 from streamrate.stream.apply import Observer
 from streamrate.stream.lease import Lease, holder_id
-from streamrate.stream.writer import Writer
+from streamrate.stream.writer import Followed, Writer
 from streamrate.watch.quality_metrics import QualityMetrics, QualityObserver, quality_observers
 
 log = logging.getLogger("streamrate.service")
@@ -209,6 +209,8 @@ class SpaceService:
             lease=self.lease,
         )
         self.ready = threading.Event()  # the consumer has recovered and is reading
+        # A standby's replica to start from instead of the checkpoint (Standby sets it).
+        self.handoff: Followed | None = None
         # Set when the space cannot start (checkpoint refused) or lost its lease.
         self.fatal: ServiceError | None = None
         self.q = settings.queries
@@ -269,7 +271,11 @@ class SpaceService:
         while not stop.is_set():
             try:
                 if must_recover:
-                    c.recover(stop)
+                    handoff, self.handoff = self.handoff, None  # once: later, the checkpoint
+                    if handoff is not None:
+                        c.adopt(handoff, stop)
+                    else:
+                        c.recover(stop)
                     must_recover = False
                     if not errors.streak:  # after errors: ready once a turn goes well
                         c.mark("ready", "applying events")
@@ -368,11 +374,16 @@ class Standby:
     """A replica of one space that becomes its writer when the writer lease is free.
 
     Until then it follows the applied log and answers the request stream
-    (:class:`ReplicaSpace`); it looks at the lease every ``lease.poll_every_ms``.
-    Once the lease is free it stops the replica and starts a writer
-    (:class:`SpaceService`, role ``both``), which takes the lease and continues
-    the stream after the newest checkpoint, claiming what the old writer left
-    pending.
+    (:class:`ReplicaSpace`), keeping beside the model what the writer keeps (the
+    retry record, the counters, the observers); it looks at the lease every
+    ``lease.poll_every_ms``. Once the lease is free it stops the replica, takes
+    the lease, applies what is left in the applied log (nothing can be added to
+    it any more: its writes are fenced by the lease) and becomes the space's
+    writer (:class:`SpaceService`, role ``both``) from its own model, without
+    loading the checkpoint (:meth:`Writer.adopt`); it then continues the stream
+    after its last applied event, its own pending entries first. When the
+    replica cannot hand over (it knows too little: nothing applied yet, or a
+    writer of an older version) the writer starts from the checkpoint instead.
     """
 
     def __init__(
@@ -383,9 +394,12 @@ class Standby:
         metrics: ServiceMetrics,
         replica_metrics: ReplicaMetrics,
         make_writer: Callable[[], SpaceService],
+        observers: Sequence[Observer] = (),
     ) -> None:
         self.settings, self.space, self.clients = settings, space, clients
-        self.replica = ReplicaSpace(settings, space, clients, metrics, replica_metrics)
+        self.replica = ReplicaSpace(
+            settings, space, clients, metrics, replica_metrics, observers, writer_state=True
+        )
         self.make_writer = make_writer
         self.writer: SpaceService | None = None
         keys = settings.keys(space)
@@ -412,11 +426,36 @@ class Standby:
             "space %s: the writer lease is free; this standby becomes the writer", self.space.name
         )
         self.writer = self.make_writer()
+        self.writer.handoff = self._handoff(self.writer)
         own = self.writer.threads(stop)
         for t in own:
             t.start()
         for t in own:
             t.join()
+
+    def _handoff(self, writer: SpaceService) -> Followed | None:
+        """Take the lease and bring the replica to the end of the applied log; what
+        it followed, or None (then the writer loads the checkpoint)."""
+        follower = self.replica.follower
+        try:
+            if not writer.lease.take():
+                return None  # another standby was quicker: wait for the lease as a writer
+            follower.drain(writer.lease.ensure)
+        except Exception as exc:  # any doubt: the checkpoint path is always right
+            log.warning(
+                "space %s: the replica cannot hand over (%s: %s); loading the checkpoint",
+                self.space.name,
+                type(exc).__name__,
+                exc,
+            )
+            return None
+        got = follower.followed()
+        if got is None:
+            log.info(
+                "space %s: the replica knows too little to hand over; loading the checkpoint",
+                self.space.name,
+            )
+        return got
 
 
 def _live_recalibrators(consumer: Writer) -> dict[str, OnlineRecalibrator]:
@@ -451,17 +490,14 @@ class Service:
         if role == "standby":
             rm = ReplicaMetrics(self.registry, [s.name for s in settings.spaces])
             self.quality = QualityMetrics(self.registry)
-            self.standbys = [
-                Standby(
-                    settings,
-                    s,
-                    clients,
-                    self.metrics,
-                    rm,
-                    partial(self._space_service, clients, observers, clock, s, "both"),
-                )
-                for s in settings.spaces
-            ]
+            for s in settings.spaces:
+                # The replica feeds the same observers the writer goes on with.
+                obs: list[Observer] = [
+                    *observers,
+                    *quality_observers(s.name, s.quality, self.quality),
+                ]
+                make = partial(self._space_service, clients, obs, clock, s, "both", own=True)
+                self.standbys.append(Standby(settings, s, clients, self.metrics, rm, make, obs))
             return
         if role == "responder":
             rm = ReplicaMetrics(self.registry, [s.name for s in settings.spaces])
@@ -482,13 +518,18 @@ class Service:
         space: SpaceSettings,
         role: Role,
         holder: str | None = None,
+        own: bool = False,
     ) -> SpaceService:
+        """The writer of a space (``own``: ``observers`` are the space's own already,
+        the quality observers among them)."""
+        if not own:
+            observers = [*observers, *quality_observers(space.name, space.quality, self.quality)]
         sp = SpaceService(
             self.settings,
             space,
             clients,
             self.metrics,
-            [*observers, *quality_observers(space.name, space.quality, self.quality)],
+            observers,
             clock=clock,
             role=role,
             holder=holder,
