@@ -113,9 +113,12 @@ def space_settings(name: str, batch: int = 500) -> SpaceSettings:
 
 
 # -- lease: the writer's loop with and without the lease ---------------------------------
-def writer_rate(r: redis.Redis, name: str, lines: list[str], fenced: bool) -> tuple[float, float]:
-    """Events/s of the writer's loop, and the server's time in EVAL (the lease's
-    scripts) per event in microseconds."""
+def writer_rate(r: redis.Redis, name: str, lines: list[str], fenced: bool) -> dict[str, float]:
+    """The writer's loop over ``lines``: events/s (wall clock), this process's CPU
+    time per event (the loop and its checkpoint thread) and the server's time per
+    event (every command, from ``INFO commandstats``; ``eval_us``: the lease's
+    scripts alone), in microseconds. CPU times are less disturbed by other
+    processes on a shared machine than the wall clock."""
     space = space_settings(name)
     keys = Settings(spaces=(space,)).keys(space)
     fill(r, keys.events, lines)
@@ -127,37 +130,48 @@ def writer_rate(r: redis.Redis, name: str, lines: list[str], fenced: bool) -> tu
     )  # fmt: skip
     w.recover()
     r.config_resetstat()
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     while True:
         reading_new = w.cursor == ">"
         if w.step() == 0 and reading_new:
             break
     w.checkpoint()
-    dt = time.perf_counter() - t0
+    dt, cpu = time.perf_counter() - t0, time.process_time() - c0
     assert w.live.applied == len(lines), (w.live.applied, len(lines))
-    evals = r.info("commandstats").get("cmdstat_eval", {}).get("usec", 0)
-    return len(lines) / dt, evals / len(lines)
+    stats = r.info("commandstats")
+    server = sum(v["usec"] for k, v in stats.items() if not k.startswith("cmdstat_info"))
+    n = len(lines)
+    return {
+        "rate": n / dt,
+        "cpu_us": cpu * 1e6 / n,
+        "server_us": server / n,
+        "eval_us": stats.get("cmdstat_eval", {}).get("usec", 0) / n,
+    }
 
 
 def bench_lease(r: redis.Redis, events: int, repeat: int) -> None:
     lines = event_lines(events, 2000, seed=11)
     writer_rate(r, "warm", lines[:1000], True)  # compile the kernels first
-    with_, without, server = [], [], []
+    runs: dict[bool, list[dict[str, float]]] = {True: [], False: []}
     for k in range(repeat):
         order = (True, False) if k % 2 == 0 else (False, True)
         for fenced in order:
-            rate, eval_us = writer_rate(r, f"lease{k}{int(fenced)}", lines, fenced)
-            (with_ if fenced else without).append(rate)
-            if fenced:
-                server.append(eval_us)
+            runs[fenced].append(writer_rate(r, f"lease{k}{int(fenced)}", lines, fenced))
     print(f"\nlease checks per event ({events} events, blade_chest d=8, {repeat} runs each)")
-    print(f"  without the lease: {_range(without)} events/s")
-    print(f"  with the lease:    {_range(with_)} events/s")
-    ratios = [a / b for a, b in zip(with_, without, strict=True)]
-    extra = [(1 / a - 1 / b) * 1e6 for a, b in zip(with_, without, strict=True)]
-    print(f"  ratio with/without: {_range(ratios, '.3f')}")
-    print(f"  extra per event: {_range(extra, '.2f')} us (wall clock, client)")
-    print(f"  server time in the lease's scripts per event: {_range(server, '.2f')} us")
+    for fenced, label in ((False, "without the lease"), (True, "with the lease   ")):
+        got = runs[fenced]
+        print(
+            f"  {label}: {_range([g['rate'] for g in got])} events/s; client CPU "
+            f"{_range([g['cpu_us'] for g in got], '.1f')} us, server "
+            f"{_range([g['server_us'] for g in got], '.1f')} us per event"
+        )
+    pairs = list(zip(runs[True], runs[False], strict=True))
+    cost = [(a["cpu_us"] + a["server_us"]) - (b["cpu_us"] + b["server_us"]) for a, b in pairs]
+    ratio = [(a["cpu_us"] + a["server_us"]) / (b["cpu_us"] + b["server_us"]) for a, b in pairs]
+    print(f"  lease's scripts on the server: {_range([a['eval_us'] for a, _ in pairs], '.2f')} us")
+    print(f"  cost per event, with - without (client CPU + server): {_range(cost, '.1f')} us")
+    print(f"  ratio with / without (client CPU + server per event): {_range(ratio, '.3f')}")
+    print(f"  wall-clock rate ratio: {_range([a['rate'] / b['rate'] for a, b in pairs], '.2f')}")
 
 
 # -- processes ------------------------------------------------------------------------------
