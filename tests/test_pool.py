@@ -4,11 +4,13 @@ from __future__ import annotations
 
 import threading
 import time
+from collections.abc import Callable
 
 import fakeredis
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from streamrate.errors import CheckpointRefusedError, LeaseLostError
 from streamrate.pool import Membership, PoolMember, fair_share, home, plan
 
 
@@ -162,3 +164,67 @@ def test_a_member_gives_back_what_is_above_its_share_when_another_joins() -> Non
     for m in (a, b):
         for run in m.running.values():
             run.stop.set()
+
+
+class _EndingSpace(_FakeSpace):
+    """A space whose writer ends by itself with ``fatal`` (lease lost, checkpoint refused)."""
+
+    def __init__(self, name: str, leases: dict[str, str], me: str, fatal: Exception) -> None:
+        super().__init__(name, leases, me)
+        self.fatal_to_be = fatal
+
+    def threads(self, stop: threading.Event) -> list[threading.Thread]:
+        def run() -> None:
+            self.fatal = self.fatal_to_be  # type: ignore[assignment]
+            stop.set()
+
+        return [threading.Thread(target=run, daemon=True)]
+
+
+def _lone_member(make: Callable[[str], _FakeSpace], leases: dict[str, str]) -> PoolMember:
+    def take(sp: _FakeSpace) -> bool:
+        return leases.setdefault(sp.name, "a") == "a"
+
+    return PoolMember(
+        Membership(fakeredis.FakeRedis(server=fakeredis.FakeServer()), "{sr}:pool:x", "a", 10_000),
+        ["s0"],
+        make,
+        take,  # type: ignore[arg-type]
+        leases.get,
+        10,
+    )
+
+
+def test_a_space_whose_lease_was_lost_is_dropped_and_taken_again_once_free() -> None:
+    leases: dict[str, str] = {}
+    made: list[_FakeSpace] = []
+
+    def make(name: str) -> _FakeSpace:
+        sp: _FakeSpace = (
+            _EndingSpace(name, leases, "a", LeaseLostError("lost")) if not made
+            else _FakeSpace(name, leases, "a")
+        )  # fmt: skip
+        made.append(sp)
+        return sp
+
+    m = _lone_member(make, leases)
+    stop = threading.Event()
+    m.turn(stop)
+    for t in m.running["s0"].threads:
+        t.join(5)
+    leases.clear()  # the lease lapsed (or another writer's lapsed)
+    m.turn(stop)  # reaps the lost one, takes the space again
+    assert m.fatal is None and m.held == ["s0"] and len(made) == 2
+    m.running["s0"].stop.set()
+
+
+def test_a_refused_checkpoint_stops_the_member() -> None:
+    leases: dict[str, str] = {}
+    refused = CheckpointRefusedError("other settings")
+    m = _lone_member(lambda name: _EndingSpace(name, leases, "a", refused), leases)
+    stop = threading.Event()
+    runner = threading.Thread(target=m.run, args=(stop,), daemon=True)
+    runner.start()
+    runner.join(10)
+    assert not runner.is_alive()
+    assert m.fatal is refused and stop.is_set()  # the service then exits with code 2
