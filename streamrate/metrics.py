@@ -33,6 +33,9 @@ QUERY_SHED_REASONS = ("queue_full", "client_queue_full", "expensive", "too_old")
 QUERY_FAILED_STAGES = ("answer", "publish")
 QUERY_LOOPS = ("subscriber", "answerer")
 QUERY_RESUBSCRIBE_REASONS = ("connection_lost", "backlog")
+WRITER_STARTS = ("checkpoint", "replica")
+"""How a writer started: from the stored checkpoint, or from the replica a
+standby kept current (no reload)."""
 CONSUMER_STATES = ("loading", "ready", "stalled")
 """``loading``: the checkpoint is not loaded yet; ``ready``: applying events and
 answering; ``stalled``: the consumer cannot apply events (loop errors, Redis
@@ -187,7 +190,26 @@ class ServiceMetrics:
             ["space"],
             registry=r,
         )
+        self.writer_starts = Counter(
+            "streamrate_writer_starts_total",
+            "Times this process became the writer of a space, by what it started from "
+            "(the checkpoint, or a standby's own replica without a reload).",
+            ["space", "source"],
+            registry=r,
+        )
+        self.pool_members = Gauge(
+            "streamrate_pool_member_entries",
+            "Members of this process's pool alive at its last heartbeat (serve --role shared).",
+            registry=r,
+        )
+        self.pool_spaces = Gauge(
+            "streamrate_pool_held_space_entries",
+            "Spaces this pool member writes now (serve --role shared).",
+            registry=r,
+        )
         for s in spaces:
+            for source in WRITER_STARTS:
+                self.writer_starts.labels(space=s, source=source)
             for reason in QUERY_SHED_REASONS:
                 self.query_shed.labels(space=s, reason=reason)
             for stage in QUERY_FAILED_STAGES:

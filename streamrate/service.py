@@ -8,7 +8,9 @@ process as before) does that and also answers from the request stream;
 follows the writer's applied log and answers from the request stream;
 ``standby`` runs the same replica and, when the space's writer lease is free
 (the writer died or was paused past ``lease.lease_ms``), stops it and becomes
-the space's writer (as ``both``).
+the space's writer (as ``both``); ``shared`` is a member of a pool of processes
+that share the spaces (:mod:`streamrate.pool`): it writes (as ``both``) its fair
+share of them, taking free ones and giving back what is above its share.
 
 A writer holds the space's lease (:mod:`streamrate.stream.lease`) while it runs:
 it waits at start while another holds it, renews it on its own thread, gives it
@@ -48,6 +50,7 @@ from streamrate.errors import CheckpointRefusedError, LeaseLostError, ServiceErr
 from streamrate.metrics import ReplicaMetrics, ServiceMetrics, serve_metrics
 from streamrate.models.base import Model
 from streamrate.models.registry import build_model
+from streamrate.pool import Membership, PoolMember
 from streamrate.recalibrate import OnlineRecalibrator, recalibrators_of
 from streamrate.replica.request_stream import StreamResponder
 from streamrate.replica.space import ReplicaSpace
@@ -55,16 +58,16 @@ from streamrate.serve.livefeed import WatchRegistry
 from streamrate.serve.queries import MAX_WATCH
 from streamrate.serve.responder import Responder
 from streamrate.stream.apply import Observer
-from streamrate.stream.lease import Lease
-from streamrate.stream.writer import Writer
+from streamrate.stream.lease import Lease, holder_id
+from streamrate.stream.writer import Followed, Writer
 from streamrate.watch.quality_metrics import QualityMetrics, QualityObserver, quality_observers
 
 log = logging.getLogger("streamrate.service")
 REDIS_DOWN = (redis.ConnectionError, redis.TimeoutError)
 QUERY_SWITCH_INTERVAL_S = 0.0002
 ClientFactory = Callable[[], Any]
-Role = Literal["writer", "responder", "both", "standby"]
-ROLES: tuple[Role, ...] = ("writer", "responder", "both", "standby")
+Role = Literal["writer", "responder", "both", "standby", "shared"]
+ROLES: tuple[Role, ...] = ("writer", "responder", "both", "standby", "shared")
 
 
 def redis_factory(settings: RedisSettings) -> ClientFactory:
@@ -174,6 +177,7 @@ class SpaceService:
         model_builder: Callable[[], Model] | None = None,
         clock: Callable[[], float] = time.monotonic,
         role: Role = "both",
+        holder: str | None = None,
     ) -> None:
         self.settings, self.space, self.clients, self.metrics = settings, space, clients, metrics
         self.role = role
@@ -181,7 +185,9 @@ class SpaceService:
         self.watch = WatchRegistry(MAX_WATCH, settings.queries.max_watchers)
         client = clients()
         # One writer per space: every write below is fenced by this lease.
-        self.lease = Lease(client, self.keys.lease, self.keys.epoch, settings.lease, clock=clock)
+        self.lease = Lease(
+            client, self.keys.lease, self.keys.epoch, settings.lease, holder, clock=clock
+        )
         store: CheckpointStore
         if settings.checkpoint.store == "redis":
             store = RedisCheckpointStore(client, self.keys.ckpt, self.lease)
@@ -203,6 +209,8 @@ class SpaceService:
             lease=self.lease,
         )
         self.ready = threading.Event()  # the consumer has recovered and is reading
+        # A standby's replica to start from instead of the checkpoint (Standby sets it).
+        self.handoff: Followed | None = None
         # Set when the space cannot start (checkpoint refused) or lost its lease.
         self.fatal: ServiceError | None = None
         self.q = settings.queries
@@ -263,7 +271,11 @@ class SpaceService:
         while not stop.is_set():
             try:
                 if must_recover:
-                    c.recover(stop)
+                    handoff, self.handoff = self.handoff, None  # once: later, the checkpoint
+                    if handoff is not None:
+                        c.adopt(handoff, stop)
+                    else:
+                        c.recover(stop)
                     must_recover = False
                     if not errors.streak:  # after errors: ready once a turn goes well
                         c.mark("ready", "applying events")
@@ -362,11 +374,16 @@ class Standby:
     """A replica of one space that becomes its writer when the writer lease is free.
 
     Until then it follows the applied log and answers the request stream
-    (:class:`ReplicaSpace`); it looks at the lease every ``lease.poll_every_ms``.
-    Once the lease is free it stops the replica and starts a writer
-    (:class:`SpaceService`, role ``both``), which takes the lease and continues
-    the stream after the newest checkpoint, claiming what the old writer left
-    pending.
+    (:class:`ReplicaSpace`), keeping beside the model what the writer keeps (the
+    retry record, the counters, the observers); it looks at the lease every
+    ``lease.poll_every_ms``. Once the lease is free it stops the replica, takes
+    the lease, applies what is left in the applied log (nothing can be added to
+    it any more: its writes are fenced by the lease) and becomes the space's
+    writer (:class:`SpaceService`, role ``both``) from its own model, without
+    loading the checkpoint (:meth:`Writer.adopt`); it then continues the stream
+    after its last applied event, its own pending entries first. When the
+    replica cannot hand over (it knows too little: nothing applied yet, or a
+    writer of an older version) the writer starts from the checkpoint instead.
     """
 
     def __init__(
@@ -377,9 +394,12 @@ class Standby:
         metrics: ServiceMetrics,
         replica_metrics: ReplicaMetrics,
         make_writer: Callable[[], SpaceService],
+        observers: Sequence[Observer] = (),
     ) -> None:
         self.settings, self.space, self.clients = settings, space, clients
-        self.replica = ReplicaSpace(settings, space, clients, metrics, replica_metrics)
+        self.replica = ReplicaSpace(
+            settings, space, clients, metrics, replica_metrics, observers, writer_state=True
+        )
         self.make_writer = make_writer
         self.writer: SpaceService | None = None
         keys = settings.keys(space)
@@ -406,11 +426,36 @@ class Standby:
             "space %s: the writer lease is free; this standby becomes the writer", self.space.name
         )
         self.writer = self.make_writer()
+        self.writer.handoff = self._handoff(self.writer)
         own = self.writer.threads(stop)
         for t in own:
             t.start()
         for t in own:
             t.join()
+
+    def _handoff(self, writer: SpaceService) -> Followed | None:
+        """Take the lease and bring the replica to the end of the applied log; what
+        it followed, or None (then the writer loads the checkpoint)."""
+        follower = self.replica.follower
+        try:
+            if not writer.lease.take():
+                return None  # another standby was quicker: wait for the lease as a writer
+            follower.drain(writer.lease.ensure)
+        except Exception as exc:  # any doubt: the checkpoint path is always right
+            log.warning(
+                "space %s: the replica cannot hand over (%s: %s); loading the checkpoint",
+                self.space.name,
+                type(exc).__name__,
+                exc,
+            )
+            return None
+        got = follower.followed()
+        if got is None:
+            log.info(
+                "space %s: the replica knows too little to hand over; loading the checkpoint",
+                self.space.name,
+            )
+        return got
 
 
 def _live_recalibrators(consumer: Writer) -> dict[str, OnlineRecalibrator]:
@@ -436,21 +481,23 @@ class Service:
         self.replicas: list[ReplicaSpace] = []
         self.spaces: list[SpaceService] = []
         self.standbys: list[Standby] = []
+        self.pool: PoolMember | None = None
         self.threads: list[threading.Thread] = []
+        if role == "shared":
+            self.quality = QualityMetrics(self.registry)
+            self.pool = self._pool_member(clients, observers, clock)
+            return
         if role == "standby":
             rm = ReplicaMetrics(self.registry, [s.name for s in settings.spaces])
             self.quality = QualityMetrics(self.registry)
-            self.standbys = [
-                Standby(
-                    settings,
-                    s,
-                    clients,
-                    self.metrics,
-                    rm,
-                    partial(self._space_service, clients, observers, clock, s, "both"),
-                )
-                for s in settings.spaces
-            ]
+            for s in settings.spaces:
+                # The replica feeds the same observers the writer goes on with.
+                obs: list[Observer] = [
+                    *observers,
+                    *quality_observers(s.name, s.quality, self.quality),
+                ]
+                make = partial(self._space_service, clients, obs, clock, s, "both", own=True)
+                self.standbys.append(Standby(settings, s, clients, self.metrics, rm, make, obs))
             return
         if role == "responder":
             rm = ReplicaMetrics(self.registry, [s.name for s in settings.spaces])
@@ -470,20 +517,60 @@ class Service:
         clock: Callable[[], float],
         space: SpaceSettings,
         role: Role,
+        holder: str | None = None,
+        own: bool = False,
     ) -> SpaceService:
+        """The writer of a space (``own``: ``observers`` are the space's own already,
+        the quality observers among them)."""
+        if not own:
+            observers = [*observers, *quality_observers(space.name, space.quality, self.quality)]
         sp = SpaceService(
             self.settings,
             space,
             clients,
             self.metrics,
-            [*observers, *quality_observers(space.name, space.quality, self.quality)],
+            observers,
             clock=clock,
             role=role,
+            holder=holder,
         )
         for obs in sp.consumer.observers:  # the recalibration gauges follow the live model
             if isinstance(obs, QualityObserver):
                 obs.recalibrators = partial(_live_recalibrators, sp.consumer)
         return sp
+
+    def _pool_member(
+        self, clients: ClientFactory, observers: Sequence[Observer], clock: Callable[[], float]
+    ) -> PoolMember:
+        by_name = {s.name: s for s in self.settings.spaces}
+        probe = clients()
+        lease_keys = {s.name: self.settings.keys(s).lease for s in self.settings.spaces}
+        me = holder_id()
+        pool = self.settings.pool
+
+        def make_space(name: str) -> SpaceService:
+            return self._space_service(clients, observers, clock, by_name[name], "both", me)
+
+        def owner_of(name: str) -> str | None:
+            got = probe.get(lease_keys[name])  # "<holder> <epoch>"; the holder is a member id
+            return None if got is None else got.decode().rpartition(" ")[0]
+
+        def try_take(sp: Any) -> bool:
+            return bool(sp.lease.take())
+
+        def on_change(members: int, held: int) -> None:
+            self.metrics.pool_members.set(members)
+            self.metrics.pool_spaces.set(held)
+
+        return PoolMember(
+            Membership(probe, self.settings.pool_key(), me, pool.member_ttl_ms),
+            list(by_name),
+            make_space,
+            try_take,
+            owner_of,
+            pool.heartbeat_ms,
+            on_change,
+        )
 
     def start(self, stop: threading.Event) -> None:
         m = self.settings.metrics
@@ -498,6 +585,15 @@ class Service:
                 )
             )
             log.info("space %s: standby following the writer", sb.space.name)
+        if self.pool is not None:
+            self.threads.append(
+                threading.Thread(target=self.pool.run, args=(stop,), name="pool", daemon=True)
+            )
+            log.info(
+                "pool %s: sharing %d spaces with the other members",
+                self.settings.pool.name,
+                len(self.settings.spaces),
+            )
         for rp in self.replicas:
             self.threads += rp.threads(stop)
             log.info("space %s: responder %s following the writer", rp.space.name, rp.stream.name)
@@ -518,6 +614,8 @@ class Service:
         for sp in spaces:
             if sp.fatal is not None:
                 raise sp.fatal
+        if self.pool is not None and self.pool.fatal is not None:
+            raise self.pool.fatal
 
 
 def serve_forever(settings: Settings, clients: ClientFactory, role: Role = "both") -> int:

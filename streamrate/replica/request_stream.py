@@ -41,6 +41,7 @@ import redis
 
 from streamrate.config import ReplicaSettings, SpaceKeys, SpaceSettings
 from streamrate.metrics import ServiceMetrics
+from streamrate.pubsub import publish
 from streamrate.serve.queries import peek
 from streamrate.serve.responder import Responder, _Meter, busy_reply
 from streamrate.stream.apply import now_ms
@@ -135,7 +136,7 @@ class StreamResponder:
             self.answered += 1
         pipe = client.pipeline(transaction=False)
         for channel, body in out:
-            pipe.publish(channel, body)
+            publish(pipe, channel, body)
         pipe.xack(self.keys.request_stream, self.settings.group, *[sid for sid, _ in rows])
         pipe.execute()
 

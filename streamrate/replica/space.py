@@ -10,7 +10,7 @@ acknowledged on the event stream, checkpointed or dead-lettered here.
 from __future__ import annotations
 
 import threading
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import Any
 
 from streamrate.checkpoint import CheckpointStore, FileCheckpointStore, RedisCheckpointStore
@@ -22,6 +22,7 @@ from streamrate.replica.request_stream import StreamResponder
 from streamrate.serve.livefeed import WatchRegistry
 from streamrate.serve.queries import MAX_WATCH
 from streamrate.serve.responder import Responder
+from streamrate.stream.apply import Observer
 
 ClientFactory = Callable[[], Any]
 
@@ -36,6 +37,8 @@ class ReplicaSpace:
         clients: ClientFactory,
         metrics: ServiceMetrics,
         replica_metrics: ReplicaMetrics,
+        observers: Sequence[Observer] = (),
+        writer_state: bool = False,
     ) -> None:
         self.settings, self.space, self.clients = settings, space, clients
         self.keys = settings.keys(space)
@@ -55,6 +58,8 @@ class ReplicaSpace:
             settings.replica,
             replica_metrics,
             metrics,
+            observers=observers,
+            writer_state=writer_state,  # a standby: ready to become the writer
         )
         self.responder = Responder(
             settings, space, self.keys, clients, metrics, self.follower.live, watch

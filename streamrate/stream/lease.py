@@ -120,10 +120,19 @@ class Lease:
         self.epoch = 0
         self.lost = False
         self.renewed_at = -1e18
+        # take() and renew() one at a time: a renewal that read the value before a
+        # take() of the same writer gave it a new epoch would find the new value and
+        # call the lease lost (the writer takes it once to start and once more when
+        # its consumer starts, while the renewal thread already runs).
+        self._turn = threading.Lock()
 
     # -- taking, renewing, giving back --------------------------------------------
     def take(self) -> int:
         """Take the lease (free, or ours already) with a new epoch; 0 when another holds it."""
+        with self._turn:
+            return self._take()
+
+    def _take(self) -> int:
         got = int(
             self.r.eval(
                 TAKE,
@@ -147,6 +156,10 @@ class Lease:
 
     def renew(self) -> None:
         """Extend the lease; :class:`LeaseLostError` when it is no longer ours."""
+        with self._turn:
+            self._renew()
+
+    def _renew(self) -> None:
         if self.lost or not self.value:
             raise self._lost("it is not held")
         at = self.clock()

@@ -4,7 +4,9 @@ A writer (``serve --role both``) and a standby (``serve --role standby``) share
 one space while events stream in. The writer is SIGKILLed (or SIGSTOPped past
 its lease and then continued); the standby takes the lease within the lease
 time plus one second (the bound the failover design promises), and the final
-model equals an uninterrupted run: nothing lost, nothing applied twice. A
+model equals an uninterrupted run: nothing lost, nothing applied twice. The
+standby becomes the writer from its own replica: it loads the checkpoint only
+once, when it starts following. A
 writer woken after losing its lease stops without writing.
 """
 
@@ -97,6 +99,16 @@ def _taken_over(r: redis.Redis, old: str, since: float) -> float:
     return time.monotonic() - since
 
 
+def _assert_promoted_without_reload(slog: Path) -> None:
+    """The standby became the writer from its own replica: the checkpoint was
+    loaded once, when the replica started, and never by the writer."""
+    text = slog.read_text()
+    assert "becomes the writer" in text
+    assert "without reloading the checkpoint" in text
+    assert text.count("replica loaded") == 1
+    assert "resuming from the" not in text  # the writer's load of the checkpoint
+
+
 def test_sigkill_of_the_writer_a_standby_takes_over_and_loses_nothing(
     redis_server: RedisServer, tmp_path: Path
 ) -> None:
@@ -121,7 +133,7 @@ def test_sigkill_of_the_writer_a_standby_takes_over_and_loses_nothing(
         assert standby.wait(30) == 0
     finally:
         _stop_all(writer, standby)
-    assert "becomes the writer" in slog.read_text()
+    _assert_promoted_without_reload(slog)
     ck = _checkpoint(r)
     assert ck is not None
     assert ck.applied == len(events)  # each unique event once
@@ -135,7 +147,7 @@ def test_a_writer_woken_after_losing_its_lease_stops_without_writing(
 ) -> None:
     lines, events, _ = world_lines(1500, seed=29)
     r = redis_server.client()
-    writer, standby, wlog, _, old = _start_pair(redis_server, tmp_path)
+    writer, standby, wlog, slog, old = _start_pair(redis_server, tmp_path)
     old_epoch = int(old.split()[1])
     sender = threading.Thread(
         target=send_events,
@@ -163,6 +175,7 @@ def test_a_writer_woken_after_losing_its_lease_stops_without_writing(
     finally:
         _stop_all(writer, standby)
     assert "lost" in wlog.read_text().splitlines()[-1]
+    _assert_promoted_without_reload(slog)
     ck = _checkpoint(r)
     assert ck is not None
     # The token: the checkpoint's applied-log position is an entry of the new epoch,
