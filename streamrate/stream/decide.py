@@ -316,6 +316,7 @@ def _refused_or_untrusted(
     bad = ~(t <= limit) | (t < _EARLIEST_S)  # NaN compares false: refused
     return set(np.flatnonzero(bad).tolist()) if bad.any() else set()
 
+
 def _conflict(match_id: str) -> str:
     return (
         f"match_id: {match_id!r} was applied before with other content "
