@@ -196,9 +196,11 @@ def query_latency(
                 r.publish("{sr:duel}:q", req)
                 m = reply(ps, log)
                 lat.append(time.perf_counter() - t0)
-                applied.append(json.loads(m["data"])["applied"])
+                applied.append(int(json.loads(m["data"]).get("applied", -1)))  # -1: not ready
             return lat, applied
 
+        while pairings(1)[1][-1] < 0:  # the service answers "not ready" until it has loaded
+            time.sleep(0.2)
         r_fill.start()
         lat, applied_during = pairings(n_queries)
         r_fill.join()
