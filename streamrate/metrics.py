@@ -197,6 +197,13 @@ class ServiceMetrics:
             ["space", "source"],
             registry=r,
         )
+        self.leases_lost = Counter(
+            "streamrate_writer_leases_lost_total",
+            "Times a writer of a space in this process found its lease lost (paused or cut "
+            "off past lease_ms) and stopped writing that space (it then follows as a standby).",
+            ["space"],
+            registry=r,
+        )
         self.pool_members = Gauge(
             "streamrate_pool_member_entries",
             "Members of this process's pool alive at its last heartbeat (serve --role shared).",
@@ -223,7 +230,7 @@ class ServiceMetrics:
             self.watchers.labels(space=s)
             for o in EVENT_OUTCOMES:
                 self.events.labels(space=s, outcome=o)
-            for metric in (self.loop_errors, self.claimed, self.live_published):
+            for metric in (self.loop_errors, self.claimed, self.live_published, self.leases_lost):
                 metric.labels(space=s)
             for role in OUTAGE_ROLES:
                 self.reconnects.labels(space=s, role=role)
