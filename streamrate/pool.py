@@ -133,6 +133,9 @@ class Held(Protocol):
 
     def threads(self, stop: threading.Event) -> list[threading.Thread]: ...
 
+    def retire(self) -> None:
+        """It stopped here while this member goes on: drop what it exported."""
+
 
 class Membership:
     """This process's entry in the pool's member set."""
@@ -239,12 +242,14 @@ class PoolMember:
         if outer.is_set():
             stop.set()
 
-    def _reap(self) -> None:
+    def _reap(self, final: bool = False) -> None:
         for name, run in list(self.running.items()):
             if run.alive():
                 continue
             del self.running[name]
             self.giving.discard(name)
+            if not final:
+                run.space.retire()  # its next writer exports its series
             fatal = run.space.fatal
             if isinstance(fatal, CheckpointRefusedError):
                 self.fatal = fatal
@@ -266,7 +271,7 @@ class PoolMember:
         for run in self.running.values():
             for t in run.threads:
                 t.join()
-        self._reap()
+        self._reap(final=True)
         with contextlib.suppress(*REDIS_DOWN):
             self.membership.leave()
         if self.fatal is not None:

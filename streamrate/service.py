@@ -254,9 +254,33 @@ class SpaceService:
 
     # -- consumer thread --------------------------------------------------------
     def consume(self, stop: threading.Event) -> None:
-        """The consumer loop. A checkpoint that does not fit the settings ends it
-        and stops the service (``self.fatal``); Redis outages and loop errors back
-        off and are retried, the status the queries see saying why meanwhile."""
+        """The consumer loop, once this process holds the space's lease. A checkpoint
+        that does not fit the settings ends it and stops the service
+        (``self.fatal``), so does a lost lease (of this space only); Redis outages
+        and loop errors back off and are retried, the status the queries see
+        saying why meanwhile. The space's quality series are exported from the
+        moment it holds the lease (only the process writing a space exports them)."""
+        if not self.wait_for_lease(stop):
+            return
+        self.export_quality(True)
+        self._consume(stop)
+
+    def export_quality(self, on: bool) -> None:
+        for obs in self.consumer.observers:
+            if isinstance(obs, QualityObserver):
+                obs.export(on)
+
+    def retire(self) -> None:
+        """The space stopped here while the process goes on (its lease lost, or given
+        back by a pool member): drop its quality series and this writer's backlog
+        gauges, which the space's new writer exports."""
+        self.export_quality(False)
+        lbl = {"space": self.space.name}
+        self.metrics.lag.labels(**lbl).set(0)
+        self.metrics.pending.labels(**lbl).set(0)
+        self.metrics.error_streak.labels(**lbl).set(0)
+
+    def _consume(self, stop: threading.Event) -> None:
         rs = self.settings.redis
         lbl = {"space": self.space.name}
         connected = self.metrics.redis_connected.labels(**lbl)
@@ -270,8 +294,6 @@ class SpaceService:
         streak = self.metrics.error_streak.labels(**lbl)
         c = self.consumer
         must_recover = True
-        if not self.wait_for_lease(stop):
-            return
         while not stop.is_set():
             try:
                 if must_recover:
@@ -347,9 +369,7 @@ class SpaceService:
         for st in CONSUMER_STATES:  # no state here: this process no longer runs the consumer
             self.metrics.state.labels(**lbl, state=st).set(0)
         self.metrics.leases_lost.labels(**lbl).inc()
-        self.metrics.lag.labels(**lbl).set(0)  # the new writer reports the stream's backlog
-        self.metrics.pending.labels(**lbl).set(0)
-        self.metrics.error_streak.labels(**lbl).set(0)
+        self.retire()
 
     # -- the lease ------------------------------------------------------------------
     def wait_for_lease(self, stop: threading.Event) -> bool:
@@ -610,7 +630,7 @@ class Service:
         # The replica feeds the same observers the writer goes on with.
         obs: list[Observer] = [
             *observers,
-            *quality_observers(space.name, space.quality, self.quality),
+            *quality_observers(space.name, space.quality, self.quality, exporting=False),
         ]
         writer_role: Role = "writer" if role == "writer" else "both"
         make = partial(self._space_service, clients, obs, clock, space, writer_role, own=True)
@@ -638,7 +658,10 @@ class Service:
         """The writer of a space (``own``: ``observers`` are the space's own already,
         the quality observers among them)."""
         if not own:
-            observers = [*observers, *quality_observers(space.name, space.quality, self.quality)]
+            observers = [
+                *observers,
+                *quality_observers(space.name, space.quality, self.quality, exporting=False),
+            ]
         sp = SpaceService(
             self.settings,
             space,

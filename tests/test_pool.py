@@ -118,6 +118,10 @@ class _FakeSpace:
         self.name, self.leases, self.me = name, leases, me
         self.fatal = None
         self.closed = threading.Event()
+        self.retired = 0
+
+    def retire(self) -> None:
+        self.retired += 1
 
     def threads(self, stop: threading.Event) -> list[threading.Thread]:
         def run() -> None:
@@ -153,10 +157,13 @@ def test_a_member_gives_back_what_is_above_its_share_when_another_joins() -> Non
     b.turn(stop)  # b counts two members, finds nothing free
     assert b.held == []
     a.turn(stop)  # a sees b: gives back two (gracefully, in their threads)
+    given = {name: a.running[name].space for name in a.giving}
     for name in a.giving:
         for t in a.running[name].threads:
             t.join(5)
     a.turn(stop)
+    assert len(given) == 2
+    assert all(sp.retired == 1 for sp in given.values())  # type: ignore[attr-defined]
     b.turn(stop)
     assert len(a.held) == 2 and len(b.held) == 2
     assert sorted(leases) == spaces and sorted(set(leases.values())) == ["a", "b"]

@@ -14,7 +14,7 @@ from service_fakes import fake_settings
 
 from streamrate.checkpoint import FileCheckpointStore, RedisCheckpointStore
 from streamrate.client import send_events
-from streamrate.config import LeaseSettings, Settings, SpaceSettings
+from streamrate.config import LeaseSettings, QualitySettings, Settings, SpaceSettings
 from streamrate.errors import LeaseLostError
 from streamrate.events import event_to_json
 from streamrate.service import Service
@@ -147,7 +147,18 @@ def _space(name: str = "duel") -> SpaceSettings:
         block_ms=5,
         checkpoint_every_events=50,
         checkpoint_every_s=0.05,
+        quality=QualitySettings(publish_every_s=0.0),
     )
+
+
+def _quality_spaces(svc: Service) -> set[str]:
+    """Spaces whose quality series this process exports."""
+    return {
+        s.labels["space"]
+        for m in svc.registry.collect()
+        for s in m.samples
+        if s.name.startswith(("streamrate_quality_", "streamrate_drift_"))
+    }
 
 
 def _space_service(
@@ -217,6 +228,7 @@ def test_a_lost_lease_stops_only_its_space_which_is_written_again_once_free(
         send_events(r, squad.events, events[:100])
         _wait(lambda: duel_w.live.applied == 100 == squad_w.live.applied, "the first events")
         _wait(lambda: duel_w.ckpt_id != "0-0", "the first checkpoint")
+        _wait(lambda: _quality_spaces(svc) == {"duel", "squad"}, "both writers' series")
         r.set(KEYS.lease, b"another-writer 99", px=60_000)  # taken over elsewhere
         send_events(r, KEYS.events, events[100:150])
         _wait(lambda: svc.runners[0].standby is not None, "duel to follow as a standby")
@@ -225,6 +237,10 @@ def test_a_lost_lease_stops_only_its_space_which_is_written_again_once_free(
         assert svc.runners[1].writer is svc.spaces[1] and svc.spaces[1].fatal is None
         assert (_lost(svc, "duel"), _lost(svc, "squad")) == (1, 0)
         assert not stop.is_set()
+        # Quality series: only the writer of a space exports them. The standby has
+        # loaded the checkpoint's windows but publishes nothing.
+        _wait(lambda: svc.runners[0].standby.replica.follower.loaded, "the replica")  # type: ignore[union-attr]
+        assert _quality_spaces(svc) == {"squad"}
         r.delete(KEYS.lease)  # the other writer went away: the lease is free
         send_events(r, KEYS.events, events[150:])
         runner = svc.runners[0]
@@ -234,6 +250,7 @@ def test_a_lost_lease_stops_only_its_space_which_is_written_again_once_free(
         _wait(lambda: again.live.applied == len(events), "duel to apply every event")
         held = r.get(KEYS.lease)
         assert held is not None and held.split()[0] == runner.writer.lease.holder.encode()
+        assert _quality_spaces(svc) == {"duel", "squad"}  # the writer of duel again
     finally:
         stop.set()
         svc.join()
