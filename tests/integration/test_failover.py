@@ -177,9 +177,7 @@ def test_a_writer_woken_after_losing_its_lease_stops_writing_and_follows_as_a_st
         os.kill(standby.pid, signal.SIGTERM)  # the new writer leaves: the old one takes over
         assert standby.wait(30) == 0
         wait_for(lambda: "becomes the writer" in wlog.read_text(), 30, "the old writer to return")
-        wait_for(
-            lambda: (_holder(r) or "").split(":")[1:2] == [str(writer.pid)], 30, "its lease"
-        )
+        wait_for(lambda: (_holder(r) or "").split(":")[1:2] == [str(writer.pid)], 30, "its lease")
         wait_for(lambda: _all_covered(r), 30, "its checkpoint")
         os.kill(writer.pid, signal.SIGTERM)
         assert writer.wait(30) == 0
