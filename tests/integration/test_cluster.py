@@ -48,6 +48,7 @@ from streamrate.web.hub import Hub, PairKey, Update, pairing_key
 from .cluster import LocalCluster
 from .conftest import RedisServer, render_users
 from .helpers import assert_same_state, wait_for, world_lines
+from .test_lost_replies import check_lost_replies
 
 pytestmark = [pytest.mark.integration, pytest.mark.slow]
 # Every process's lease (the takeover bound is this plus one second). A space of the
@@ -392,3 +393,14 @@ def test_a_plain_server_or_a_wrong_password_is_refused_at_start(
     wrong = cluster.url.replace("://", "://streamrate:not-the-password@")
     with pytest.raises(ConfigError, match="refused the user name or password"):
         RedisClients(RedisSettings(url=wrong)).check()
+
+
+def test_a_lost_reply_is_not_sent_again_on_a_cluster(cluster: LocalCluster) -> None:
+    # The cluster client of redis-py repeats a command ten times by default; ours never.
+    check_lost_replies(
+        cluster.url,
+        cluster.cluster_client(),
+        "lostreply",
+        username="streamrate",
+        password_file=cluster.passwords["streamrate"],
+    )
