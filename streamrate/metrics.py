@@ -197,6 +197,13 @@ class ServiceMetrics:
             ["space", "source"],
             registry=r,
         )
+        self.reads_cut = Counter(
+            "streamrate_stream_reads_cut_total",
+            "Blocked stream reads the server ended because the stream's key left the node "
+            "(a Redis Cluster slot moved); read again at once, nothing lost.",
+            ["space", "reader"],
+            registry=r,
+        )
         self.leases_lost = Counter(
             "streamrate_writer_leases_lost_total",
             "Times a writer of a space in this process found its lease lost (paused or cut "
@@ -234,6 +241,8 @@ class ServiceMetrics:
                 metric.labels(space=s)
             for role in OUTAGE_ROLES:
                 self.reconnects.labels(space=s, role=role)
+            for reader in READ_CUT_READERS:
+                self.reads_cut.labels(space=s, reader=reader)
             for g in (self.lag, self.pending, self.checkpoint_time, self.error_streak):
                 g.labels(space=s)
             self.redis_connected.labels(space=s).set(1)
@@ -246,6 +255,9 @@ class ServiceMetrics:
                 for o in QUERY_OUTCOMES:
                     self.queries.labels(space=s, kind=k, outcome=o)
 
+
+READ_CUT_READERS = ("consumer", "responder")
+"""Whose blocked stream read was cut: the writer's (events) or a responder's (requests)."""
 
 REPLICA_RELOADS = ("initial", "writer_restart", "gap", "behind", "error")
 """Why a replica loaded the checkpoint: its first load; a writer restarted below

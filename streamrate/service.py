@@ -49,7 +49,12 @@ from prometheus_client import CollectorRegistry
 from streamrate.checkpoint import CheckpointStore, FileCheckpointStore, RedisCheckpointStore
 from streamrate.config import RedisSettings, Settings, SpaceSettings
 from streamrate.connect import RedisClients
-from streamrate.errors import CheckpointRefusedError, LeaseLostError, ServiceError
+from streamrate.errors import (
+    CheckpointRefusedError,
+    LeaseLostError,
+    ReadCutError,
+    ServiceError,
+)
 from streamrate.metrics import CONSUMER_STATES, ReplicaMetrics, ServiceMetrics, serve_metrics
 from streamrate.models.base import Model
 from streamrate.models.registry import build_model
@@ -325,6 +330,9 @@ class SpaceService:
                 self._lease_lost(exc)
                 stop.set()  # this space's threads end; no write after a lost lease
                 return
+            except ReadCutError as exc:  # a slot moved: expected, nothing read, read again
+                self.metrics.reads_cut.labels(**lbl, reader="consumer").inc()
+                log.warning("space %s: %s; reading again", self.space.name, exc)
             except REDIS_DOWN as exc:
                 connected.set(0)
                 c.mark("stalled" if c.loaded else "loading", f"Redis is unreachable ({exc})")

@@ -340,6 +340,14 @@ def test_six_spaces_on_three_masters_with_failover(cluster: LocalCluster, tmp_pa
         wait_for(lambda: _covered(admin, shifted, n_all), 60, f"{shifted} after the slot move")
         a, b, _ = watched[shifted]
         _assert_answer(admin, asker, shifted, worlds[shifted][1], [a], [b])
+        # A blocked read the move cut off is expected: a warning line, no error line,
+        # no traceback (it is counted in streamrate_stream_reads_cut_total).
+        main_log = logs["main"].read_text()
+        assert "Traceback" not in main_log
+        for line in main_log.splitlines():
+            assert " ERROR " not in line or "UNBLOCKED" not in line, line
+            if "was cut off" in line:
+                assert " WARNING " in line, line
 
         # Failover: the writer of ``failed`` is killed while its events stream in.
         wait_for(lambda: "replica loaded" in logs["standby"].read_text(), 120, "the standby")
