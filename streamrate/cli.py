@@ -735,7 +735,7 @@ def dead_letters(
 def demo(
     redis_url: RedisOpt = None,
     matches: Annotated[int, typer.Option(help="Matches the simulated world sends.")] = 6000,
-    model: Annotated[str, typer.Option(help="Model the service runs.")] = "blade_chest",
+    model: Annotated[str, typer.Option(help="Model the service runs.")] = "recalibrated",
     rate: Annotated[float, typer.Option(help="Events per second sent.")] = 1500.0,
     seed: Annotated[int, typer.Option(help="World seed.")] = 7,
 ) -> None:

@@ -176,7 +176,9 @@ class SpaceSettings(BaseModel):
 
     model_config = _FROZEN
     name: str = Field("duel", pattern=_NAME)
-    model: str = "elo"
+    # The served default: the mixture of streamrate.models.mixture under an online
+    # recalibration (streamrate.recalibrate), which choose their own pace online.
+    model: str = "recalibrated"
     model_settings: dict[str, Any] = Field(default_factory=dict)
     group: str = Field("streamrate", pattern=_NAME)
     consumer: str = Field("consumer-1", pattern=_NAME)
