@@ -208,7 +208,11 @@ class PoolMember:
             elif s in self.running:
                 owners[s] = me
             else:
-                owners[s] = self.owner_of(s)
+                # A lease that still names this member although no writer of its
+                # runs here (its release failed) is ours to take again: the take
+                # script accepts a lease carrying our own holder name.
+                owner = self.owner_of(s)
+                owners[s] = None if owner == me else owner
         todo = plan(me, self.members, self.spaces, owners)
         for name in todo.give:
             log.info(

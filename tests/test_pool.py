@@ -225,6 +225,24 @@ def test_a_space_whose_lease_was_lost_is_dropped_and_taken_again_once_free() -> 
     m.running["s0"].stop.set()
 
 
+def test_a_lease_left_in_this_members_name_is_taken_again_not_given_back() -> None:
+    # The release of a lease failed (Redis away at that moment), so the lease
+    # still names this member although no writer of its runs: the member must
+    # take the space again, not plan to give back a space it does not run.
+    leases = {"s0": "a"}
+    made: list[_FakeSpace] = []
+
+    def make(name: str) -> _FakeSpace:
+        made.append(_FakeSpace(name, leases, "a"))
+        return made[-1]
+
+    m = _lone_member(make, leases)
+    stop = threading.Event()
+    m.turn(stop)
+    assert m.fatal is None and m.held == ["s0"] and len(made) == 1
+    m.running["s0"].stop.set()
+
+
 def test_a_refused_checkpoint_stops_the_member() -> None:
     leases: dict[str, str] = {}
     refused = CheckpointRefusedError("other settings")
