@@ -5,7 +5,9 @@
 
 Runs the same writer as ``bench/bench_service.py`` (blade-chest d=16, default
 validation, retry record and checkpoints on) against its own ``redis-server``
-and times each step of the hot path inside that one run, in microseconds per
+(every write fenced by the writer lease, the garbage collector tuned as the
+service tunes it; ``--gc default`` leaves it) and times each step of the hot
+path inside that one run, in microseconds per
 applied event:
 
 * validation: bytes to checked events (decoding, every check of the event
@@ -163,6 +165,7 @@ def main() -> None:
     ap.add_argument("--batch", type=int, action="append")
     ap.add_argument("--repeat", type=int, default=3)
     ap.add_argument("--checkpoint", choices=("background", "inline"))
+    ap.add_argument("--gc", choices=("tuned", "default"), default="tuned")
     args = ap.parse_args()
     if args.checkpoint:
         bench_service.BACKGROUND = args.checkpoint == "background"
@@ -177,9 +180,14 @@ def main() -> None:
             warm.recover()
             while warm.step():
                 pass
+            if args.gc == "tuned":
+                from streamrate.service import tune_gc
+
+                tune_gc()  # as the service does once it has started
             print(
                 f"{args.events} events among {args.entities} entities; blade-chest d=16; "
                 f"checkpoints {'in the background' if bench_service.BACKGROUND else 'inline'}; "
+                f"garbage collector {args.gc}; "
                 f"microseconds per applied event, median of {args.repeat} runs (min-max)"
             )
             cols = ("validation", "encoding", "dedupe", "update", "bookkeeping", "total")

@@ -8,9 +8,10 @@ Starts its own ``redis-server`` on a free loopback port in a temporary directory
 baseline measured in the same run against the same server:
 
 * throughput: the real consumer (validation, blade-chest d=16 updates,
-  checkpoints to a file, acks) as a ratio to an empty consumer that only reads
-  and acks (the ack of one batch pipelined with the next read), both over the
-  same pre-filled stream (two consumer groups), for batch sizes 100 and 1000;
+  checkpoints to a file, acks, every write fenced by the writer lease, the
+  garbage collector tuned as the service tunes it: ``--gc default`` leaves it)
+  as a ratio to an empty consumer that only reads and acks (the ack of one
+  batch pipelined with the next read), both over the same pre-filled stream (two consumer groups), for batch sizes 100 and 1000;
 * query latency: sequential pairing queries through ``streamrate serve`` (a
   subprocess, applying events meanwhile) next to a plain GET round trip;
 * lobby of 100: the in-process answer time (matrix + split), and round trip.
@@ -38,11 +39,12 @@ import redis
 from prometheus_client import CollectorRegistry
 
 from streamrate.checkpoint import FileCheckpointStore
-from streamrate.config import CheckpointSettings, Settings, SpaceSettings
+from streamrate.config import CheckpointSettings, LeaseSettings, Settings, SpaceSettings
 from streamrate.consumer import Consumer, LiveModel
 from streamrate.metrics import ServiceMetrics
 from streamrate.models.registry import build_model
 from streamrate.queries import Answerer, LobbyRequest
+from streamrate.stream.lease import Lease
 
 MODEL_SETTINGS = {"dims": 16}
 STREAM = "{sr:duel}:events"
@@ -119,16 +121,22 @@ unless ``--checkpoint inline`` is given."""
 def make_writer(r: redis.Redis, group: str, batch: int, ckpt_dir: str) -> Consumer:
     """The service's writer for one space, its settings as a service would have them
     (default validation, retry record and checkpoint cadence; checkpoints to a file,
-    in the background as the service does by default: see :data:`BACKGROUND`)."""
+    in the background as the service does by default: see :data:`BACKGROUND`; the
+    writer lease fencing the applied log, the checkpoint and the acks)."""
     space = SpaceSettings(
         name="duel", model="blade_chest", model_settings=MODEL_SETTINGS, group=group,
         batch_count=batch, block_ms=1, checkpoint_every_events=10_000, checkpoint_every_s=5.0,
     )  # fmt: skip
     keys = Settings(spaces=(space,)).keys(space)
+    # Renewed every second as in the service (here by the writer's own check before
+    # each read, no renewal thread); long, so that compiling kernels at the start
+    # does not let it lapse. One lease per group: each run is a writer of its own.
+    lease = Lease(r, f"{keys.lease}:{group}", keys.epoch, LeaseSettings(lease_ms=600_000))
     return Consumer(
-        r, space, keys, FileCheckpointStore(ckpt_dir, group),
+        r, space, keys, FileCheckpointStore(ckpt_dir, group, lease),
         ServiceMetrics(CollectorRegistry(), ["duel"]),
         lambda: build_model("blade_chest", **MODEL_SETTINGS), background=BACKGROUND,
+        lease=lease,
     )  # fmt: skip
 
 
@@ -328,6 +336,10 @@ def main() -> None:
         "--checkpoint", choices=("background", "inline"), help="how the writer stores its "
         "checkpoints (default: as the service does, background unless configured otherwise)",
     )  # fmt: skip
+    ap.add_argument(
+        "--gc", choices=("tuned", "default"), default="tuned",
+        help="the garbage collector as the service sets it at start (tuned) or Python's default",
+    )  # fmt: skip
     args = ap.parse_args()
     global BACKGROUND
     if args.checkpoint:
@@ -336,6 +348,7 @@ def main() -> None:
         f"CPUs available to this process: {sorted(os.sched_getaffinity(0))} of {os.cpu_count()} "
         "(redis-server, service and bench share them; no pinning); checkpoints "
         + ("in the background" if BACKGROUND else "inline")
+        + f"; garbage collector {args.gc}"
     )
     with tempfile.TemporaryDirectory() as d:
         tmp = Path(d)
@@ -346,6 +359,10 @@ def main() -> None:
             fill(r, lines)
             print(f"stream pre-filled with {args.events} events among {args.entities} entities")
             real_consumer(r, "warmup", 1000, str(tmp / "ck"))  # numba caches, page cache
+            if args.gc == "tuned":
+                from streamrate.service import tune_gc
+
+                tune_gc()  # as the service does once it has started
             for batch in (100, 1000):
                 bases, fulls = [], []
                 for rep in range(3):  # alternate, report medians: two CPUs are noisy

@@ -252,7 +252,8 @@ class Follower:
             part = [
                 (sid, parse_event(raw)) for sid, raw in zip(entry.ids, entry.events, strict=True)
             ]
-            self.applier.apply(part)
+            for start, end in entry.pieces():  # as the writer applied them
+                self.applier.apply(part[start:end])
             if self.writer_state:
                 self._follow_writer_state(entry, part)
             lag_ms = max(now_ms() - id_key(entry.id)[0], 0)

@@ -205,26 +205,48 @@ class Lease:
     def xadd_all(self, stream: str, entries: Sequence[dict[str, Any]]) -> list[str]:
         """``XADD`` each entry in order only while the lease is ours; their ids."""
         ids: list[str] = []
+        for args in self._xadd_calls(entries):
+            got = (
+                None
+                if self.lost
+                else self.r.eval(FENCED_XADD, 2, self.key, stream, self.value, *args)
+            )
+            ids += self.xadd_ids(got)
+        return ids
+
+    def queue_xadd(self, pipe: Any, stream: str, entries: Sequence[dict[str, Any]]) -> int:
+        """Put the fenced ``XADD`` of ``entries`` on ``pipe`` (sent later, with other
+        commands); the number of replies to give :meth:`xadd_ids`, one at a time."""
+        if self.lost:
+            raise self._lost("it was lost")
+        calls = self._xadd_calls(entries)
+        for args in calls:
+            pipe.eval(FENCED_XADD, 2, self.key, stream, self.value, *args)
+        return len(calls)
+
+    def xadd_ids(self, got: Any) -> list[str]:
+        """The ids of one fenced ``XADD`` reply; :class:`LeaseLostError` when refused."""
+        if isinstance(got, Exception):
+            raise got
+        if not got:
+            raise self._lost("a fenced write was refused")
+        return [_text(sid) for sid in got]
+
+    @staticmethod
+    def _xadd_calls(entries: Sequence[dict[str, Any]]) -> list[list[Any]]:
+        calls: list[list[Any]] = []
         args: list[Any] = []
         for fields in entries:
             flat: list[Any] = [len(fields) * 2]
             for name, value in fields.items():
                 flat += [name, value]
             if args and len(args) + len(flat) > MAX_SCRIPT_ARGS:
-                ids += self._xadd(stream, args)
+                calls.append(args)
                 args = []
             args += flat
         if args:
-            ids += self._xadd(stream, args)
-        return ids
-
-    def _xadd(self, stream: str, args: list[Any]) -> list[str]:
-        got = (
-            None if self.lost else self.r.eval(FENCED_XADD, 2, self.key, stream, self.value, *args)
-        )
-        if not got:
-            raise self._lost("a fenced write was refused")
-        return [_text(sid) for sid in got]
+            calls.append(args)
+        return calls
 
     # -- the renewal thread ----------------------------------------------------------
     def keep(self, stop: threading.Event, on_lost: Callable[[LeaseLostError], None]) -> None:

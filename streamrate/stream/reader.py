@@ -37,6 +37,10 @@ Entry = tuple[bytes, dict[bytes, bytes] | None]
 ACK_CHUNK = 5000
 """Ids per XACK call."""
 
+Carry = Callable[[Any], tuple[int, Callable[[list[Any]], None]]]
+"""Writes sent with a read (see :meth:`StreamReader.read`): given the pipeline,
+queue them and return their number and the function that takes their replies."""
+
 
 def id_key(stream_id: str | bytes) -> tuple[int, int]:
     """Stream id as a sortable pair: ``"17-3" -> (17, 3)``."""
@@ -87,30 +91,48 @@ class StreamReader:
 
     def __init__(self, client: redis.Redis, space: SpaceSettings, keys: SpaceKeys) -> None:
         self.r, self.space, self.keys = client, space, keys
+        # A cluster client's pipeline sends no scripts: writes cannot ride with a read.
+        # (connect.LazyCluster says it is one by ``sharded_pubsub``.)
+        self.carries = not (
+            isinstance(client, redis.RedisCluster) or getattr(client, "sharded_pubsub", False)
+        )
         self.cursor = "0-0"  # explicit id = re-read own pending after it; ">" = new entries
 
     # -- reading ----------------------------------------------------------------
-    def read(self) -> list[Entry]:
-        """One batch: own pending entries after the cursor, else new ones (blocking)."""
+    def read(self, carry: Carry | None = None) -> list[Entry]:
+        """One batch: own pending entries after the cursor, else new ones (blocking).
+
+        ``carry``: writes that ride in the same round trip, sent before the read
+        (the writer's applied log): it queues them on the pipeline and returns
+        how many it queued and the function that takes their replies, which is
+        called before the read's own reply is looked at. Only when
+        :attr:`carries` (not through a cluster client)."""
         sp = self.space
-        if self.cursor != ">":
-            resp = self.r.xreadgroup(
-                sp.group, sp.consumer, {self.keys.events: self.cursor}, count=sp.batch_count
-            )
-            entries = entries_of(resp)
-            self.cursor = entries[-1][0].decode() if entries else ">"
-            return entries
+        again = self.cursor != ">"
+        at: dict[Any, Any] = {self.keys.events: self.cursor if again else ">"}
+        block = None if again else sp.block_ms
         try:
-            resp = self.r.xreadgroup(
-                sp.group,
-                sp.consumer,
-                {self.keys.events: ">"},
-                count=sp.batch_count,
-                block=sp.block_ms,
-            )
+            if carry is None:
+                resp = self.r.xreadgroup(
+                    sp.group, sp.consumer, at, count=sp.batch_count, block=block
+                )
+            else:
+                pipe = self.r.pipeline(transaction=False)
+                n, done = carry(pipe)
+                pipe.xreadgroup(sp.group, sp.consumer, at, count=sp.batch_count, block=block)
+                replies = pipe.execute(raise_on_error=False)
+                done(replies[:n])
+                resp = replies[n]
+                if isinstance(resp, Exception):
+                    raise resp
         except redis.ResponseError as exc:
+            if again:
+                raise
             raise read_cut(exc, self.keys.events) from exc  # ReadCutError: read again
-        return entries_of(resp)
+        entries = entries_of(resp)
+        if again:
+            self.cursor = entries[-1][0].decode() if entries else ">"
+        return entries
 
     def resync(self, last_id: str) -> None:
         """Re-read own pending entries after ``last_id`` before any new one."""

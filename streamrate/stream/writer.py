@@ -7,7 +7,9 @@ One writer owns one model space. Its loop, one batch at a time::
       -> decider.decide()     valid / dead letters (with reasons) / retries skipped
       -> dead.write()         the dead-letter stream
       -> applier.learn()      predict then learn, in stream order, under the model lock
-         log.chunk()          the applied log, for the replicas
+         log.chunk()          the applied log, for the replicas (one entry per batch,
+                              written with the next read in one round trip, or
+                              before a checkpoint)
          applier.notify()     observers (quality windows, drift)
     checkpoints.due()        every N entries or T seconds:
       -> checkpoints.save()   model + last id + retry record, durably; then XACK, trim
@@ -312,12 +314,17 @@ class Writer:
         """Read and handle one batch; checkpoint when due. Returns entries handled."""
         if self.lease is not None:
             self.lease.ensure()  # after a pause: nothing is read on a lapsed lease
-        entries = self.reader.read()
+        # The applied log of the batch before goes with this read, in one round trip
+        # (written before the read, so a blocking read does not hold it back).
+        if self.reader.carries:
+            entries = self.reader.read(self.log.carry)
+        else:
+            self.log.flush()
+            entries = self.reader.read()
         if entries:
             self.handle(entries)
         for model in self.applier.take_promotions():  # promotions made while idle
             self.log.promote(self.live.applied, model)
-        self.log.flush()
         self.checkpoints.poll()  # a background save that finished: ack what it covers
         if self.checkpoints.due():
             self.checkpoint(wait=False)
@@ -344,7 +351,6 @@ class Writer:
             self.counters[outcome] += n
             if n:
                 self.metrics.events.labels(space=self.space.name, outcome=outcome).inc(n)
-        self.log.flush()
         self.metrics.batch_seconds.labels(**self._lbl).observe(time.perf_counter() - t0)
 
     def _tally(self, decision: Decision) -> Tally:
