@@ -11,7 +11,8 @@ baseline measured in the same run against the same server:
   checkpoints to a file, acks, every write fenced by the writer lease, the
   garbage collector tuned as the service tunes it: ``--gc default`` leaves it)
   as a ratio to an empty consumer that only reads and acks (the ack of one
-  batch pipelined with the next read), both over the same pre-filled stream (two consumer groups), for batch sizes 100 and 1000;
+  batch pipelined with the next read), both over the same pre-filled stream
+  (two consumer groups), for batch sizes 100 and 1000;
 * query latency: sequential pairing queries through ``streamrate serve`` (a
   subprocess, applying events meanwhile) next to a plain GET round trip;
 * lobby of 100: the in-process answer time (matrix + split), and round trip.
