@@ -38,9 +38,11 @@ A or B, so their means move too.
 
 **Time.** An entity's strength is a random walk: before it plays, ``P_jj``
 grows by ``noise_per_day`` times its idle days (capped at ``prior_var``). Adding
-it late is exact: until the entity plays, no update reads ``P_jj`` (an update's
-``u`` reads the columns of the players only). ``h`` and ``b`` drift by
-``shared_noise_per_day`` per day of the event clock.
+it late is exact within a period: until the entity plays, no update reads
+``P_jj`` (an update's ``u`` reads the columns of the players only); across a
+season change the noise of the idle days before it is added unscaled (a small
+approximation). ``h`` and ``b`` drift by ``shared_noise_per_day`` per day of the
+event clock.
 
 **Periods.** With ``period_field`` set, when that context value changes every
 strength becomes ``(1 - c) s + e`` with ``c = period_pull`` and
@@ -62,7 +64,14 @@ leaves): its marginal mean and variance go to the store and its covariances are
 dropped, so it re-enters with its marginal. In a space of millions of entities
 the covariance covers the ``max_active`` most recent ones and the rest is the
 diagonal filter; the cost per event is ``O(max_active^2)`` (the rank-one update)
-and the memory ``(max_active + 2)^2`` floats plus four per entity.
+and the memory ``(max_active + 2)^2`` float64 (20 KB for 48) plus 40 bytes per
+entity (mean, variance, last day, match count while new, slot).
+
+Measured on the football results of ``tests/test_open_dataset.py`` (README, model
+section): in a league where every pair of sides meets twice a season the
+correlations stay small (about 0.08, mostly the common level, which a difference
+does not see), and the full covariance gains under 0.0005 nats over the diagonal
+filter; it is offered as a model, not a member of the default mixture.
 """
 
 from __future__ import annotations
