@@ -212,15 +212,18 @@ _kalman_loop_compiled = kernel(_kalman_loop)
 
 
 class KalmanStrength(Model):
-    """Gaussian strengths with a full covariance over the active entities."""
+    """Gaussian strengths with a full covariance over the active entities.
+
+    The settings shared with :class:`~streamrate.models.bayes_strength.BayesStrength`
+    have its defaults, so the two differ by the covariance only."""
 
     kind: ClassVar[str] = "kalman_strength"
     state_version: ClassVar[int] = 1
 
     def __init__(
         self,
-        prior_var: float = 0.3,
-        noise_per_day: float = 0.0001,
+        prior_var: float = 1.0,
+        noise_per_day: float = 0.002,
         advantage_var: float = 0.25,
         period_field: str | None = None,
         period_pull: float = 0.0,
