@@ -157,3 +157,11 @@ def test_state_round_trip_and_a_too_large_match() -> None:
     with pytest.raises(ConfigError, match="max_active"):
         m.learn(big)
     np.testing.assert_array_equal(m.cov_, before)
+
+
+@pytest.mark.parametrize(
+    "bad", [{"max_active": 1}, {"max_active": 1025}, {"idle_days": 0.0}, {"period_pull": 1.5}]
+)
+def test_bad_settings_are_refused_before_any_allocation(bad: dict[str, float]) -> None:
+    with pytest.raises(ConfigError, match="kalman_strength"):
+        KalmanStrength(**bad)  # type: ignore[arg-type]

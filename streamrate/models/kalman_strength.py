@@ -253,8 +253,8 @@ class KalmanStrength(Model):
             raise ConfigError("kalman_strength: period_pull must lie in [0, 1]")
         if newcomer_matches < 0 or shared_noise_per_day < 0 or idle_days <= 0:
             raise ConfigError("kalman_strength: newcomer_matches, shared noise >= 0; idle_days > 0")
-        if not 2 <= max_active <= 4096:
-            raise ConfigError("kalman_strength: max_active must lie in [2, 4096]")
+        if not 2 <= max_active <= 1024:  # the covariance: at most 8.4 MB
+            raise ConfigError("kalman_strength: max_active must lie in [2, 1024]")
         self.prior_var = float(prior_var)
         self.noise_per_day = float(noise_per_day)
         self.advantage_var = float(advantage_var)
