@@ -23,6 +23,23 @@ node that owns its key. Database 0 only (a cluster has no other).
 
 >>> RedisClients(RedisSettings(url="redis+cluster://127.0.0.1:7000")).cluster
 True
+
+**No retries inside the client.** redis-py sends a command again after a
+``ConnectionError`` or ``TimeoutError`` when its ``Retry`` allows (the cluster
+client ten times by default). A command whose reply was lost had run: sent
+again, it runs twice. Several of ours must not: ``XREADGROUP ... >`` and
+``XAUTOCLAIM`` (the entries of the lost reply stay pending under our name while
+the repeat delivers the next ones, so they would be applied late, out of
+order), the fenced applied-log ``XADD`` (a second copy of a chunk or a
+promotion), the lease take (the repeat finds the lease just taken and reports
+it held by another). So every client is built with ``Retry(NoBackoff(), 0)``:
+the error reaches the loop that made the call, which backs off, reconnects and
+re-reads its own pending entries (:mod:`streamrate.service`); the lease take
+recognises a lease already holding this process's name. Redirects of a
+cluster (``MOVED``, ``ASK``) are not retries and are still followed.
+
+>>> RedisClients(RedisSettings(url="redis://127.0.0.1:6379/0")).kwargs["retry"].get_retries()
+0
 """
 
 from __future__ import annotations
@@ -41,6 +58,8 @@ import redis
 import redis.asyncio as aredis
 import redis.asyncio.cluster as acluster
 import redis.cluster as rcluster
+from redis.backoff import NoBackoff
+from redis.retry import Retry
 
 from streamrate.config import RedisSettings, mask_url, url_password
 from streamrate.errors import ConfigError, ServiceError
@@ -222,7 +241,8 @@ class RedisClients:
         self.kwargs: dict[str, Any] = {
             "socket_timeout": settings.socket_timeout_s,
             "socket_connect_timeout": settings.connect_timeout_s,
-            "retry_on_timeout": False,
+            # Never send a command again after a lost reply (module docstring).
+            "retry": Retry(NoBackoff(), 0),
             # No CLIENT SETINFO on connect: a least-privilege user need not be
             # allowed it (see deploy/redis/users.acl).
             "driver_info": None,

@@ -197,6 +197,20 @@ class ServiceMetrics:
             ["space", "source"],
             registry=r,
         )
+        self.reads_cut = Counter(
+            "streamrate_stream_reads_cut_total",
+            "Blocked stream reads the server ended because the stream's key left the node "
+            "(a Redis Cluster slot moved); read again at once, nothing lost.",
+            ["space", "reader"],
+            registry=r,
+        )
+        self.leases_lost = Counter(
+            "streamrate_writer_leases_lost_total",
+            "Times a writer of a space in this process found its lease lost (paused or cut "
+            "off past lease_ms) and stopped writing that space (it then follows as a standby).",
+            ["space"],
+            registry=r,
+        )
         self.pool_members = Gauge(
             "streamrate_pool_member_entries",
             "Members of this process's pool alive at its last heartbeat (serve --role shared).",
@@ -223,10 +237,12 @@ class ServiceMetrics:
             self.watchers.labels(space=s)
             for o in EVENT_OUTCOMES:
                 self.events.labels(space=s, outcome=o)
-            for metric in (self.loop_errors, self.claimed, self.live_published):
+            for metric in (self.loop_errors, self.claimed, self.live_published, self.leases_lost):
                 metric.labels(space=s)
             for role in OUTAGE_ROLES:
                 self.reconnects.labels(space=s, role=role)
+            for reader in READ_CUT_READERS:
+                self.reads_cut.labels(space=s, reader=reader)
             for g in (self.lag, self.pending, self.checkpoint_time, self.error_streak):
                 g.labels(space=s)
             self.redis_connected.labels(space=s).set(1)
@@ -239,6 +255,9 @@ class ServiceMetrics:
                 for o in QUERY_OUTCOMES:
                     self.queries.labels(space=s, kind=k, outcome=o)
 
+
+READ_CUT_READERS = ("consumer", "responder")
+"""Whose blocked stream read was cut: the writer's (events) or a responder's (requests)."""
 
 REPLICA_RELOADS = ("initial", "writer_restart", "gap", "behind", "error")
 """Why a replica loaded the checkpoint: its first load; a writer restarted below

@@ -133,6 +133,9 @@ class Held(Protocol):
 
     def threads(self, stop: threading.Event) -> list[threading.Thread]: ...
 
+    def retire(self) -> None:
+        """It stopped here while this member goes on: drop what it exported."""
+
 
 class Membership:
     """This process's entry in the pool's member set."""
@@ -205,7 +208,11 @@ class PoolMember:
             elif s in self.running:
                 owners[s] = me
             else:
-                owners[s] = self.owner_of(s)
+                # A lease that still names this member although no writer of its
+                # runs here (its release failed) is ours to take again: the take
+                # script accepts a lease carrying our own holder name.
+                owner = self.owner_of(s)
+                owners[s] = None if owner == me else owner
         todo = plan(me, self.members, self.spaces, owners)
         for name in todo.give:
             log.info(
@@ -239,12 +246,14 @@ class PoolMember:
         if outer.is_set():
             stop.set()
 
-    def _reap(self) -> None:
+    def _reap(self, final: bool = False) -> None:
         for name, run in list(self.running.items()):
             if run.alive():
                 continue
             del self.running[name]
             self.giving.discard(name)
+            if not final:
+                run.space.retire()  # its next writer exports its series
             fatal = run.space.fatal
             if isinstance(fatal, CheckpointRefusedError):
                 self.fatal = fatal
@@ -266,7 +275,7 @@ class PoolMember:
         for run in self.running.values():
             for t in run.threads:
                 t.join()
-        self._reap()
+        self._reap(final=True)
         with contextlib.suppress(*REDIS_DOWN):
             self.membership.leave()
         if self.fatal is not None:

@@ -67,20 +67,25 @@ class ReplicaSpace:
         self.stream = StreamResponder(space, self.keys, settings.replica, self.responder, metrics)
         self.fatal: Exception | None = None
 
-    def threads(self, stop: threading.Event) -> list[threading.Thread]:
+    def threads(self, stop: threading.Event, answer: bool = True) -> list[threading.Thread]:
+        """The follower's thread and (``answer``) the request-stream responder's."""
         rs = self.settings.redis
         name = self.space.name
-        return [
+        out = [
             threading.Thread(
                 target=self.follower.run,
                 args=(stop, rs.reconnect_min_s, rs.reconnect_max_s),
                 name=f"replica-{name}",
                 daemon=True,
-            ),
-            threading.Thread(
-                target=self.stream.run,
-                args=(stop, self.clients, rs.reconnect_min_s, rs.reconnect_max_s),
-                name=f"responder-{name}",
-                daemon=True,
-            ),
+            )
         ]
+        if answer:
+            out.append(
+                threading.Thread(
+                    target=self.stream.run,
+                    args=(stop, self.clients, rs.reconnect_min_s, rs.reconnect_max_s),
+                    name=f"responder-{name}",
+                    daemon=True,
+                )
+            )
+        return out

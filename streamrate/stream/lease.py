@@ -37,12 +37,16 @@ log = logging.getLogger("streamrate.lease")
 
 TAKE = """
 local cur = redis.call('GET', KEYS[1])
-if cur and cur ~= ARGV[3] then return 0 end
+local mine = ARGV[1] .. ' '
+if cur and cur ~= ARGV[3] and string.sub(cur, 1, #mine) ~= mine then return 0 end
 local epoch = redis.call('INCRBY', KEYS[2], 1)
-redis.call('SET', KEYS[1], ARGV[1] .. ' ' .. epoch, 'PX', ARGV[2])
+redis.call('SET', KEYS[1], mine .. epoch, 'PX', ARGV[2])
 return epoch
 """
-"""KEYS: lease, epoch. ARGV: holder, lease_ms, the value held now (or "")."""
+"""KEYS: lease, epoch. ARGV: holder, lease_ms, the value held now (or "").
+A lease naming this holder is taken again with a new epoch: a take whose reply
+was lost left it so (the holder id is unique to the process; the new epoch
+fences out anything written under the old value)."""
 
 RENEW = """
 if redis.call('GET', KEYS[1]) == ARGV[1] then

@@ -6,8 +6,9 @@ its lease and then continued); the standby takes the lease within the lease
 time plus one second (the bound the failover design promises), and the final
 model equals an uninterrupted run: nothing lost, nothing applied twice. The
 standby becomes the writer from its own replica: it loads the checkpoint only
-once, when it starts following. A
-writer woken after losing its lease stops without writing.
+once, when it starts following. A writer woken after losing its lease stops
+without writing, follows the new writer as a standby and takes the space back
+when that one leaves.
 """
 
 from __future__ import annotations
@@ -142,7 +143,7 @@ def test_sigkill_of_the_writer_a_standby_takes_over_and_loses_nothing(
     assert r.xlen("{sr:duel}:dead") == junk
 
 
-def test_a_writer_woken_after_losing_its_lease_stops_without_writing(
+def test_a_writer_woken_after_losing_its_lease_stops_writing_and_follows_as_a_standby(
     redis_server: RedisServer, tmp_path: Path
 ) -> None:
     lines, events, _ = world_lines(1500, seed=29)
@@ -167,14 +168,21 @@ def test_a_writer_woken_after_losing_its_lease_stops_without_writing(
         ckpt_before = r.get(CKPT)
         log_len = r.xlen(APPLIED)
         os.kill(writer.pid, signal.SIGCONT)
-        assert writer.wait(30) == 2  # stops on its own: the lease is lost
+        # It stops writing (one line), then follows the new writer as a standby.
+        wait_for(lambda: "replica loaded" in wlog.read_text(), 30, "the woken writer to follow")
         assert r.get(CKPT) == ckpt_before  # nothing written by the woken writer
         assert r.xlen(APPLIED) == log_len
-        os.kill(standby.pid, signal.SIGTERM)
+        assert writer.poll() is None
+        assert wlog.read_text().count("lost (") == 1
+        os.kill(standby.pid, signal.SIGTERM)  # the new writer leaves: the old one takes over
         assert standby.wait(30) == 0
+        wait_for(lambda: "becomes the writer" in wlog.read_text(), 30, "the old writer to return")
+        wait_for(lambda: (_holder(r) or "").split(":")[1:2] == [str(writer.pid)], 30, "its lease")
+        wait_for(lambda: _all_covered(r), 30, "its checkpoint")
+        os.kill(writer.pid, signal.SIGTERM)
+        assert writer.wait(30) == 0
     finally:
         _stop_all(writer, standby)
-    assert "lost" in wlog.read_text().splitlines()[-1]
     _assert_promoted_without_reload(slog)
     ck = _checkpoint(r)
     assert ck is not None
