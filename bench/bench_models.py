@@ -1,7 +1,8 @@
 """Speed and memory of the models, on pre-encoded and on pre-parsed events.
 
 Run by hand:  python bench/bench_models.py [--events 1000000] [--entities 100000]
-              [--memory-entities 1000000] [--only encoded|parsed|ratings|memory]
+              [--memory-entities 1000000]
+              [--only encoded|parsed|ratings|memory|default|default-service]
 
 Times are CPU seconds of this process (see :func:`timed`).
 
@@ -25,6 +26,12 @@ both.
 ``ratings``: Glicko-2 and TrueSkill, compiled, against the former plain-Python
 models with the former encoder (tests/rating_reference.py), on the same paths
 (``learn_many``, ``learn_batch`` of 100 and 1000), and the update alone.
+
+``default``: the served default model (``SpaceSettings().model``) against
+blade-chest d=16 (stacked context, with and without uncertainty): learn rate in
+chunks of 64 events and microseconds per ``predict``, as ratios.
+``default-service``: the same two through the real consumer against a
+redis-server it starts (needs ``redis-server``), next to an empty consumer.
 
 Memory: bytes per entity at d=16 with ``--memory-entities`` entities (model
 arrays + AdaGrad sums + id map), by tracemalloc; resident memory of a process
@@ -395,6 +402,115 @@ def memory(n_ent: int, dims: int = 16) -> None:
           f" {peak / n_ent:.1f})")  # fmt: skip
 
 
+def speed_default(n: int, n_ent: int, chunk: int = 64) -> None:
+    """The served default (``SpaceSettings().model``) against blade-chest d=16 with
+    stacked context (the example service configuration), on the same pre-parsed
+    events through ``learn_many`` in chunks of ``chunk`` (the apply step's lock
+    slice) and one ``predict`` per pairing (the query path); second pass timed."""
+    from streamrate.config import SpaceSettings
+    from streamrate.events import Matchup
+    from streamrate.models.registry import build_model
+
+    space = SpaceSettings()
+    events = make_events(n, n_ent)
+    queries = [Matchup(first=ev.first, second=ev.second, context=ev.context) for ev in events]
+    queries = queries[: min(len(queries), 20_000)]
+    served = f"served default: {space.model}"
+    makers: list[tuple[str, Callable[[], Model]]] = [
+        ("blade_chest d=16 (context stacked)", lambda: BladeChest(dims=16)),
+        ("blade_chest d=16, uncertainty off", lambda: BladeChest(dims=16, uncertainty=False)),
+        (served, lambda: build_model(space.model, **space.model_settings)),
+    ]
+    rows = []
+    for name, make in makers:
+        m = make()
+        warm_up(m)
+
+        def learn(m: Model = m) -> None:
+            for k in range(0, n, chunk):
+                m.learn_many(events[k : k + chunk])
+
+        learn()  # ids registered, kernels compiled
+        learn_s = timed(learn, repeat=3) / n
+        ask_s = timed(lambda m=m: [m.predict(q) for q in queries], repeat=3) / len(queries)
+        rows.append((name, learn_s, ask_s))
+    print(f"\n{n:,} pre-parsed 1v1 events (map + mode context), learn_many in chunks of {chunk}")
+    print(f"{'model':<44}{'learn ev/s':>12}{'x bc16':>8}{'predict us':>12}{'x bc16':>8}")
+    base_learn, base_ask = rows[0][1], rows[0][2]
+    for name, learn_s, ask_s in rows:
+        print(f"{name:<44}{1 / learn_s:>12,.0f}{base_learn / learn_s:>8.2f}"
+              f"{ask_s * 1e6:>12.1f}{base_ask / ask_s:>8.2f}")  # fmt: skip
+
+
+def speed_default_service(n: int, n_ent: int) -> None:
+    """The consumer (validation, update, checkpoints, acks) with the served default
+    against the same with blade-chest d=16, and both against an empty consumer that
+    only reads and acks, over one pre-filled stream of a real redis-server (started
+    here by :mod:`bench_service`'s helpers, stopped by its PID); medians of three."""
+    import os
+    import signal
+    import tempfile
+
+    import redis
+    from prometheus_client import CollectorRegistry
+
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    import bench_service as bs
+
+    from streamrate.checkpoint import FileCheckpointStore
+    from streamrate.config import Settings, SpaceSettings
+    from streamrate.consumer import Consumer
+    from streamrate.metrics import ServiceMetrics
+    from streamrate.models.registry import build_model
+
+    served = SpaceSettings()
+
+    def consume(r: Any, group: str, batch: int, ckpt: str, model: str, st: dict[str, Any]) -> float:
+        space = SpaceSettings(name="duel", model=model, model_settings=st, group=group,
+                              batch_count=batch, block_ms=1, checkpoint_every_events=10_000,
+                              checkpoint_every_s=5.0)  # fmt: skip
+        keys = Settings(spaces=(space,)).keys(space)
+        metrics = ServiceMetrics(CollectorRegistry(), ["duel"])
+        c = Consumer(r, space, keys, FileCheckpointStore(ckpt, group), metrics,
+                     lambda: build_model(model, **st))  # fmt: skip
+        c.recover()
+        t0 = time.perf_counter()
+        while True:
+            reading_new = c.cursor == ">"
+            if c.step() == 0 and reading_new:
+                break
+        c.checkpoint()
+        return c.live.applied / (time.perf_counter() - t0)
+
+    setups = [("blade_chest", {"dims": 16}), (served.model, dict(served.model_settings))]
+    with tempfile.TemporaryDirectory() as d:
+        proc, port = bs.start_redis(Path(d))
+        try:
+            r = redis.Redis(port=port)
+            bs.fill(r, bs.event_lines(n, n_ent, 0))
+            for k, (model, st) in enumerate(setups):
+                consume(r, f"warm{k}", 1000, d, model, st)  # kernels, page cache
+            print(f"\n{n:,} events in a redis stream; consumer rates, medians of 3 runs")
+            for batch in (100, 1000):
+                rows = []
+                for rep in range(3):
+                    empty = bs.empty_consumer(r, f"e{batch}-{rep}", batch)
+                    got = [consume(r, f"{k}-{batch}-{rep}", batch, d, model, st)
+                           for k, (model, st) in enumerate(setups)]  # fmt: skip
+                    rows.append([empty, *got])
+                a = np.array(rows)
+                med = np.median(a, axis=0)
+                of_empty = np.median(a[:, 1:] / a[:, :1], axis=0)
+                ratio = ", ".join(f"{x:.2f}" for x in a[:, 2] / a[:, 1])
+                print(f"batch {batch:4d}: empty {med[0]:,.0f} ev/s; blade_chest d=16 "
+                      f"{med[1]:,.0f} ({of_empty[0]:.3f} of empty); {served.model} "
+                      f"{med[2]:,.0f} ({of_empty[1]:.3f} of empty); default / blade-chest "
+                      f"per run: {ratio}")  # fmt: skip
+        finally:
+            os.kill(proc.pid, signal.SIGKILL)
+            proc.wait()
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--events", type=int, default=1_000_000)
@@ -402,7 +518,12 @@ def main() -> None:
     ap.add_argument("--slow-events", type=int, default=20_000)
     ap.add_argument("--parsed-events", type=int, default=200_000)
     ap.add_argument("--rating-events", type=int, default=200_000)
-    ap.add_argument("--only", choices=("encoded", "parsed", "ratings", "memory"), default=None)
+    ap.add_argument("--default-events", type=int, default=100_000)
+    ap.add_argument(
+        "--only",
+        choices=("encoded", "parsed", "ratings", "memory", "default", "default-service"),
+        default=None,
+    )
     ap.add_argument("--memory-entities", type=int, default=1_000_000)
     args = ap.parse_args()
     run = {
@@ -410,6 +531,8 @@ def main() -> None:
         "parsed": lambda: speed_events(args.parsed_events, args.entities),
         "ratings": lambda: speed_ratings(args.rating_events, args.entities, args.slow_events),
         "memory": lambda: memory(args.memory_entities),
+        "default": lambda: speed_default(args.default_events, args.entities),
+        "default-service": lambda: speed_default_service(args.default_events, 5_000),
     }
     for name, part in run.items():
         if args.only in (None, name):

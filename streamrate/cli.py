@@ -327,9 +327,19 @@ def serve(
         typer.Option(
             help="writer: learn, checkpoint and write the applied log; responder: follow the "
             "writer and answer the request stream; both: one process doing all (default); "
-            "standby: a responder that becomes the writer when the writer lease lapses."
+            "standby: a responder that becomes the writer when the writer lease lapses; "
+            "shared: one of several processes sharing the spaces, each writing its fair share."
         ),
     ] = "both",
+    spaces: Annotated[
+        str | None,
+        typer.Option(
+            "--spaces",
+            metavar="NAMES",
+            help="The spaces this process serves: names separated by commas, or all "
+            "(default: all spaces of the config).",
+        ),
+    ] = None,
 ) -> None:
     """Consume the event stream, keep the model current, answer queries (until SIGTERM)."""
     from streamrate.connect import service_clients
@@ -340,10 +350,10 @@ def serve(
 
     fix_malloc_thresholds()  # a long-running process: give freed large blocks back
     try:
-        if role not in ("writer", "responder", "both", "standby"):
-            raise ConfigError(f"--role {role!r}: one of writer, responder, both, standby")
+        if role not in ("writer", "responder", "both", "standby", "shared"):
+            raise ConfigError(f"--role {role!r}: one of writer, responder, both, standby, shared")
         extra = [] if log_format is None else [f"log_format={log_format}"]
-        settings = _service_settings(config, redis_url, [*(set_ or []), *extra])
+        settings = _service_settings(config, redis_url, [*(set_ or []), *extra]).only(spaces)
         setup_logging(settings.log_level, settings.log_format)
         code = serve_forever(settings, service_clients(settings.redis), role)  # type: ignore[arg-type]
     except StreamrateError as exc:
@@ -727,7 +737,7 @@ def dead_letters(
 def demo(
     redis_url: RedisOpt = None,
     matches: Annotated[int, typer.Option(help="Matches the simulated world sends.")] = 6000,
-    model: Annotated[str, typer.Option(help="Model the service runs.")] = "blade_chest",
+    model: Annotated[str, typer.Option(help="Model the service runs.")] = "recalibrated",
     rate: Annotated[float, typer.Option(help="Events per second sent.")] = 1500.0,
     seed: Annotated[int, typer.Option(help="World seed.")] = 7,
 ) -> None:

@@ -1,7 +1,8 @@
 """Client side of the service: send events, ask questions, follow the live feed.
 
 These are what ``streamrate send``, ``streamrate ask`` and ``streamrate watch``
-run; the demo uses them too. Every function takes a Redis client (injected).
+run; the demo uses them too. Every function takes a Redis client (injected):
+one server's or a cluster's (:mod:`streamrate.pubsub` picks sharded pub/sub).
 
 Stream entry format (what the consumer reads): one field ``event`` holding the
 event's JSON (see ``streamrate schema``); other fields are ignored and kept in
@@ -22,6 +23,7 @@ from typing import Any
 import redis
 
 from streamrate.errors import ServiceError
+from streamrate.pubsub import Subscriber, publish
 
 
 def event_lines(path: Path | str) -> Iterator[bytes]:
@@ -108,17 +110,16 @@ def ask(
     req = dict(request)
     req.setdefault("id", uuid.uuid4().hex)
     req.setdefault("reply_to", reply_channel(channel))
-    pubsub = client.pubsub(ignore_subscribe_messages=True)
-    pubsub.subscribe(req["reply_to"])
+    pubsub = Subscriber(client, req["reply_to"])
     try:
         if stream is not None:
             client.xadd(stream, {"request": json.dumps(req)}, maxlen=stream_max, approximate=True)
-        elif client.publish(channel, json.dumps(req)) == 0:
+        elif publish(client, channel, json.dumps(req)) == 0:
             raise ServiceError(f"no service listens on {channel}")
         deadline = time.monotonic() + timeout_s
         while time.monotonic() < deadline:
             msg = pubsub.get_message(timeout=min(0.1, max(deadline - time.monotonic(), 0.001)))
-            if msg is None or msg.get("type") != "message":
+            if msg is None:
                 continue
             reply = _json_object(msg["data"])
             if reply is not None and reply.get("id") == req["id"]:
@@ -165,14 +166,13 @@ def follow(
 
     Anything on the channel that is not a live-feed message is skipped.
     """
-    pubsub = client.pubsub(ignore_subscribe_messages=True)
-    pubsub.subscribe(channel)
+    pubsub = Subscriber(client, channel)
     if ready is not None:
         ready.set()
     try:
         while not stop.is_set():
             msg = pubsub.get_message(timeout=0.2)
-            if msg is not None and msg.get("type") == "message":
+            if msg is not None:
                 update = live_update(msg["data"])
                 if update is not None:
                     on_message(update)
@@ -211,8 +211,7 @@ def watch(
         return str(rep["live_channel"])
 
     live = set_list()
-    pubsub = client.pubsub(ignore_subscribe_messages=True)
-    pubsub.subscribe(live)
+    pubsub = Subscriber(client, live)
     if ready is not None:
         ready.set()
     renew_every_s = ttl_s / 3
@@ -220,7 +219,7 @@ def watch(
     try:
         while not stop.is_set():
             msg = pubsub.get_message(timeout=0.2)
-            if msg is not None and msg.get("type") == "message":
+            if msg is not None:
                 update = live_update(msg["data"])
                 if update is not None:
                     on_message(update)

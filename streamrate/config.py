@@ -21,6 +21,7 @@ slots)::
     {sr:duel}:epoch    the writer's epoch counter (INCR at every writer start)
     {sr:duel}:lease    the writer lease: "<holder> <epoch>", PX lease_ms (one writer per space)
     {sr:duel}:q:stream requests shared by responders (consumer group ``responders``)
+    {sr}:pool:main     the members of a pool of ``serve --role shared`` processes (a sorted set)
 
 >>> s = Settings(spaces=(SpaceSettings(name="duel"),))
 >>> s.keys(s.spaces[0]).events
@@ -48,7 +49,9 @@ _NAME = r"^[A-Za-z0-9_.\-]{1,48}$"
 class RedisSettings(BaseModel):
     """Where Redis is and how to prove who we are.
 
-    ``url`` may be ``redis://``, ``rediss://`` (TLS) or ``unix://``. The password
+    ``url`` may be ``redis://``, ``rediss://`` (TLS) or ``unix://``; a Redis Cluster
+    is ``redis+cluster://`` or ``rediss+cluster://`` and any one node's address
+    (:mod:`streamrate.connect`). The password
     comes from at most one place: the environment variable named by
     ``password_env``, the file ``password_file`` (its trailing newline dropped), or
     the URL (works, but shows in the process list and in shell history).
@@ -81,8 +84,12 @@ class RedisSettings(BaseModel):
 
     @model_validator(mode="after")
     def _url_scheme(self) -> RedisSettings:
-        if self.url is not None and not self.url.startswith(("redis://", "rediss://", "unix://")):
-            raise ValueError("url must start with redis://, rediss:// or unix://")
+        schemes = ("redis://", "rediss://", "unix://", "redis+cluster://", "rediss+cluster://")
+        if self.url is not None and not self.url.startswith(schemes):
+            raise ValueError(
+                "url must start with redis://, rediss://, unix://, redis+cluster:// "
+                "or rediss+cluster://"
+            )
         return self
 
     @model_validator(mode="after")
@@ -106,7 +113,7 @@ class RedisSettings(BaseModel):
         tls = [n for n in files if getattr(self, n) is not None]
         if not self.tls_verify:
             tls.append("tls_verify = false")
-        if tls and self.url is not None and not self.url.startswith("rediss://"):
+        if tls and self.url is not None and not self.url.startswith(("rediss://", "rediss+")):
             raise ValueError(f"{', '.join(tls)} need a rediss:// url (TLS)")
         if (self.tls_cert_file is None) != (self.tls_key_file is None):
             raise ValueError("tls_cert_file and tls_key_file go together")
@@ -169,7 +176,9 @@ class SpaceSettings(BaseModel):
 
     model_config = _FROZEN
     name: str = Field("duel", pattern=_NAME)
-    model: str = "elo"
+    # The served default: the mixture of streamrate.models.mixture under an online
+    # recalibration (streamrate.recalibrate), which choose their own pace online.
+    model: str = "recalibrated"
     model_settings: dict[str, Any] = Field(default_factory=dict)
     group: str = Field("streamrate", pattern=_NAME)
     consumer: str = Field("consumer-1", pattern=_NAME)
@@ -290,6 +299,27 @@ class LeaseSettings(BaseModel):
         return self
 
 
+class PoolSettings(BaseModel):
+    """Processes sharing spaces (``serve --role shared``, :mod:`streamrate.pool`)."""
+
+    model_config = _FROZEN
+    # Processes with the same pool name share the same spaces (give them the same
+    # --spaces); another name is another pool.
+    name: str = Field("main", pattern=_NAME)
+    # How often a member renews its entry and rebalances.
+    heartbeat_ms: int = Field(1000, ge=10)
+    # A member that has not renewed its entry for this long is gone: the others
+    # count without it (set it near lease.lease_ms: a dead member's spaces are
+    # free once their leases lapse, and taken once it no longer counts).
+    member_ttl_ms: int = Field(5000, ge=100)
+
+    @model_validator(mode="after")
+    def _beat_within_ttl(self) -> PoolSettings:
+        if self.heartbeat_ms * 2 > self.member_ttl_ms:
+            raise ValueError("pool: heartbeat_ms must be at most half of member_ttl_ms")
+        return self
+
+
 @dataclass(frozen=True)
 class SpaceKeys:
     """All Redis names of one space (see the module docstring)."""
@@ -326,6 +356,7 @@ class Settings(BaseModel):
     queries: QuerySettings = Field(default_factory=QuerySettings)
     replica: ReplicaSettings = Field(default_factory=ReplicaSettings)
     lease: LeaseSettings = Field(default_factory=LeaseSettings)
+    pool: PoolSettings = Field(default_factory=PoolSettings)
     spaces: tuple[SpaceSettings, ...] = (SpaceSettings(),)
 
     @model_validator(mode="after")
@@ -353,6 +384,29 @@ class Settings(BaseModel):
             request_stream=f"{tag}:q:stream",
             lease=f"{tag}:lease",
         )
+
+    def pool_key(self) -> str:
+        """The member set of this process's pool (its own hash tag: one key).
+
+        >>> Settings().pool_key()
+        '{sr}:pool:main'
+        """
+        return "{" + self.prefix + "}" + f":pool:{self.pool.name}"
+
+    def only(self, names: str | None) -> Settings:
+        """These settings with the spaces named (comma separated; None or "all": all).
+
+        >>> s = Settings(spaces=(SpaceSettings(name="a"), SpaceSettings(name="b")))
+        >>> [x.name for x in s.only("b").spaces], len(s.only("all").spaces)
+        (['b'], 2)
+        """
+        if names is None or names.strip() == "all":
+            return self
+        wanted = [n.strip() for n in names.split(",") if n.strip()]
+        picked = tuple(self.space(n) for n in dict.fromkeys(wanted))
+        if not picked:
+            raise ConfigError("--spaces: name at least one space, or all")
+        return self.model_copy(update={"spaces": picked})
 
     def space(self, name: str | None = None) -> SpaceSettings:
         if name is None:

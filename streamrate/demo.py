@@ -47,14 +47,19 @@ RUN_LIMIT_S = 50.0
 
 
 class _Collector:
-    """An observer: keeps every (prediction, outcome) the service made, in order."""
+    """An observer: keeps every (prediction, outcome) the service served, in order
+    (the predictions of models inside the served one, such as the raw model under a
+    recalibration, come under their own labels and are left out)."""
 
-    def __init__(self) -> None:
+    def __init__(self, served: str) -> None:
+        self.served = served
         self.expected: list[float] = []
         self.scores: list[float] = []
         self.lock = threading.Lock()
 
     def __call__(self, event: MatchEvent, pred: Prediction, model: str) -> None:
+        if model != self.served:
+            return
         with self.lock:
             self.expected.append(pred.expected_score)
             self.scores.append(event.score)
@@ -85,7 +90,7 @@ def run_demo(
     matches: int = 6000,
     entities: int = 40,
     rate_per_s: float = 1500.0,
-    model: str = "blade_chest",
+    model: str = "recalibrated",
     seed: int = 7,
     out: Callable[[str], None] = print,
 ) -> dict[str, Any]:
@@ -127,7 +132,7 @@ def run_demo(
     out(f"streamrate demo: {len(events)} Quillrock duels among {entities} players on {where}")
     out(f"  model {model}, stream {keys.events}, checkpoints every {space.checkpoint_every_events}")
 
-    collector = _Collector()
+    collector = _Collector(model)
     service = Service(settings, clients, observers=[collector])
     stop = threading.Event()
     service.start(stop)

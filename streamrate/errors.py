@@ -9,8 +9,10 @@ Every error the package raises on purpose derives from :class:`StreamrateError`:
     │   ├── StateVersionError   written by an incompatible format version
     │   ├── CheckpointError     a checkpoint refused as input (names the file and the problem)
     │   └── AppliedLogError     an applied-log entry a replica cannot follow
-    └── ServiceError        the running service cannot go on (Redis, checkpoint store)
-        └── CheckpointRefusedError  the checkpoint is unreadable or not of these settings
+    ├── ServiceError        the running service cannot go on (Redis, checkpoint store)
+    │   ├── CheckpointRefusedError  the checkpoint is unreadable or not of these settings
+    │   └── LeaseLostError      this writer no longer holds its space's lease
+    └── ReadCutError        a blocked stream read ended because its key left the node
 
 Code translates lower-level failures with ``raise ... from exc`` so that the
 cause stays visible.
@@ -62,3 +64,10 @@ class CheckpointRefusedError(ServiceError):
 class LeaseLostError(ServiceError):
     """The writer no longer holds its space's lease (another writer took it, or it
     lapsed while this one was paused): it must stop writing at once."""
+
+
+class ReadCutError(StreamrateError):
+    """A blocked stream read that the server ended because the stream's key left
+    the node (``UNBLOCKED the stream key no longer exists``: a Redis Cluster slot
+    moved, or the key was deleted). Nothing was delivered; the caller counts it,
+    logs one line and reads again, which follows the slot to its new owner."""

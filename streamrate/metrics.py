@@ -33,6 +33,9 @@ QUERY_SHED_REASONS = ("queue_full", "client_queue_full", "expensive", "too_old")
 QUERY_FAILED_STAGES = ("answer", "publish")
 QUERY_LOOPS = ("subscriber", "answerer")
 QUERY_RESUBSCRIBE_REASONS = ("connection_lost", "backlog")
+WRITER_STARTS = ("checkpoint", "replica")
+"""How a writer started: from the stored checkpoint, or from the replica a
+standby kept current (no reload)."""
 CONSUMER_STATES = ("loading", "ready", "stalled")
 """``loading``: the checkpoint is not loaded yet; ``ready``: applying events and
 answering; ``stalled``: the consumer cannot apply events (loop errors, Redis
@@ -187,7 +190,40 @@ class ServiceMetrics:
             ["space"],
             registry=r,
         )
+        self.writer_starts = Counter(
+            "streamrate_writer_starts_total",
+            "Times this process became the writer of a space, by what it started from "
+            "(the checkpoint, or a standby's own replica without a reload).",
+            ["space", "source"],
+            registry=r,
+        )
+        self.reads_cut = Counter(
+            "streamrate_stream_reads_cut_total",
+            "Blocked stream reads the server ended because the stream's key left the node "
+            "(a Redis Cluster slot moved); read again at once, nothing lost.",
+            ["space", "reader"],
+            registry=r,
+        )
+        self.leases_lost = Counter(
+            "streamrate_writer_leases_lost_total",
+            "Times a writer of a space in this process found its lease lost (paused or cut "
+            "off past lease_ms) and stopped writing that space (it then follows as a standby).",
+            ["space"],
+            registry=r,
+        )
+        self.pool_members = Gauge(
+            "streamrate_pool_member_entries",
+            "Members of this process's pool alive at its last heartbeat (serve --role shared).",
+            registry=r,
+        )
+        self.pool_spaces = Gauge(
+            "streamrate_pool_held_space_entries",
+            "Spaces this pool member writes now (serve --role shared).",
+            registry=r,
+        )
         for s in spaces:
+            for source in WRITER_STARTS:
+                self.writer_starts.labels(space=s, source=source)
             for reason in QUERY_SHED_REASONS:
                 self.query_shed.labels(space=s, reason=reason)
             for stage in QUERY_FAILED_STAGES:
@@ -201,10 +237,12 @@ class ServiceMetrics:
             self.watchers.labels(space=s)
             for o in EVENT_OUTCOMES:
                 self.events.labels(space=s, outcome=o)
-            for metric in (self.loop_errors, self.claimed, self.live_published):
+            for metric in (self.loop_errors, self.claimed, self.live_published, self.leases_lost):
                 metric.labels(space=s)
             for role in OUTAGE_ROLES:
                 self.reconnects.labels(space=s, role=role)
+            for reader in READ_CUT_READERS:
+                self.reads_cut.labels(space=s, reader=reader)
             for g in (self.lag, self.pending, self.checkpoint_time, self.error_streak):
                 g.labels(space=s)
             self.redis_connected.labels(space=s).set(1)
@@ -217,6 +255,9 @@ class ServiceMetrics:
                 for o in QUERY_OUTCOMES:
                     self.queries.labels(space=s, kind=k, outcome=o)
 
+
+READ_CUT_READERS = ("consumer", "responder")
+"""Whose blocked stream read was cut: the writer's (events) or a responder's (requests)."""
 
 REPLICA_RELOADS = ("initial", "writer_restart", "gap", "behind", "error")
 """Why a replica loaded the checkpoint: its first load; a writer restarted below

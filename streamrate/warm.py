@@ -31,6 +31,8 @@ _SETUPS: tuple[tuple[str, Mapping[str, object]], ...] = (
     ("blade_chest", {"dims": 2, "context": "gated", "draws": True}),
     ("blade_chest_dist", {"dims": 2, "context": "stacked"}),
     ("elo", {}),
+    ("bayes_strength", {}),
+    ("recalibrated", {}),  # the served default: a mixture under a recalibration
 )
 
 

@@ -69,6 +69,16 @@ def test_demo_prints_whole_dead_letter_reasons() -> None:
     assert missing and missing[0].endswith("score: Field required")
 
 
+def test_demo_runs_the_served_default_and_scores_only_its_served_forecasts() -> None:
+    # The default model serves recalibrated numbers and reports its raw model's
+    # too (under its own label): the summary scores each match once.
+    lines: list[str] = []
+    summary = run_demo(matches=300, entities=12, rate_per_s=20_000, out=lines.append)
+    assert summary["applied"] == 300
+    assert 0.0 < summary["log_loss"] < 1.0
+    assert any("model recalibrated" in line for line in lines)
+
+
 def test_warm_up_says_what_it_does_only_when_it_compiles() -> None:
     said: list[str] = []
 

@@ -131,7 +131,7 @@ def test_the_reader_follows_a_writer_restart_and_a_checkpoint_reload(
         min_size=1,
         max_size=20,
     ),
-    kind=st.sampled_from(["elo", "glicko2", "blade_chest"]),
+    kind=st.sampled_from(["elo", "glicko2", "blade_chest", "recalibrated"]),
 )
 def test_fast_paths_equal_predict(picks: list[Any], kind: str) -> None:
     model: Model = build_model(kind)

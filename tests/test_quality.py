@@ -291,6 +291,41 @@ def test_observer_publishes_gauges_equal_to_the_window_statistics() -> None:
         assert fam.documentation.strip(), fam.name
 
 
+def _series_of(reg: CollectorRegistry, space: str) -> int:
+    return sum(
+        1
+        for fam in reg.collect()
+        for s in fam.samples
+        if s.labels.get("space") == space and not s.name.endswith("_created")
+    )
+
+
+def test_a_non_exporting_observer_keeps_its_windows_and_publishes_only_once_on() -> None:
+    reg = CollectorRegistry()
+    qm = QualityMetrics(reg)
+    settings = MonitorSettings(recent_n=20, reference_n=40, drift_fields=("map",))
+    obs = QualityObserver(QualityMonitor(settings), qm, "duel", publish_every_s=0, exporting=False)
+    other = QualityObserver(QualityMonitor(settings), qm, "trio", publish_every_s=0)
+    rng = np.random.default_rng(3)
+    for i in range(120):
+        p = float(rng.uniform(0.2, 0.8))
+        for o in (obs, other):
+            o(_event(i, float(rng.random() < p), "saltflats"), Prediction(p, 0.0), "elo")
+    obs.tick()
+    obs.publish()
+    assert _series_of(reg, "duel") == 0  # a standby: windows kept, nothing exported
+    assert obs.monitor.models_["elo"].windows_["all"].recent.snapshot().n_events == 20
+    obs.export(True)  # it became the writer
+    n = _series_of(reg, "duel")
+    assert n > 0 and n == _series_of(reg, "trio")
+    labels = {"space": "duel", "model": "elo", "window": "recent", "group": "all"}
+    assert reg.get_sample_value("streamrate_quality_window_events", labels) == 20
+    obs.export(False)  # it stopped writing: its series go, the other space's stay
+    assert _series_of(reg, "duel") == 0 and _series_of(reg, "trio") == n
+    obs(_event(999, 1.0, "saltflats"), Prediction(0.6, 0.0), "elo")
+    assert _series_of(reg, "duel") == 0
+
+
 @settings(max_examples=40, deadline=None)
 @given(
     window_n=st.integers(1, 30),

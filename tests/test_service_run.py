@@ -2,15 +2,17 @@
 
 from __future__ import annotations
 
+import logging
 import threading
 import time
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any
+from typing import Any, ClassVar
 
 import fakeredis
 import numpy as np
 import pytest
+import redis
 from prometheus_client import CollectorRegistry
 from service_fakes import fake_settings
 
@@ -199,4 +201,69 @@ def test_an_event_the_model_cannot_learn_is_set_aside_and_the_stream_goes_on(
     rest = [e for e in WORLD if e.match_id != _ChokesOn.bad_id]
     np.testing.assert_allclose(
         c.live.model.to_state().arrays["ratings"], _reference_ratings(rest), rtol=1e-12
+    )
+
+
+class _CutOnce(fakeredis.FakeRedis):
+    """A client whose next blocked read of an armed stream is cut off by the server,
+    as when a cluster slot moves (``UNBLOCKED the stream key no longer exists``)."""
+
+    armed: ClassVar[set[str]] = set()
+
+    def xreadgroup(
+        self, groupname: Any, consumername: Any, streams: Any, *a: Any, **kw: Any
+    ) -> Any:
+        if kw.get("block") is not None:
+            for key in streams:
+                if key in _CutOnce.armed:
+                    _CutOnce.armed.discard(key)
+                    raise redis.ResponseError("UNBLOCKED the stream key no longer exists")
+        return super().xreadgroup(groupname, consumername, streams, *a, **kw)
+
+
+def test_a_blocked_read_cut_by_a_slot_move_is_counted_and_read_again(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    server = fakeredis.FakeServer()
+    r = fakeredis.FakeRedis(server=server)
+    space = SpaceSettings(
+        name="duel", model="elo", model_settings={"compiled": False}, batch_count=40, block_ms=5
+    )
+    svc = Service(
+        fake_settings(tmp_path, space), lambda: _CutOnce(server=server), CollectorRegistry()
+    )
+    events = [event_to_json(e) for e in WORLD[:200]]
+    stop = threading.Event()
+    sp = svc.spaces[0]
+    assert sp.stream is not None
+    svc.start(stop)
+
+    def sample(name: str, **labels: str) -> float | None:
+        return svc.registry.get_sample_value(name, {"space": "duel", **labels})
+
+    try:
+        send_events(r, "{sr:duel}:events", events[:100])
+        _wait(lambda: sp.consumer.live.applied == 100 and sp.stream.ready.is_set(), "ready")
+        caplog.clear()
+        _CutOnce.armed |= {"{sr:duel}:events", "{sr:duel}:q:stream"}
+        _wait(lambda: not _CutOnce.armed, "both reads cut")
+        send_events(r, "{sr:duel}:events", events[100:])
+        _wait(lambda: sp.consumer.live.applied == 200, "the rest applied")
+        req = {"kind": "pairing", "first": list(WORLD[0].first), "second": list(WORLD[0].second)}
+        rep = ask(r, "{sr:duel}:q", req, 10.0, stream="{sr:duel}:q:stream")
+        assert rep["ok"], rep
+    finally:
+        stop.set()
+        svc.join()
+    for reader in ("consumer", "responder"):
+        assert sample("streamrate_stream_reads_cut_total", reader=reader) == 1
+    assert sample("streamrate_consumer_loop_errors_total") == 0
+    assert sample("streamrate_query_loop_restarts_total", loop="answerer") == 0
+    assert sample("streamrate_writer_starts_total", source="checkpoint") == 1  # no reload
+    cut = [rec for rec in caplog.records if "cut off" in rec.getMessage()]
+    assert len(cut) == 2
+    assert all(rec.levelname == "WARNING" and rec.exc_info is None for rec in cut)
+    assert not [rec for rec in caplog.records if rec.levelno >= logging.ERROR]
+    assert np.allclose(
+        sp.consumer.live.model.to_state().arrays["ratings"], _reference_ratings(WORLD[:200])
     )

@@ -14,7 +14,7 @@ from service_fakes import fake_settings
 
 from streamrate.checkpoint import FileCheckpointStore, RedisCheckpointStore
 from streamrate.client import send_events
-from streamrate.config import LeaseSettings, Settings, SpaceSettings
+from streamrate.config import LeaseSettings, QualitySettings, Settings, SpaceSettings
 from streamrate.errors import LeaseLostError
 from streamrate.events import event_to_json
 from streamrate.service import Service
@@ -138,18 +138,42 @@ def test_renew_period_must_fit_twice_in_the_lease() -> None:
         LeaseSettings(lease_ms=1000, renew_every_ms=600)
 
 
-def _space_service(tmp_path: Path, server: fakeredis.FakeServer, **lease: int) -> Service:
-    space = SpaceSettings(
-        name="duel",
+def _space(name: str = "duel") -> SpaceSettings:
+    return SpaceSettings(
+        name=name,
         model="elo",
         model_settings={"compiled": False},
         batch_count=40,
         block_ms=5,
         checkpoint_every_events=50,
         checkpoint_every_s=0.05,
+        quality=QualitySettings(publish_every_s=0.0),
     )
-    settings = fake_settings(tmp_path, space).model_copy(update={"lease": LeaseSettings(**lease)})
+
+
+def _quality_spaces(svc: Service) -> set[str]:
+    """Spaces whose quality series this process exports."""
+    return {
+        s.labels["space"]
+        for m in svc.registry.collect()
+        for s in m.samples
+        if s.name.startswith(("streamrate_quality_", "streamrate_drift_"))
+    }
+
+
+def _space_service(
+    tmp_path: Path, server: fakeredis.FakeServer, *names: str, **lease: int
+) -> Service:
+    spaces = tuple(_space(n) for n in names or ("duel",))
+    settings = fake_settings(tmp_path, spaces[0]).model_copy(
+        update={"lease": LeaseSettings(**lease), "spaces": spaces}
+    )
     return Service(settings, lambda: fakeredis.FakeRedis(server=server), CollectorRegistry())
+
+
+def _lost(svc: Service, space: str) -> float:
+    got = svc.registry.get_sample_value("streamrate_writer_leases_lost_total", {"space": space})
+    return -1.0 if got is None else got
 
 
 def test_a_running_writer_that_loses_its_lease_stops_without_writing(tmp_path: Path) -> None:
@@ -165,18 +189,73 @@ def test_a_running_writer_that_loses_its_lease_stops_without_writing(tmp_path: P
         _wait(lambda: c.ckpt_id != "0-0" and c.live.applied == 100, "the first checkpoint")
         held = r.get(KEYS.lease)
         assert held is not None and held.split()[0] == svc.spaces[0].lease.holder.encode()
+        assert _lost(svc, "duel") == 0
         r.set(KEYS.lease, b"another-writer 99", px=60_000)  # taken over elsewhere
         ckpt = (tmp_path / "duel.ckpt.npz").read_bytes()
         log_len, dead_len = r.xlen(KEYS.applied), r.xlen(KEYS.dead)
         send_events(r, KEYS.events, [*events[100:200], "{not json"])
-        _wait(stop.is_set, "the service to stop")
+        _wait(lambda: isinstance(svc.spaces[0].fatal, LeaseLostError), "the writer to stop")
+        _wait(lambda: svc.runners[0].standby is not None, "the space to follow as a standby")
+        time.sleep(0.3)  # a write would have had time to happen
+        assert not stop.is_set()  # the process goes on
+        assert _lost(svc, "duel") == 1
+        assert (tmp_path / "duel.ckpt.npz").read_bytes() == ckpt
+        assert (r.xlen(KEYS.applied), r.xlen(KEYS.dead)) == (log_len, dead_len)
+        assert r.get(KEYS.lease) == b"another-writer 99"
     finally:
         stop.set()
         svc.join()
-    assert isinstance(svc.spaces[0].fatal, LeaseLostError)
-    assert (tmp_path / "duel.ckpt.npz").read_bytes() == ckpt
-    assert (r.xlen(KEYS.applied), r.xlen(KEYS.dead)) == (log_len, dead_len)
+    assert (tmp_path / "duel.ckpt.npz").read_bytes() == ckpt  # nor at shutdown
     assert r.get(KEYS.lease) == b"another-writer 99"
+
+
+def test_a_lost_lease_stops_only_its_space_which_is_written_again_once_free(
+    tmp_path: Path,
+) -> None:
+    """Two spaces in one process: ``duel`` loses its lease, ``squad`` goes on
+    learning; ``duel`` follows as a standby and, once the lease is free, this
+    process writes it again and ends with every event applied once."""
+    server = fakeredis.FakeServer()
+    r = fakeredis.FakeRedis(server=server)
+    squad = Settings(spaces=(_space("squad"),)).keys(_space("squad"))
+    events = [event_to_json(e) for e in WORLD]
+    svc = _space_service(tmp_path, server, "duel", "squad")
+    stop = threading.Event()
+    svc.start(stop)
+    try:
+        duel_w, squad_w = (sp.consumer for sp in svc.spaces)
+        send_events(r, KEYS.events, events[:100])
+        send_events(r, squad.events, events[:100])
+        _wait(lambda: duel_w.live.applied == 100 == squad_w.live.applied, "the first events")
+        _wait(lambda: duel_w.ckpt_id != "0-0", "the first checkpoint")
+        _wait(lambda: _quality_spaces(svc) == {"duel", "squad"}, "both writers' series")
+        r.set(KEYS.lease, b"another-writer 99", px=60_000)  # taken over elsewhere
+        send_events(r, KEYS.events, events[100:150])
+        _wait(lambda: svc.runners[0].standby is not None, "duel to follow as a standby")
+        send_events(r, squad.events, events[100:])
+        _wait(lambda: squad_w.live.applied == len(events), "squad to go on learning")
+        assert svc.runners[1].writer is svc.spaces[1] and svc.spaces[1].fatal is None
+        assert (_lost(svc, "duel"), _lost(svc, "squad")) == (1, 0)
+        assert not stop.is_set()
+        # Quality series: only the writer of a space exports them. The standby has
+        # loaded the checkpoint's windows but publishes nothing.
+        _wait(lambda: svc.runners[0].standby.replica.follower.loaded, "the replica")  # type: ignore[union-attr]
+        assert _quality_spaces(svc) == {"squad"}
+        r.delete(KEYS.lease)  # the other writer went away: the lease is free
+        send_events(r, KEYS.events, events[150:])
+        runner = svc.runners[0]
+        _wait(lambda: runner.writer is not svc.spaces[0], "duel to be written here again")
+        assert runner.writer is not None
+        again = runner.writer.consumer
+        _wait(lambda: again.live.applied == len(events), "duel to apply every event")
+        held = r.get(KEYS.lease)
+        assert held is not None and held.split()[0] == runner.writer.lease.holder.encode()
+        assert _quality_spaces(svc) == {"duel", "squad"}  # the writer of duel again
+    finally:
+        stop.set()
+        svc.join()
+    assert svc.runners[0].fatal is None and svc.runners[1].fatal is None
+    assert _lost(svc, "duel") == 1
 
 
 def test_entries_a_replaced_writer_read_under_the_same_name_are_still_applied(

@@ -35,6 +35,21 @@ toward its prior 0 and every variance grows by ``period_var`` (capped at
 ``prior_var``); how much to pull is chosen online by mixing several pulls
 (:mod:`streamrate.models.mixture`).
 
+**Newcomers** (``newcomer_matches = n > 0``). Arrivals need not be average: a
+side promoted into a league, a fresh account. For its first ``n`` matches an
+entity's strength is ``mu_j + b``, with ``b ~ N(mu_b, v_b)`` one offset shared
+by all newcomers (prior variance ``newcomer_var``), learned like the advantage:
+it enters the logit with weight ``x_b = sum of x_j over the new members`` and
+gets the same diagonal update (``mu_b += v_b x_b g / (1 + w V)``, ``V`` now
+including ``x_b^2 v_b``). After its ``n``-th match the entity takes the current
+offset in: ``mu_j += mu_b``, ``v_j += v_b`` (capped at ``prior_var``).
+
+**Drifting shared parameters** (``shared_noise_per_day``). The advantage and
+the newcomer offset are random walks too: before each event their variances
+grow by ``shared_noise_per_day`` times the days since the previous event, so
+they keep tracking a first-side edge that changes over the years instead of
+freezing once their variance has shrunk.
+
 >>> from datetime import datetime, timezone
 >>> from streamrate.events import MatchEvent, Matchup
 >>> m = BayesStrength()
@@ -55,12 +70,13 @@ from typing import Any, ClassVar
 import numpy as np
 from numba import njit
 
-from streamrate.batch import count_matches, encode_events
+from streamrate.batch import EncodedBatch, count_matches, encode_events
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
 from streamrate.models.base import (
     Model,
+    ModelState,
     Prediction,
     Predictions,
     entity_arrays,
@@ -85,6 +101,11 @@ def _strength_loop(
     noise_per_day: float,
     prior_var: float,
     out: np.ndarray,
+    age: np.ndarray,
+    newc: np.ndarray,
+    newcomer_matches: float,
+    clock: np.ndarray,
+    shared_noise_per_day: float,
 ) -> None:
     """Sequential update over encoded events; writes each widened forecast to ``out``.
 
@@ -94,8 +115,14 @@ def _strength_loop(
     for i in range(score.shape[0]):
         n1 = first_size[i]
         n2 = second_size[i]
+        if not math.isnan(clock[0]):  # the shared parameters drift too
+            drift = shared_noise_per_day * max(day[i] - clock[0], 0.0)
+            adv[1] += drift
+            newc[1] += drift
+        clock[0] = day[i] if math.isnan(clock[0]) else max(clock[0], day[i])
         m = adv[0]
         big_v = adv[1]
+        xb = 0.0  # the newcomer offset's weight: the young members' x summed
         for j in range(n1 + n2):
             r = first[i, j] if j < n1 else second[i, j - n1]
             if not math.isnan(last_day[r]):
@@ -105,6 +132,10 @@ def _strength_loop(
             x = 1.0 / n1 if j < n1 else -1.0 / n2
             m += x * mu[r]
             big_v += x * x * var[r]
+            if age[r] < newcomer_matches:
+                xb += x
+        m += xb * newc[0]
+        big_v += xb * xb * newc[1]
         p = 1.0 / (1.0 + math.exp(-m / math.sqrt(1.0 + PROBIT * big_v)))
         out[i] = p
         g = score[i] - p
@@ -117,6 +148,15 @@ def _strength_loop(
             var[r] *= 1.0 - w * var[r] * x * x / denom
         adv[0] += adv[1] * g / denom
         adv[1] *= 1.0 - w * adv[1] / denom
+        newc[0] += newc[1] * xb * g / denom
+        newc[1] *= 1.0 - w * newc[1] * xb * xb / denom
+        for j in range(n1 + n2):  # an entity that stops being new takes the offset in
+            r = first[i, j] if j < n1 else second[i, j - n1]
+            if age[r] < newcomer_matches:
+                age[r] += 1.0
+                if age[r] >= newcomer_matches:
+                    mu[r] += newc[0]
+                    var[r] = min(var[r] + newc[1], prior_var)
 
 
 _strength_loop_compiled = njit(cache=True)(_strength_loop)
@@ -126,6 +166,10 @@ class BayesStrength(Model):
     """Gaussian strengths with per-entity variance, time noise and season pulls."""
 
     kind: ClassVar[str] = "bayes_strength"
+    # Version 2 added the newcomer offset (arrays ``age``, ``newcomer``) and the
+    # clock of the shared parameters' drift (``clock``); a version 1 state loads
+    # with both off, as it was trained.
+    state_version: ClassVar[int] = 2
 
     def __init__(
         self,
@@ -136,14 +180,27 @@ class BayesStrength(Model):
         period_pull: float = 0.0,
         period_var: float = 0.0,
         compiled: bool = True,
+        newcomer_matches: int = 0,
+        newcomer_var: float = 0.25,
+        shared_noise_per_day: float = 0.0,
     ) -> None:
-        nums = (prior_var, noise_per_day, advantage_var, period_pull, period_var)
+        nums = (
+            prior_var,
+            noise_per_day,
+            advantage_var,
+            period_pull,
+            period_var,
+            newcomer_var,
+            shared_noise_per_day,
+        )
         if not all(math.isfinite(x) for x in nums):
             raise ConfigError("bayes_strength: settings must be finite numbers")
         if prior_var <= 0 or min(noise_per_day, advantage_var, period_var) < 0:
             raise ConfigError("bayes_strength: prior_var > 0; noise and variances >= 0")
         if not 0.0 <= period_pull <= 1.0:
             raise ConfigError("bayes_strength: period_pull must lie in [0, 1]")
+        if newcomer_matches < 0 or newcomer_var < 0 or shared_noise_per_day < 0:
+            raise ConfigError("bayes_strength: newcomer and shared noise settings must be >= 0")
         self.prior_var = float(prior_var)
         self.noise_per_day = float(noise_per_day)
         self.advantage_var = float(advantage_var)
@@ -151,12 +208,32 @@ class BayesStrength(Model):
         self.period_pull = float(period_pull)
         self.period_var = float(period_var)
         self.compiled = bool(compiled)
+        self.newcomer_matches = int(newcomer_matches)
+        self.newcomer_var = float(newcomer_var)
+        self.shared_noise_per_day = float(shared_noise_per_day)
         self.entities_ = EntityTable()
         self.mu_ = np.zeros(16)
         self.var_ = np.full(16, self.prior_var)
         self.last_day_ = np.full(16, np.nan)
         self.adv_ = np.array([0.0, self.advantage_var])
+        self.age_ = np.zeros(16)
+        self.newcomer_ = np.array([0.0, self.newcomer_var])
+        self.clock_ = np.array([np.nan])  # the day of the latest event
         self.period_: str | None = None
+
+    @classmethod
+    def upgrade_state(cls, state: ModelState) -> ModelState:
+        if state.kind != cls.kind or state.version != 1:
+            return state
+        n = int(np.asarray(state.arrays["mu"]).shape[0])
+        arrays = {
+            **state.arrays,
+            "age": np.zeros(n),
+            "newcomer": np.array([0.0, 0.0]),
+            "clock": np.array([np.nan]),
+        }
+        params = {**state.params, "newcomer_matches": 0, "shared_noise_per_day": 0.0}
+        return ModelState(state.kind, 2, params, arrays)
 
     def get_params(self) -> dict[str, Any]:
         return {
@@ -167,6 +244,9 @@ class BayesStrength(Model):
             "period_pull": self.period_pull,
             "period_var": self.period_var,
             "compiled": self.compiled,
+            "newcomer_matches": self.newcomer_matches,
+            "newcomer_var": self.newcomer_var,
+            "shared_noise_per_day": self.shared_noise_per_day,
         }
 
     # -- state helpers ------------------------------------------------------------
@@ -174,7 +254,8 @@ class BayesStrength(Model):
         n = len(self.entities_)
         if n > len(self.mu_):
             size = max(n, 2 * len(self.mu_))
-            for name, fill in (("mu_", 0.0), ("var_", self.prior_var), ("last_day_", np.nan)):
+            fills = (("mu_", 0.0), ("var_", self.prior_var), ("last_day_", np.nan), ("age_", 0.0))
+            for name, fill in fills:
                 old = getattr(self, name)
                 grown = np.full(size, fill)
                 grown[: len(old)] = old
@@ -191,8 +272,7 @@ class BayesStrength(Model):
             return None
         return str(event.context[self.period_field])
 
-    def _enter_period(self, event: Matchup) -> None:
-        period = self._period_of(event)
+    def _enter_period(self, period: str | None) -> None:
         if period is None:
             return
         if self.period_ is not None and period != self.period_:
@@ -207,33 +287,48 @@ class BayesStrength(Model):
     # -- the online API -----------------------------------------------------------
     def predict(self, matchup: Matchup) -> Prediction:
         m, big_v = float(self.adv_[0]), float(self.adv_[1])
+        xb = 0.0
         for side, sign in ((matchup.first, 1.0), (matchup.second, -1.0)):
             x = sign / len(side)
             for e in side:
                 r = self.entities_.get(e)
                 m += x * (0.0 if r < 0 else float(self.mu_[r]))
                 big_v += x * x * (self.prior_var if r < 0 else float(self.var_[r]))
+                if self.newcomer_matches and (r < 0 or self.age_[r] < self.newcomer_matches):
+                    xb += x  # an unknown entity would be new
+        m += xb * float(self.newcomer_[0])
+        big_v += xb * xb * float(self.newcomer_[1])
         return Prediction(1.0 / (1.0 + math.exp(-m / math.sqrt(1.0 + PROBIT * big_v))))
 
     def learn(self, event: MatchEvent) -> Prediction:
         return self.learn_many([event]).one(0)
 
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
+        return self.learn_encoded(events, encode_events(events, self.entities_))
+
+    def learn_encoded(
+        self, events: Sequence[MatchEvent], batch: EncodedBatch, count: bool = True
+    ) -> Predictions:
+        """The sequential path over ``events`` already encoded against this model's
+        entity table (``batch``); ``count=False`` leaves the match counts alone (a
+        mixture whose members share one table counts once)."""
+        self._fit_capacity()
         out = np.empty(len(events))
+        periods = [self._period_of(ev) for ev in events]
         start = 0
         # Runs of one period go through the loop together; a change of period
         # between two runs pulls and widens first.
         for i in range(1, len(events) + 1):
-            if i < len(events) and self._period_of(events[i]) == self._period_of(events[i - 1]):
+            if i < len(events) and periods[i] == periods[i - 1]:
                 continue
-            self._enter_period(events[start])
-            out[start:i] = self._run(events[start:i])
+            self._enter_period(periods[start])
+            out[start:i] = self._run(batch.take(slice(start, i)))
             start = i
+        if count:
+            count_matches(batch, self.entities_)
         return Predictions(out, np.zeros_like(out))
 
-    def _run(self, events: Sequence[MatchEvent], compiled: bool | None = None) -> np.ndarray:
-        batch = encode_events(events, self.entities_)
-        self._fit_capacity()
+    def _run(self, batch: EncodedBatch, compiled: bool | None = None) -> np.ndarray:
         out = np.empty(len(batch))
         use = self.compiled if compiled is None else compiled
         loop = _strength_loop_compiled if use and len(batch) > 1 else _strength_loop
@@ -251,8 +346,12 @@ class BayesStrength(Model):
             self.noise_per_day,
             self.prior_var,
             out,
+            self.age_,
+            self.newcomer_,
+            float(self.newcomer_matches),
+            self.clock_,
+            self.shared_noise_per_day,
         )
-        count_matches(batch, self.entities_)
         return out
 
     def learn_batch(self, events: Sequence[MatchEvent]) -> Predictions:
@@ -260,8 +359,15 @@ class BayesStrength(Model):
         the mean steps and multiply the variance factors of every event."""
         if not events:
             return Predictions(np.zeros(0), np.zeros(0))
-        self._enter_period(events[0])
-        b = encode_events(events, self.entities_)
+        return self.learn_batch_encoded(events, encode_events(events, self.entities_))
+
+    def learn_batch_encoded(
+        self, events: Sequence[MatchEvent], b: EncodedBatch, count: bool = True
+    ) -> Predictions:
+        """:meth:`learn_batch` on events already encoded (see :meth:`learn_encoded`)."""
+        if not events:
+            return Predictions(np.zeros(0), np.zeros(0))
+        self._enter_period(self._period_of(events[0]))
         self._fit_capacity()
         day = b.time_s / DAY_S
         for i in range(len(b)):  # idle widening, as the sequential loop does it
@@ -270,16 +376,26 @@ class BayesStrength(Model):
                     idle = max(day[i] - self.last_day_[r], 0.0)
                     self.var_[r] = min(self.var_[r] + self.noise_per_day * idle, self.prior_var)
                 self.last_day_[r] = day[i]
+            if not math.isnan(self.clock_[0]):  # the shared parameters' drift
+                drift = self.shared_noise_per_day * max(day[i] - self.clock_[0], 0.0)
+                self.adv_[1] += drift
+                self.newcomer_[1] += drift
+            self.clock_[0] = day[i] if math.isnan(self.clock_[0]) else max(self.clock_[0], day[i])
         mu, var, adv = self.mu_.copy(), self.var_.copy(), self.adv_.copy()
+        newc, nm = self.newcomer_.copy(), self.newcomer_matches
         p = np.empty(len(b))
         for i in range(len(b)):
             n1, n2 = int(b.first_size[i]), int(b.second_size[i])
             rows = [int(r) for r in (*b.first[i, :n1], *b.second[i, :n2])]
             xs = [1.0 / n1] * n1 + [-1.0 / n2] * n2
             m, big_v = adv[0], adv[1]  # summed in the sequential loop's order
+            xb = 0.0
             for r, x in zip(rows, xs, strict=True):
                 m += x * mu[r]
                 big_v += x * x * var[r]
+                xb += x if self.age_[r] < nm else 0.0
+            m += xb * newc[0]
+            big_v += xb * xb * newc[1]
             p[i] = 1.0 / (1.0 + math.exp(-m / math.sqrt(1.0 + PROBIT * big_v)))
             g, w = b.score[i] - p[i], p[i] * (1.0 - p[i])
             denom = 1.0 + w * big_v
@@ -288,30 +404,53 @@ class BayesStrength(Model):
                 self.var_[r] *= 1.0 - w * var[r] * x * x / denom
             self.adv_[0] += adv[1] * g / denom
             self.adv_[1] *= 1.0 - w * adv[1] / denom
-        count_matches(b, self.entities_)
+            self.newcomer_[0] += newc[1] * xb * g / denom
+            self.newcomer_[1] *= 1.0 - w * newc[1] * xb * xb / denom
+        for i in range(len(b)):  # entities that stop being new take the offset in
+            for r in (*b.first[i, : b.first_size[i]], *b.second[i, : b.second_size[i]]):
+                if self.age_[r] < nm:
+                    self.age_[r] += 1.0
+                    if self.age_[r] >= nm:
+                        self.mu_[r] += self.newcomer_[0]
+                        self.var_[r] = min(self.var_[r] + self.newcomer_[1], self.prior_var)
+        if count:
+            count_matches(b, self.entities_)
         return Predictions(p, np.zeros_like(p))
 
     # -- persistence --------------------------------------------------------------
     def _state_arrays(self) -> dict[str, np.ndarray]:
-        arrays = entity_arrays(self.entities_, mu=self.mu_, var=self.var_, last_day=self.last_day_)
+        arrays = entity_arrays(
+            self.entities_, mu=self.mu_, var=self.var_, last_day=self.last_day_, age=self.age_
+        )
         arrays["advantage"] = self.adv_.copy()
+        arrays["newcomer"] = self.newcomer_.copy()
+        arrays["clock"] = self.clock_.copy()
         # The current period as its UTF-8 bytes (empty: none yet).
         arrays["period"] = np.frombuffer((self.period_ or "").encode(), dtype=np.uint8).copy()
         arrays["has_period"] = np.array([self.period_ is not None])
         return arrays
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
-        table, (mu, var, last) = load_entity_arrays(self.kind, arrays, ("mu", "var", "last_day"))
+        names = ("mu", "var", "last_day", "age")
+        table, (mu, var, last, age) = load_entity_arrays(self.kind, arrays, names)
         adv = np.asarray(arrays["advantage"], dtype=np.float64)
-        if adv.shape != (2,) or not np.all(np.isfinite(adv)):
-            raise StateError("bayes_strength: array 'advantage' must hold two finite numbers")
+        newc = np.asarray(arrays["newcomer"], dtype=np.float64)
+        for name, a in (("advantage", adv), ("newcomer", newc)):
+            if a.shape != (2,) or not np.all(np.isfinite(a)):
+                raise StateError(f"bayes_strength: array {name!r} must hold two finite numbers")
         self.entities_ = table
         size = max(16, 2 * len(table))
         self.mu_, self.var_ = np.zeros(size), np.full(size, self.prior_var)
         self.last_day_ = np.full(size, np.nan)
         self.mu_[: len(table)], self.var_[: len(table)] = mu, var
         self.last_day_[: len(table)] = last
-        self.adv_ = adv.copy()
+        self.age_ = np.zeros(size)
+        self.age_[: len(table)] = age
+        self.adv_, self.newcomer_ = adv.copy(), newc.copy()
+        clock = np.asarray(arrays["clock"], dtype=np.float64)
+        if clock.shape != (1,):
+            raise StateError("bayes_strength: array 'clock' must hold one number")
+        self.clock_ = clock.copy()
         has = bool(np.asarray(arrays["has_period"]).reshape(-1)[0])
         text = np.asarray(arrays["period"], dtype=np.uint8).tobytes().decode()
         self.period_ = text if has else None

@@ -19,6 +19,14 @@ Per entry (``N`` = events this replica has applied)::
     promote, seq <= N                      promote (between the same two chunks as
                                            on the writer)
 
+A standby's follower (``writer_state``) also keeps what the writer keeps beside
+the model, so that it can become the writer without loading the checkpoint
+(:meth:`followed`, :meth:`streamrate.stream.writer.Writer.adopt`): the retry
+record (the checkpoint's, then every applied event added as the writer adds
+it), the writer's counters of dead letters and retries (each chunk carries
+them) and the observers (quality windows, drift; the checkpoint's parts, then
+every applied event).
+
 Every ``check_every_s`` it reads the newest entry of the log to measure its lag
 in events; more than ``max_behind_events`` behind, it reloads the checkpoint
 when that checkpoint is ahead of it.
@@ -30,22 +38,24 @@ import collections
 import logging
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import Any
 
 import redis
 
-from streamrate.checkpoint import CheckpointStore
+from streamrate.checkpoint import Checkpoint, CheckpointStore, load_parts
 from streamrate.config import ReplicaSettings, SpaceKeys, SpaceSettings
+from streamrate.dedupe import SeenIds
 from streamrate.errors import AppliedLogError, CheckpointRefusedError
-from streamrate.events import parse_event
+from streamrate.events import MatchEvent, event_digest, parse_event
 from streamrate.metrics import CONSUMER_STATES, ReplicaMetrics, ServiceMetrics
 from streamrate.models.base import Model, warm_up
 from streamrate.serve.livefeed import WatchRegistry
 from streamrate.stream.applied_log import LogEntry, id_key, parse_entry
-from streamrate.stream.apply import Applier, LiveModel, Status, now_ms
+from streamrate.stream.apply import Applier, LiveModel, Observer, Status, now_ms
 from streamrate.stream.checkpoints import describe_store, load_checked
 from streamrate.stream.reader import rows_of
+from streamrate.stream.writer import Followed
 
 log = logging.getLogger("streamrate.replica")
 REDIS_DOWN = (redis.ConnectionError, redis.TimeoutError)
@@ -77,15 +87,25 @@ class Follower:
         watch: WatchRegistry | None = None,
         publish: Callable[[list[tuple[str, str]]], None] | None = None,
         clock: Callable[[], float] = time.monotonic,
+        observers: Sequence[Observer] = (),
+        writer_state: bool = False,
     ) -> None:
         self.r, self.space, self.keys, self.store = client, space, keys, store
         self.build_model, self.settings, self.clock = build_model, settings, clock
         self.metrics, self.service_metrics = metrics, service_metrics
         self.live = LiveModel(build_model(), status="loading", writable=False)
         self.live.detail = "the checkpoint is not loaded yet"
+        self.observers = list(observers)
         self.applier = Applier(
-            self.live, watch if watch is not None else WatchRegistry(0, 0), keys.live_of, publish
+            self.live,
+            watch if watch is not None else WatchRegistry(0, 0),
+            keys.live_of,
+            publish,
+            self.observers,
         )
+        self.writer_state = writer_state
+        self.seen: SeenIds | None = None  # the writer's retry record (writer_state)
+        self.counters: dict[str, int] | None = None  # ... its counters (None: unknown)
         self.position = "0-0"  # id of the last applied-log entry handled
         self.epoch = 0
         self.loaded = False
@@ -111,6 +131,7 @@ class Follower:
         it (or after the checkpoint when that is newer). False when the checkpoint
         is not ahead of this replica (then nothing changes)."""
         got = load_checked(self.store, self.space, self.build_model)
+        ck: Checkpoint | None = None
         if got is None:
             model, applied, version, log_id, last_id = self.build_model(), 0, "0-0", "0-0", "0-0"
         else:
@@ -129,6 +150,8 @@ class Follower:
                 )
             self.epoch = max(self.epoch, start.epoch)
         warm_up(model)  # compile kernels before the lock, not under it
+        if self.writer_state:
+            self._writer_state_of(ck)
         with self.live.lock:
             self.live.model, self.live.version, self.live.applied = model, version, applied
         self.position = position
@@ -148,18 +171,52 @@ class Follower:
         self._notify()
         return True
 
+    def _writer_state_of(self, ck: Checkpoint | None) -> None:
+        """The retry record, counters and observers as the checkpoint holds them."""
+        sp = self.space
+        self.seen = ck.seen if ck is not None else SeenIds(sp.dedupe_keep_ids, sp.dedupe_window_s)
+        counts = ck.counters if ck is not None else {}
+        self.counters = {k: int(counts.get(k, 0)) for k in ("dead_lettered", "duplicate")}
+        load_parts(self.observers, ck.parts if ck is not None else {})
+
+    def followed(self) -> Followed | None:
+        """What a writer needs to go on from this replica's model (see the module
+        docstring); None when it is not known (not a standby's follower, nothing
+        applied yet, or a log entry without the writer's counters)."""
+        if not self.loaded or self.seen is None or self.counters is None:
+            return None
+        if self.live.applied == 0:
+            return None
+        return Followed(
+            self.live.model,
+            self.live.applied,
+            self.live.version,
+            self.position,
+            self.seen,
+            dict(self.counters),
+        )
+
+    def drain(self, between: Callable[[], None] = lambda: None) -> int:
+        """Apply what is in the log now (the writer is gone); entries handled.
+        ``between`` runs before each read (the new writer renews its lease there)."""
+        total = 0
+        while True:
+            between()
+            n = self.step(block_ms=None, wait=False)
+            total += n
+            if n == 0:
+                return total
+
     # -- following --------------------------------------------------------------
-    def step(self, block_ms: int | None = None) -> int:
-        """Read and handle one batch of log entries; returns entries handled."""
+    def step(self, block_ms: int | None = None, wait: bool = True) -> int:
+        """Read and handle one batch of log entries; returns entries handled
+        (``wait=False``: do not block when there is none)."""
         if not self.loaded:
             self.reload("initial")
         if self.clock() - self.checked_at >= 1.0:
             self.check_lag()
-        resp = self.r.xread(
-            {self.keys.applied: self.position},
-            count=READ_COUNT,
-            block=self.settings.block_ms if block_ms is None else block_ms,
-        )
+        block = (self.settings.block_ms if block_ms is None else block_ms) if wait else None
+        resp = self.r.xread({self.keys.applied: self.position}, count=READ_COUNT, block=block)
         rows = rows_of(resp)
         try:
             for sid, fields in rows:
@@ -196,6 +253,8 @@ class Follower:
                 (sid, parse_event(raw)) for sid, raw in zip(entry.ids, entry.events, strict=True)
             ]
             self.applier.apply(part)
+            if self.writer_state:
+                self._follow_writer_state(entry, part)
             lag_ms = max(now_ms() - id_key(entry.id)[0], 0)
             self.lag_ms.append(float(lag_ms))
             if self.metrics is not None:
@@ -203,6 +262,17 @@ class Follower:
                 self.metrics.lag_seconds.labels(**self._lbl).observe(lag_ms / 1000)
             self._notify()
         self.position = entry.id
+
+    def _follow_writer_state(self, entry: LogEntry, part: list[tuple[str, MatchEvent]]) -> None:
+        """Add the applied events to the retry record as the writer did
+        (:meth:`streamrate.stream.decide.Decider.remember`); take its counters."""
+        if self.seen is not None:
+            for sid, ev in part:
+                self.seen.add(ev.match_id, id_key(sid)[0] / 1000, event_digest(ev))
+        if entry.dead < 0 or entry.dupes < 0 or self.counters is None:
+            self.counters = None  # a writer of an older version: not known
+        else:
+            self.counters = {"dead_lettered": entry.dead, "duplicate": entry.dupes}
 
     def check_lag(self) -> None:
         """Measure how far behind the writer this replica is; reload when too far."""

@@ -40,11 +40,13 @@ from typing import Any
 import redis
 
 from streamrate.config import ReplicaSettings, SpaceKeys, SpaceSettings
+from streamrate.errors import ReadCutError
 from streamrate.metrics import ServiceMetrics
+from streamrate.pubsub import publish
 from streamrate.serve.queries import peek
 from streamrate.serve.responder import Responder, _Meter, busy_reply
 from streamrate.stream.apply import now_ms
-from streamrate.stream.reader import rows_of
+from streamrate.stream.reader import read_cut, rows_of
 
 log = logging.getLogger("streamrate.queries")
 REDIS_DOWN = (redis.ConnectionError, redis.TimeoutError)
@@ -97,13 +99,16 @@ class StreamResponder:
 
     def step(self, client: Any, block_ms: int = 100) -> int:
         """Read, answer and acknowledge one batch; returns requests handled."""
-        resp = client.xreadgroup(
-            self.settings.group,
-            self.name,
-            {self.keys.request_stream: ">"},
-            count=READ_COUNT,
-            block=block_ms,
-        )
+        try:
+            resp = client.xreadgroup(
+                self.settings.group,
+                self.name,
+                {self.keys.request_stream: ">"},
+                count=READ_COUNT,
+                block=block_ms,
+            )
+        except redis.ResponseError as exc:
+            raise read_cut(exc, self.keys.request_stream) from exc  # ReadCutError: read again
         rows = rows_of(resp)
         if rows:
             self._handle(client, rows)
@@ -135,7 +140,7 @@ class StreamResponder:
             self.answered += 1
         pipe = client.pipeline(transaction=False)
         for channel, body in out:
-            pipe.publish(channel, body)
+            publish(pipe, channel, body)
         pipe.xack(self.keys.request_stream, self.settings.group, *[sid for sid, _ in rows])
         pipe.execute()
 
@@ -180,7 +185,14 @@ class StreamResponder:
                             self.space.name,
                             self.name,
                         )
-                    self.step(client)
+                    try:
+                        self.step(client)
+                    except ReadCutError as exc:  # a slot moved: expected, read again
+                        self.metrics.reads_cut.labels(
+                            space=self.space.name, reader="responder"
+                        ).inc()
+                        log.warning("space %s: %s; reading again", self.space.name, exc)
+                        continue
                     if meter is not None:
                         meter.charge(stop)
                     delay = min_s

@@ -10,7 +10,7 @@ acknowledged on the event stream, checkpointed or dead-lettered here.
 from __future__ import annotations
 
 import threading
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import Any
 
 from streamrate.checkpoint import CheckpointStore, FileCheckpointStore, RedisCheckpointStore
@@ -22,6 +22,7 @@ from streamrate.replica.request_stream import StreamResponder
 from streamrate.serve.livefeed import WatchRegistry
 from streamrate.serve.queries import MAX_WATCH
 from streamrate.serve.responder import Responder
+from streamrate.stream.apply import Observer
 
 ClientFactory = Callable[[], Any]
 
@@ -36,6 +37,8 @@ class ReplicaSpace:
         clients: ClientFactory,
         metrics: ServiceMetrics,
         replica_metrics: ReplicaMetrics,
+        observers: Sequence[Observer] = (),
+        writer_state: bool = False,
     ) -> None:
         self.settings, self.space, self.clients = settings, space, clients
         self.keys = settings.keys(space)
@@ -55,6 +58,8 @@ class ReplicaSpace:
             settings.replica,
             replica_metrics,
             metrics,
+            observers=observers,
+            writer_state=writer_state,  # a standby: ready to become the writer
         )
         self.responder = Responder(
             settings, space, self.keys, clients, metrics, self.follower.live, watch
@@ -62,20 +67,25 @@ class ReplicaSpace:
         self.stream = StreamResponder(space, self.keys, settings.replica, self.responder, metrics)
         self.fatal: Exception | None = None
 
-    def threads(self, stop: threading.Event) -> list[threading.Thread]:
+    def threads(self, stop: threading.Event, answer: bool = True) -> list[threading.Thread]:
+        """The follower's thread and (``answer``) the request-stream responder's."""
         rs = self.settings.redis
         name = self.space.name
-        return [
+        out = [
             threading.Thread(
                 target=self.follower.run,
                 args=(stop, rs.reconnect_min_s, rs.reconnect_max_s),
                 name=f"replica-{name}",
                 daemon=True,
-            ),
-            threading.Thread(
-                target=self.stream.run,
-                args=(stop, self.clients, rs.reconnect_min_s, rs.reconnect_max_s),
-                name=f"responder-{name}",
-                daemon=True,
-            ),
+            )
         ]
+        if answer:
+            out.append(
+                threading.Thread(
+                    target=self.stream.run,
+                    args=(stop, self.clients, rs.reconnect_min_s, rs.reconnect_max_s),
+                    name=f"responder-{name}",
+                    daemon=True,
+                )
+            )
+        return out

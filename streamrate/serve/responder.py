@@ -6,6 +6,8 @@ counted in ``streamrate_query_loop_restarts_total``)::
     subscriber: SUBSCRIBE {sr:space}:q -> peek (id, reply_to, kind) -> FairQueue
     answerer:   FairQueue -> validate -> answer (model lock in slices) -> PUBLISH reply
 
+(In a Redis Cluster: SSUBSCRIBE and SPUBLISH, see :mod:`streamrate.pubsub`.)
+
 Everything done for one request (validation, answer, the reply's PUBLISH) sits
 inside that request's error handling: a request that fails is one error reply
 (when one can be sent), one rate-limited log line and one count in
@@ -51,6 +53,7 @@ from streamrate.config import Settings, SpaceKeys, SpaceSettings
 from streamrate.errors import EventError
 from streamrate.events import Matchup
 from streamrate.metrics import ServiceMetrics
+from streamrate.pubsub import Subscriber, publish
 from streamrate.serve.livefeed import SHARED_WATCHER, WatchRegistry
 from streamrate.serve.queries import (
     EXPENSIVE_KINDS,
@@ -323,7 +326,7 @@ class Responder:
             channel = item.reply_to if ok_reply and item.reply_to else self.keys.errors
             reply = json.dumps({"id": item.cid, "ok": False, "error": "internal error"})
         try:
-            client.publish(channel, reply)
+            publish(client, channel, reply)
         except REDIS_DOWN:
             self.metrics.query_failed.labels(space=name, stage="publish").inc()
             raise  # the connection is gone: the loop's outage handling takes over
@@ -338,7 +341,7 @@ class Responder:
             )
             note = {"id": item.cid, "ok": False, "error": f"reply not delivered: {_short(exc)}"}
             with contextlib.suppress(Exception):  # best effort: already counted and logged
-                client.publish(self.keys.errors, json.dumps(note))
+                publish(client, self.keys.errors, json.dumps(note))
 
     def _shed(self, item: Item, reason: str) -> None:
         self.metrics.query_shed.labels(space=self.space.name, reason=reason).inc()
@@ -375,7 +378,7 @@ class Responder:
             self._last_probe = now
             self._probe_sent = now
             probe = {"kind": PROBE_KIND, "nonce": self._nonce}
-            client.publish(self.keys.requests, json.dumps(probe))
+            publish(client, self.keys.requests, json.dumps(probe))
         return True
 
     def subscribe_loop(self, stop: threading.Event, outage: Any) -> None:
@@ -383,10 +386,11 @@ class Responder:
         name = self.space.name
         meter = _Meter(self.budget)
         client = self.clients()
-        pubsub = client.pubsub(ignore_subscribe_messages=True)
+        pubsub: Subscriber | None = None
         try:
-            pubsub.subscribe(self.keys.requests)
-            pubsub.get_message(timeout=1.0)  # the subscribe confirmation
+            # SUBSCRIBE, or SSUBSCRIBE on the node of the space's slot in a cluster;
+            # returns once the server confirmed it.
+            pubsub = Subscriber(client, self.keys.requests)
             outage.ok()
             self.listening.set()
             self._probe_sent = None
@@ -396,7 +400,10 @@ class Responder:
             while not stop.is_set():
                 self._renewed = False
                 try:
+                    renewals = pubsub.renewals
                     msg = pubsub.get_message(timeout=0.1)
+                    if pubsub.renewals != renewals:  # the slot moved; subscribed again
+                        self._on_reconnect(None)
                 except REDIS_DOWN:
                     if not self._renewed:  # not yet counted by the callback
                         self._on_reconnect(None)
@@ -416,7 +423,8 @@ class Responder:
                     return
                 meter.charge(stop)
         finally:
-            pubsub.close()
+            if pubsub is not None:
+                pubsub.close()
             client.close()
 
     def _on_reconnect(self, _connection: Any) -> None:
@@ -429,7 +437,8 @@ class Responder:
             "lost",
             logging.WARNING,
             "space %s: the request subscription's connection was closed"
-            " (for example on output-buffer overflow); subscribing again",
+            " (for example on output-buffer overflow) or its cluster slot moved;"
+            " subscribing again",
             self.space.name,
         )
 
@@ -458,7 +467,7 @@ class Responder:
         n = 0
         while self.outbox and n < 500:
             channel, reply = self.outbox.popleft()
-            pipe.publish(channel, reply)
+            publish(pipe, channel, reply)
             n += 1
         for res in pipe.execute(raise_on_error=False):
             if isinstance(res, Exception):

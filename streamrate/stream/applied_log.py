@@ -6,14 +6,19 @@ by the writer, read by every replica. Three kinds of entry::
     start    epoch E, seq N, ckpt_last_id, ckpt_log_id
              a writer started (or recovered) from the checkpoint that had applied
              N events; E is new (INCR {sr:space}:epoch)
-    chunk    epoch E, seq N, version V, ids "1-0,2-0,..", e0 e1 .. (raw event JSON)
+    chunk    epoch E, seq N, version V, ids "1-0,2-0,..", e0 e1 .. (raw event JSON),
+             dead D, dupes U
              the events applied after the first N, in this order; V is the id of
-             the last one
+             the last one; D and U: the entries up to V the writer dead-lettered
+             and skipped as retries, in all (its counters at V; absent in entries
+             of older versions)
     promote  epoch E, seq N, model M
              a promotion made after N events
 
 Dead letters and skipped retries never enter it: the writer decided, replicas
-only see what was applied. The checkpoint records the id of the newest entry it
+only see what was applied (and the counts D and U, so that a standby promoted
+from its replica continues the writer's counters, see
+:meth:`streamrate.stream.writer.Writer.adopt`). The checkpoint records the id of the newest entry it
 covers (``log_id``), so a replica that loads it knows where to continue.
 
 How a replica uses ``seq`` and ``epoch`` (see :mod:`streamrate.replica.follower`):
@@ -31,7 +36,7 @@ of an epoch older than the replica's are ignored (a writer that was replaced).
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any, Protocol
 
@@ -55,9 +60,21 @@ class LogEntry:
     model: str = ""
     ckpt_last_id: str = ""
     ckpt_log_id: str = ""
+    dead: int = -1  # -1: not recorded (an entry of an older version)
+    dupes: int = -1
 
 
-def chunk_fields(epoch: int, seq: int, ids: Sequence[str], raws: Sequence[bytes]) -> dict[str, Any]:
+Tally = Callable[[str], tuple[int, int]]
+"""Dead letters and skipped retries in all up to a stream id (the writer's counters there)."""
+
+
+def chunk_fields(
+    epoch: int,
+    seq: int,
+    ids: Sequence[str],
+    raws: Sequence[bytes],
+    tally: tuple[int, int] | None = None,
+) -> dict[str, Any]:
     """Fields of a ``chunk`` entry."""
     fields: dict[str, Any] = {
         "kind": "chunk",
@@ -66,6 +83,8 @@ def chunk_fields(epoch: int, seq: int, ids: Sequence[str], raws: Sequence[bytes]
         "version": ids[-1],
         "ids": ",".join(ids),
     }
+    if tally is not None:
+        fields["dead"], fields["dupes"] = tally
     for i, raw in enumerate(raws):
         fields[f"e{i}"] = raw
     return fields
@@ -125,7 +144,11 @@ def parse_entry(sid: bytes | str, fields: dict[bytes, bytes]) -> LogEntry:
         events = tuple(fields[f"e{i}".encode()] for i in range(len(ids)))
     except KeyError as exc:
         raise AppliedLogError(f"applied log entry {where}: lacks event {exc.args[0]!r}") from exc
-    return LogEntry(where, kind, epoch, seq, version=ids[-1], ids=ids, events=events)
+    dead = _count(fields, "dead", where) if b"dead" in fields else -1
+    dupes = _count(fields, "dupes", where) if b"dupes" in fields else -1
+    return LogEntry(
+        where, kind, epoch, seq, version=ids[-1], ids=ids, events=events, dead=dead, dupes=dupes
+    )
 
 
 def id_key(stream_id: str) -> tuple[int, int]:
@@ -167,11 +190,22 @@ class AppliedLogWriter:
         self.flush()
         return self.epoch
 
-    def chunk(self, seq: int, ids: Sequence[str], raws: Sequence[bytes]) -> None:
+    def chunk(
+        self, seq: int, ids: Sequence[str], raws: Sequence[bytes], tally: Tally | None = None
+    ) -> None:
         step = FENCED_CHUNK if self.fence is not None else max(len(ids), 1)
         for at in range(0, len(ids), step):
             part = slice(at, at + step)
-            self.pending.append(chunk_fields(self.epoch, seq + at, ids[part], raws[part]))
+            top = ids[part][-1]
+            self.pending.append(
+                chunk_fields(
+                    self.epoch,
+                    seq + at,
+                    ids[part],
+                    raws[part],
+                    None if tally is None else tally(top),
+                )
+            )
 
     def promote(self, seq: int, model: str) -> None:
         self.pending.append(promote_fields(self.epoch, seq, model))

@@ -19,6 +19,7 @@ from typing import Any, Literal
 
 from streamrate.events import MatchEvent
 from streamrate.models.base import Model, Prediction, Predictions
+from streamrate.pubsub import publish as publish_one
 from streamrate.serve.livefeed import WatchRegistry, live_messages
 
 Observer = Callable[[MatchEvent, Prediction, str], None]
@@ -155,7 +156,7 @@ def redis_publisher(client: Any) -> Callable[[list[tuple[str, str]]], None]:
     def publish(messages: list[tuple[str, str]]) -> None:
         pipe = client.pipeline(transaction=False)
         for channel, m in messages:
-            pipe.publish(channel, m)
+            publish_one(pipe, channel, m)
         pipe.execute()
 
     return publish

@@ -37,12 +37,16 @@ log = logging.getLogger("streamrate.lease")
 
 TAKE = """
 local cur = redis.call('GET', KEYS[1])
-if cur and cur ~= ARGV[3] then return 0 end
+local mine = ARGV[1] .. ' '
+if cur and cur ~= ARGV[3] and string.sub(cur, 1, #mine) ~= mine then return 0 end
 local epoch = redis.call('INCRBY', KEYS[2], 1)
-redis.call('SET', KEYS[1], ARGV[1] .. ' ' .. epoch, 'PX', ARGV[2])
+redis.call('SET', KEYS[1], mine .. epoch, 'PX', ARGV[2])
 return epoch
 """
-"""KEYS: lease, epoch. ARGV: holder, lease_ms, the value held now (or "")."""
+"""KEYS: lease, epoch. ARGV: holder, lease_ms, the value held now (or "").
+A lease naming this holder is taken again with a new epoch: a take whose reply
+was lost left it so (the holder id is unique to the process; the new epoch
+fences out anything written under the old value)."""
 
 RENEW = """
 if redis.call('GET', KEYS[1]) == ARGV[1] then
@@ -120,10 +124,19 @@ class Lease:
         self.epoch = 0
         self.lost = False
         self.renewed_at = -1e18
+        # take() and renew() one at a time: a renewal that read the value before a
+        # take() of the same writer gave it a new epoch would find the new value and
+        # call the lease lost (the writer takes it once to start and once more when
+        # its consumer starts, while the renewal thread already runs).
+        self._turn = threading.Lock()
 
     # -- taking, renewing, giving back --------------------------------------------
     def take(self) -> int:
         """Take the lease (free, or ours already) with a new epoch; 0 when another holds it."""
+        with self._turn:
+            return self._take()
+
+    def _take(self) -> int:
         got = int(
             self.r.eval(
                 TAKE,
@@ -147,6 +160,10 @@ class Lease:
 
     def renew(self) -> None:
         """Extend the lease; :class:`LeaseLostError` when it is no longer ours."""
+        with self._turn:
+            self._renew()
+
+    def _renew(self) -> None:
         if self.lost or not self.value:
             raise self._lost("it is not held")
         at = self.clock()

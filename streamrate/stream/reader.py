@@ -27,6 +27,7 @@ from typing import Any
 import redis
 
 from streamrate.config import SpaceKeys, SpaceSettings
+from streamrate.errors import ReadCutError
 
 log = logging.getLogger("streamrate.consumer")
 
@@ -66,6 +67,21 @@ def _text(value: Any) -> str:
     return value.decode() if isinstance(value, bytes) else str(value)
 
 
+def read_cut(exc: BaseException, where: str) -> BaseException:
+    """The error to raise for a failed blocked stream read: :class:`ReadCutError`
+    when the server cut it off because its key left the node (a cluster slot
+    moved: ``UNBLOCKED the stream key no longer exists``), else ``exc`` itself.
+
+    >>> type(read_cut(redis.ResponseError("UNBLOCKED the stream key no longer exists"), "k"))
+    <class 'streamrate.errors.ReadCutError'>
+    >>> type(read_cut(redis.ResponseError("NOGROUP No such key"), "k"))
+    <class 'redis.exceptions.ResponseError'>
+    """
+    if isinstance(exc, redis.ResponseError) and str(exc).startswith("UNBLOCKED"):
+        return ReadCutError(f"the blocked read of {where} was cut off ({exc}; a slot moved?)")
+    return exc
+
+
 class StreamReader:
     """The event stream and this consumer's group, for one space (client injected)."""
 
@@ -84,13 +100,16 @@ class StreamReader:
             entries = entries_of(resp)
             self.cursor = entries[-1][0].decode() if entries else ">"
             return entries
-        resp = self.r.xreadgroup(
-            sp.group,
-            sp.consumer,
-            {self.keys.events: ">"},
-            count=sp.batch_count,
-            block=sp.block_ms,
-        )
+        try:
+            resp = self.r.xreadgroup(
+                sp.group,
+                sp.consumer,
+                {self.keys.events: ">"},
+                count=sp.batch_count,
+                block=sp.block_ms,
+            )
+        except redis.ResponseError as exc:
+            raise read_cut(exc, self.keys.events) from exc  # ReadCutError: read again
         return entries_of(resp)
 
     def resync(self, last_id: str) -> None:

@@ -55,11 +55,13 @@ place, :meth:`Writer._at`.
 
 from __future__ import annotations
 
+import bisect
 import logging
 import math
 import threading
 import time
 from collections.abc import Callable, Sequence
+from dataclasses import dataclass
 
 import redis
 
@@ -70,7 +72,7 @@ from streamrate.errors import LeaseLostError, StreamrateError
 from streamrate.metrics import CONSUMER_STATES, ServiceMetrics
 from streamrate.models.base import Model, warm_up
 from streamrate.serve.livefeed import WatchRegistry
-from streamrate.stream.applied_log import AppliedLogWriter
+from streamrate.stream.applied_log import AppliedLogWriter, Tally
 from streamrate.stream.apply import Applier, LiveModel, Observer, Status, redis_publisher
 from streamrate.stream.checkpoints import Checkpointer, describe_store, load_checked, refusal
 from streamrate.stream.decide import DeadLetters, Decider, Decision, split_fresh
@@ -82,6 +84,20 @@ BEHIND_EVERY_S = 2.0
 """How often ``behind`` (the group's lag) is refreshed while the loop runs."""
 PROGRESS_EVERY_S = 30.0
 """How often the writer logs its progress (events applied, entries behind)."""
+
+
+@dataclass
+class Followed:
+    """What a replica followed, for :meth:`Writer.adopt`: its model at ``applied``
+    events, the last of them at stream id ``version``, the applied-log entry
+    ``position`` it reached, the retry record and counters at that event."""
+
+    model: Model
+    applied: int
+    version: str
+    position: str
+    seen: SeenIds
+    counters: dict[str, int]
 
 
 class Writer:
@@ -198,14 +214,9 @@ class Writer:
         history already in the stream is learned whatever position an older group
         had reached.
         """
-        epoch = 0
-        if self.lease is not None:  # the epoch is the fencing token of the lease
-            epoch = self.lease.take()
-            if not epoch:
-                raise LeaseLostError(
-                    f"writer lease {self.lease.key} is held by {self.lease.holder_now()!r}"
-                )
+        epoch = self._take_lease()
         had_checkpoint = self.load_checkpoint()
+        self.metrics.writer_starts.labels(**self._lbl, source="checkpoint").inc()
         ckpt = self.checkpoints
         # A new epoch: replicas ahead of this checkpoint reload it (see applied_log).
         self.log.start(self.live.applied, ckpt.ckpt_id, ckpt.log_id, epoch)
@@ -241,6 +252,57 @@ class Writer:
             )
         self.progress_applied = self.live.applied
 
+    def _take_lease(self) -> int:
+        """Take the lease with a new epoch (the fencing token); 0 without a lease."""
+        if self.lease is None:
+            return 0
+        epoch = self.lease.take()
+        if not epoch:
+            raise LeaseLostError(
+                f"writer lease {self.lease.key} is held by {self.lease.holder_now()!r}"
+            )
+        return epoch
+
+    def adopt(self, state: Followed, stop: threading.Event | None = None) -> None:
+        """Become the writer from a replica's model (a standby's), without loading
+        the checkpoint: the model, the retry record and the counters the replica
+        followed up to its last applied event (``state``; the observers are the
+        same objects the replica fed). The first checkpoint, at once, covers that
+        event; the stream is then re-read after it (own pending entries first, as
+        after :meth:`recover`): dead letters are written again under their own
+        ids (no duplicates), retries are recognised by the same record.
+        """
+        epoch = self._take_lease()
+        self.checkpoints.settle()
+        warm_up(state.model)
+        with self.live.lock:
+            self.live.model, self.live.applied = state.model, state.applied
+            self._at(state.version)
+        self.decider.seen = state.seen
+        self.counters.update(state.counters)
+        self.counters["applied"] = state.applied
+        self.loaded = True
+        ckpt = self.checkpoints
+        ckpt.restart("0-0", state.position)  # "0-0": the checkpoint below is written
+        self.log.last_id = state.position  # the newest applied-log entry the model covers
+        self.checkpoint()
+        self.log.start(state.applied, ckpt.ckpt_id, ckpt.log_id, epoch)
+        self.reader.place_group(self.last_id, move=False)
+        self.reader.ack_covered(self.last_id)
+        self.reader.claim_orphans(stop, self.metrics.claimed.labels(**self._lbl).inc)
+        self.reader.resync(self.last_id)
+        ckpt.last_at = self.clock()
+        self._gauges()
+        self.metrics.writer_starts.labels(**self._lbl, source="replica").inc()
+        log.info(
+            "space %s: writer from this standby's own replica, without reloading the "
+            "checkpoint (%d events applied, after stream id %s)",
+            self.space.name,
+            self.live.applied,
+            self.last_id,
+        )
+        self.progress_applied = self.live.applied
+
     def resync(self) -> None:
         """After a reconnect: re-read own pending entries after the last handled id."""
         self.reader.resync(self.last_id)
@@ -274,7 +336,7 @@ class Writer:
         if decision.dead and self.lease is not None:
             self.lease.check()
         self.dead.write(decision.dead)
-        self._apply(decision)
+        self._apply(decision, self._tally(decision))
         # Also when nothing moved forward: a late chunk set the version back.
         self._at(fresh.top if id_key(fresh.top) > id_key(self.last_id) else self.last_id)
         self.checkpoints.handled([sid for sid, _ in fresh.entries])
@@ -285,7 +347,20 @@ class Writer:
         self.log.flush()
         self.metrics.batch_seconds.labels(**self._lbl).observe(time.perf_counter() - t0)
 
-    def _apply(self, decision: Decision) -> None:
+    def _tally(self, decision: Decision) -> Tally:
+        """The counters of dead letters and retries up to a stream id of this batch
+        (logged with each chunk: a standby promoted at that chunk continues them)."""
+        dead0, dupes0 = self.counters["dead_lettered"], self.counters["duplicate"]
+        dead = sorted(id_key(sid) for sid, _, _ in decision.dead)
+        dupes = sorted(id_key(sid) for sid in decision.dupes)
+
+        def tally(upto: str) -> tuple[int, int]:
+            at = id_key(upto)
+            return dead0 + bisect.bisect_right(dead, at), dupes0 + bisect.bisect_right(dupes, at)
+
+        return tally
+
+    def _apply(self, decision: Decision, tally: Tally | None = None) -> None:
         """Apply in chunks through the shared :class:`Applier`; log each chunk."""
         valid, raws = decision.valid, decision.raws
         chunk = 1 if self.careful else self.space.lock_chunk
@@ -301,7 +376,7 @@ class Writer:
             self.decider.remember(part, decision.digests)
             for model in got.promoted:  # made before this chunk, under the same lock
                 self.log.promote(seq, model)
-            self.log.chunk(seq, [sid for sid, _ in part], [raws[sid] for sid, _ in part])
+            self.log.chunk(seq, [sid for sid, _ in part], [raws[sid] for sid, _ in part], tally)
             if got.published:
                 self.metrics.live_published.labels(**self._lbl).inc(got.published)
             self.applier.notify(part, got)

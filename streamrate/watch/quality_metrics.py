@@ -166,6 +166,31 @@ class QualityMetrics:
             registry=registry,
         )
 
+    def forget(self, space: str) -> int:
+        """Remove every series of ``space`` from this registry (this process no
+        longer writes it: the writer's process exports them); the series removed."""
+        per_model = ["space", "model"]
+        metrics: list[tuple[Gauge | Counter, list[str]]] = [
+            *((g, _QLABELS) for g in self.quality.values()),
+            *((g, _BIN_LABELS) for g in (self.bin_forecast, self.bin_observed, self.bin_events)),
+            (self.psi, [*per_model, "feature"]),
+            (self.change_detected, [*per_model, "direction"]),
+            (self.change_statistic, [*per_model, "direction"]),
+            (self.recal_slope, per_model),
+            (self.recal_intercept, per_model),
+        ]
+        removed = 0
+        for metric, names in metrics:
+            seen: set[tuple[str, ...]] = set()
+            for family in metric.collect():
+                for sample in family.samples:
+                    if sample.labels.get("space") == space:
+                        seen.add(tuple(sample.labels[n] for n in names))
+            for values in seen:
+                metric.remove(*values)
+                removed += 1
+        return removed
+
     def start_model(self, space: str, model: str) -> None:
         """Create the model's counters at 0 so that ``increase()`` sees the first firing."""
         for d in CHANGE_DIRECTIONS:
@@ -240,9 +265,11 @@ class QualityObserver:
         | None = None,
         on_change: Callable[[str, str], None] | None = None,
         clock: Callable[[], float] = time.monotonic,
+        exporting: bool = True,
     ) -> None:
         if publish_every_s < 0:
             raise ValueError("publish_every_s must not be negative")
+        self.exporting = exporting
         self.monitor = monitor
         self.metrics = metrics
         self.space = space
@@ -256,7 +283,8 @@ class QualityObserver:
     def __call__(self, event: MatchEvent, prediction: Prediction, model_name: str) -> None:
         fired = self.monitor.add(model_name, prediction.expected_score, event.score, event.context)
         for direction in fired:
-            self.metrics.change_fired(self.space, model_name, direction)
+            if self.exporting:
+                self.metrics.change_fired(self.space, model_name, direction)
             if self.on_change is not None:
                 self.on_change(model_name, direction)
         self._unpublished += 1
@@ -274,6 +302,17 @@ class QualityObserver:
     def publish(self) -> None:
         """Set every gauge from the monitor now."""
         self._publish(self.clock())
+
+    def export(self, on: bool) -> None:
+        """Start (publishing at once) or stop exporting the space's series. Only the
+        process writing the space exports them: a standby's replica keeps the
+        windows current without duplicating the writer's series; a writer that
+        stops (lease lost, space given back) removes its own."""
+        self.exporting = on
+        if on:
+            self.publish()
+        else:
+            self.metrics.forget(self.space)
 
     # -- state kept in the checkpoint (streamrate.checkpoint.Stateful) ------------------
     state_name = "quality"
@@ -297,6 +336,8 @@ class QualityObserver:
         self.publish()
 
     def _publish(self, now: float) -> None:
+        if not self.exporting:
+            return  # the windows go on; the writer's process exports them
         recs = self.recalibrators
         # A callable is asked at each publication: the live model may be replaced
         # (recovery from a checkpoint) while the observer stays.
@@ -306,9 +347,12 @@ class QualityObserver:
 
 
 def quality_observers(
-    space: str, settings: QualitySettings, metrics: QualityMetrics
+    space: str, settings: QualitySettings, metrics: QualityMetrics, exporting: bool = True
 ) -> list[QualityObserver]:
-    """The observers a space's consumer runs for these settings (none when disabled)."""
+    """The observers a space's consumer runs for these settings (none when disabled);
+    ``exporting=False``: they keep their windows without publishing until
+    :meth:`QualityObserver.export` (the service turns it on while it holds the
+    space's writer lease)."""
     if not settings.enabled:
         return []
     monitor = QualityMonitor(
@@ -321,4 +365,4 @@ def quality_observers(
             drift_fields=settings.drift_fields,
         )
     )
-    return [QualityObserver(monitor, metrics, space, settings.publish_every_s)]
+    return [QualityObserver(monitor, metrics, space, settings.publish_every_s, exporting=exporting)]

@@ -8,6 +8,10 @@ the whole process) by sending the full set again every ``probe_every_s``; that
 send doubles as the liveness probe, and a failed one turns the feed ``down``.
 When the feed comes back every watched pairing is asked again.
 
+With a Redis Cluster URL (``redis+cluster://``) both channels carry the space's
+hash tag: the feed publishes with ``SPUBLISH`` and subscribes with
+``SSUBSCRIBE`` on the node that owns the slot (:mod:`streamrate.pubsub`).
+
 How a watch is spelled sits in one place, :class:`PerClientWatch`: the web
 server's watch is its own (a ``watcher`` id with a time to live), never the
 watch list of another client.
@@ -25,10 +29,11 @@ from collections.abc import Callable
 from typing import Any, Protocol
 
 import redis
-import redis.asyncio as aredis
 
 from streamrate.config import SpaceKeys, WebSettings
+from streamrate.connect import async_clients
 from streamrate.errors import ServiceError
+from streamrate.pubsub import AsyncSubscriber, apublish
 from streamrate.web.hub import Hub, PairKey, Update, pairing_key
 
 log = logging.getLogger("streamrate.web")
@@ -117,7 +122,8 @@ class Feed:
         self.redis_url = redis_url
         self.status, self.detail = "starting", "connecting to the service"
         self.listening = asyncio.Event()
-        self._client: aredis.Redis | None = None
+        self._client: Any = None
+        self._node: Any = None  # a cluster's node client maker (sharded subscriptions)
         self._pending: dict[str, asyncio.Future[dict[str, Any]]] = {}
         self._synced: set[PairKey] = set()
         self._sync_lock = asyncio.Lock()
@@ -131,9 +137,10 @@ class Feed:
             self.status, self.detail = status, detail
             self.on_status(status, detail)
 
-    def client(self) -> aredis.Redis:
+    def client(self) -> Any:
+        """The asyncio client of one server, or of a Redis Cluster."""
         if self._client is None:
-            self._client = aredis.Redis.from_url(
+            self._client, self._node = async_clients(
                 self.redis_url, socket_timeout=5.0, socket_connect_timeout=2.0
             )
         return self._client
@@ -157,7 +164,7 @@ class Feed:
         self._pending[req["id"]] = fut
         try:
             try:
-                listeners = await self.client().publish(self.keys.requests, json.dumps(req))
+                listeners = await apublish(self.client(), self.keys.requests, json.dumps(req))
             except REDIS_DOWN as exc:
                 raise FeedDown(f"Redis unreachable: {exc}") from exc
             if listeners == 0:
@@ -270,14 +277,17 @@ class Feed:
         while not stop.is_set():
             pubsub = None
             try:
-                pubsub = self.client().pubsub(ignore_subscribe_messages=True)
-                await pubsub.subscribe(self.reply_channel, self.protocol.live_channel)
+                client = self.client()
+                pubsub = AsyncSubscriber(
+                    client, self._node, self.reply_channel, self.protocol.live_channel
+                )
+                await pubsub.start()
                 self.listening.set()
                 delay = 0.05
                 self._wake.set()  # (re)subscribed: probe at once
                 while not stop.is_set():
-                    msg = await pubsub.get_message(ignore_subscribe_messages=True, timeout=0.5)
-                    if msg is not None and msg.get("type") == "message":
+                    msg = await pubsub.get_message(timeout=0.5)
+                    if msg is not None:
                         ch = msg["channel"]
                         self._dispatch(ch.decode() if isinstance(ch, bytes) else ch, msg["data"])
             except REDIS_DOWN as exc:

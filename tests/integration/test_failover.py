@@ -4,8 +4,11 @@ A writer (``serve --role both``) and a standby (``serve --role standby``) share
 one space while events stream in. The writer is SIGKILLed (or SIGSTOPped past
 its lease and then continued); the standby takes the lease within the lease
 time plus one second (the bound the failover design promises), and the final
-model equals an uninterrupted run: nothing lost, nothing applied twice. A
-writer woken after losing its lease stops without writing.
+model equals an uninterrupted run: nothing lost, nothing applied twice. The
+standby becomes the writer from its own replica: it loads the checkpoint only
+once, when it starts following. A writer woken after losing its lease stops
+without writing, follows the new writer as a standby and takes the space back
+when that one leaves.
 """
 
 from __future__ import annotations
@@ -97,6 +100,16 @@ def _taken_over(r: redis.Redis, old: str, since: float) -> float:
     return time.monotonic() - since
 
 
+def _assert_promoted_without_reload(slog: Path) -> None:
+    """The standby became the writer from its own replica: the checkpoint was
+    loaded once, when the replica started, and never by the writer."""
+    text = slog.read_text()
+    assert "becomes the writer" in text
+    assert "without reloading the checkpoint" in text
+    assert text.count("replica loaded") == 1
+    assert "resuming from the" not in text  # the writer's load of the checkpoint
+
+
 def test_sigkill_of_the_writer_a_standby_takes_over_and_loses_nothing(
     redis_server: RedisServer, tmp_path: Path
 ) -> None:
@@ -121,7 +134,7 @@ def test_sigkill_of_the_writer_a_standby_takes_over_and_loses_nothing(
         assert standby.wait(30) == 0
     finally:
         _stop_all(writer, standby)
-    assert "becomes the writer" in slog.read_text()
+    _assert_promoted_without_reload(slog)
     ck = _checkpoint(r)
     assert ck is not None
     assert ck.applied == len(events)  # each unique event once
@@ -130,12 +143,12 @@ def test_sigkill_of_the_writer_a_standby_takes_over_and_loses_nothing(
     assert r.xlen("{sr:duel}:dead") == junk
 
 
-def test_a_writer_woken_after_losing_its_lease_stops_without_writing(
+def test_a_writer_woken_after_losing_its_lease_stops_writing_and_follows_as_a_standby(
     redis_server: RedisServer, tmp_path: Path
 ) -> None:
     lines, events, _ = world_lines(1500, seed=29)
     r = redis_server.client()
-    writer, standby, wlog, _, old = _start_pair(redis_server, tmp_path)
+    writer, standby, wlog, slog, old = _start_pair(redis_server, tmp_path)
     old_epoch = int(old.split()[1])
     sender = threading.Thread(
         target=send_events,
@@ -155,14 +168,22 @@ def test_a_writer_woken_after_losing_its_lease_stops_without_writing(
         ckpt_before = r.get(CKPT)
         log_len = r.xlen(APPLIED)
         os.kill(writer.pid, signal.SIGCONT)
-        assert writer.wait(30) == 2  # stops on its own: the lease is lost
+        # It stops writing (one line), then follows the new writer as a standby.
+        wait_for(lambda: "replica loaded" in wlog.read_text(), 30, "the woken writer to follow")
         assert r.get(CKPT) == ckpt_before  # nothing written by the woken writer
         assert r.xlen(APPLIED) == log_len
-        os.kill(standby.pid, signal.SIGTERM)
+        assert writer.poll() is None
+        assert wlog.read_text().count("lost (") == 1
+        os.kill(standby.pid, signal.SIGTERM)  # the new writer leaves: the old one takes over
         assert standby.wait(30) == 0
+        wait_for(lambda: "becomes the writer" in wlog.read_text(), 30, "the old writer to return")
+        wait_for(lambda: (_holder(r) or "").split(":")[1:2] == [str(writer.pid)], 30, "its lease")
+        wait_for(lambda: _all_covered(r), 30, "its checkpoint")
+        os.kill(writer.pid, signal.SIGTERM)
+        assert writer.wait(30) == 0
     finally:
         _stop_all(writer, standby)
-    assert "lost" in wlog.read_text().splitlines()[-1]
+    _assert_promoted_without_reload(slog)
     ck = _checkpoint(r)
     assert ck is not None
     # The token: the checkpoint's applied-log position is an entry of the new epoch,
