@@ -344,3 +344,39 @@ def test_any_crash_during_a_streamed_snapshot_save_ends_in_the_uninterrupted_sta
             w.live.model.to_state().arrays[name], arr, rtol=1e-12, err_msg=name
         )
     assert len(w.live.model._snapshots) == 0  # type: ignore[attr-defined]
+
+
+def test_a_save_that_fails_before_its_thread_starts_leaves_no_snapshot_open(
+    tmp_path: Path,
+) -> None:
+    from streamrate.dedupe import SeenIds
+    from streamrate.stream.apply import LiveModel
+    from streamrate.stream.checkpoints import Checkpointer
+
+    class BrokenLog:
+        def promote(self, seq: int, model: str) -> None:
+            return None
+
+        def flush(self) -> str:
+            raise ConnectionError("redis went away")
+
+    model = BladeChest(dims=2, backend="numpy")
+    model.learn_many(_events(0, 20, 10, seed=5))
+    live = LiveModel(model)
+    ck = Checkpointer(
+        FileCheckpointStore(tmp_path, SPACE.name),
+        None,  # type: ignore[arg-type]
+        BrokenLog(),  # type: ignore[arg-type]
+        live,
+        (),
+        ServiceMetrics(CollectorRegistry(), [SPACE.name]),
+        SPACE,
+        lambda: 0.0,
+        0,
+        background=True,
+    )
+    ck.handled([b"1-0"])
+    with pytest.raises(ConnectionError):
+        ck.save("1-0", SeenIds(10, 60), {}, wait=False)
+    assert len(model._snapshots) == 0 and not ck.in_flight
+    model.learn_many(_events(20, 30, 10, seed=6))  # no copies made for a dead snapshot

@@ -336,26 +336,31 @@ class Checkpointer:
                 live.changed = False
                 applied = live.applied
                 promoted, live.promoted = live.promoted, []
-            for model in promoted:  # in the state above: logged before it is saved
-                self.log.promote(applied, model)
-            log_id = self.log.flush()
-            contents = checkpoint_contents(
-                Checkpoint(
-                    state,
-                    last_id,
-                    applied,
-                    seen,
-                    dict(counters),
-                    parts=parts_of(self.observers),
-                    log_id=log_id,
+            try:
+                for model in promoted:  # in the state above: logged before it is saved
+                    self.log.promote(applied, model)
+                log_id = self.log.flush()
+                contents = checkpoint_contents(
+                    Checkpoint(
+                        state,
+                        last_id,
+                        applied,
+                        seen,
+                        dict(counters),
+                        parts=parts_of(self.observers),
+                        log_id=log_id,
+                    )
                 )
-            )
-            del state  # its arrays are in the contents now
-            state, extra = contents
-            del contents
-            if not inline:
-                state = private_arrays(state)  # the retry record's and parts' arrays
-                extra = copy.deepcopy(extra)
+                del state  # its arrays are in the contents now
+                state, extra = contents
+                del contents
+                if not inline:
+                    state = private_arrays(state)  # the retry record's and parts' arrays
+                    extra = copy.deepcopy(extra)
+            except BaseException:
+                if rows is not None:
+                    rows.close()  # no save will read it: the model copies no rows for it
+                raise
             job = _Save(state, extra, last_id, log_id, self.to_ack, self.since, t0, rows=rows)
             self.to_ack, self.since = [], 0
             self.last_at = self.clock()
