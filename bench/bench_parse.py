@@ -7,7 +7,11 @@ Prints microseconds per event for the validating decoder that the service uses
 the cost of merely decoding the same JSON without validation (stdlib ``json``),
 measured in the same run, and the ratio between them; then what the consumer
 adds per valid event (the time check against the stream id and the content
-digest of the retry record) as a ratio to parsing.
+digest of the retry record) as a ratio to parsing. Last, the writer's batch
+decoder (:func:`streamrate.decode.decode_events`, held to the model by
+``tests/test_decode.py``) on batches of 100 and 1000 payloads, per event, against
+``parse_event`` one payload at a time, with the digests of the batch
+(:func:`streamrate.events.event_digests`) against one :func:`event_digest` each.
 """
 
 from __future__ import annotations
@@ -15,7 +19,8 @@ from __future__ import annotations
 import json
 import timeit
 
-from streamrate.events import MatchEvent, event_digest, parse_event, time_problem
+from streamrate.decode import decode_events
+from streamrate.events import MatchEvent, event_digest, event_digests, parse_event, time_problem
 
 SOLO = (
     b'{"match_id": "m-000123", "finished_at": "2026-03-01T18:00:00Z", "first": ["kelvash"],'
@@ -48,6 +53,21 @@ def main() -> None:
             f"({fast / plain:4.2f}x) | parse_event (adds size check + messages) {full:5.2f} us"
             f" | consumer's time check + digest {extra:5.2f} us ({extra / full:4.2f}x parse)"
         )
+
+    for name, raw in (("solo", SOLO), ("trio with features", TEAMS)):
+        for size in (100, 1000):
+            raws = [raw.replace(b"m-0001", f"m-{k:06d}".encode()) for k in range(size)]
+            one = per_event_us(lambda raws=raws: [parse_event(x) for x in raws], 50) / size
+            batch = per_event_us(lambda raws=raws: decode_events(raws), 50) / size
+            evs = [parse_event(x) for x in raws]
+            stamps = [e.finished_at.timestamp() for e in evs]
+            dig1 = per_event_us(lambda evs=evs: [event_digest(e) for e in evs], 50) / size
+            digs = per_event_us(lambda e=evs, t=stamps: event_digests(e, t), 50) / size
+            print(
+                f"{name:>20}, batch {size:4d}: parse_event {one:5.2f} us | decode_events "
+                f"{batch:5.2f} us ({batch / one:4.2f}x) | event_digest {dig1:5.2f} us | "
+                f"event_digests {digs:5.2f} us ({digs / dig1:4.2f}x)"
+            )
 
 
 if __name__ == "__main__":

@@ -38,7 +38,7 @@ import redis
 from prometheus_client import CollectorRegistry
 
 from streamrate.checkpoint import FileCheckpointStore
-from streamrate.config import Settings, SpaceSettings
+from streamrate.config import CheckpointSettings, Settings, SpaceSettings
 from streamrate.consumer import Consumer, LiveModel
 from streamrate.metrics import ServiceMetrics
 from streamrate.models.registry import build_model
@@ -111,17 +111,29 @@ def empty_consumer(r: redis.Redis, group: str, batch: int) -> float:
     return n / (time.perf_counter() - t0)
 
 
-def real_consumer(r: redis.Redis, group: str, batch: int, ckpt_dir: str) -> tuple[float, int]:
+BACKGROUND = CheckpointSettings().background
+"""Whether checkpoints are written in a thread of their own: the service's default
+unless ``--checkpoint inline`` is given."""
+
+
+def make_writer(r: redis.Redis, group: str, batch: int, ckpt_dir: str) -> Consumer:
+    """The service's writer for one space, its settings as a service would have them
+    (default validation, retry record and checkpoint cadence; checkpoints to a file,
+    in the background as the service does by default: see :data:`BACKGROUND`)."""
     space = SpaceSettings(
         name="duel", model="blade_chest", model_settings=MODEL_SETTINGS, group=group,
         batch_count=batch, block_ms=1, checkpoint_every_events=10_000, checkpoint_every_s=5.0,
     )  # fmt: skip
     keys = Settings(spaces=(space,)).keys(space)
-    c = Consumer(
+    return Consumer(
         r, space, keys, FileCheckpointStore(ckpt_dir, group),
         ServiceMetrics(CollectorRegistry(), ["duel"]),
-        lambda: build_model("blade_chest", **MODEL_SETTINGS),
+        lambda: build_model("blade_chest", **MODEL_SETTINGS), background=BACKGROUND,
     )  # fmt: skip
+
+
+def real_consumer(r: redis.Redis, group: str, batch: int, ckpt_dir: str) -> tuple[float, int]:
+    c = make_writer(r, group, batch, ckpt_dir)
     c.recover()
     t0 = time.perf_counter()
     while True:
@@ -151,7 +163,8 @@ def query_latency(
 ) -> None:
     cfg = tmp / "serve.toml"
     cfg.write_text(
-        f'[redis]\nurl = "redis://127.0.0.1:{port}/0"\n[checkpoint]\ndir = "{tmp / "ck"}"\n'
+        f'[redis]\nurl = "redis://127.0.0.1:{port}/0"\n[metrics]\nenabled = false\n'
+        f'[checkpoint]\ndir = "{tmp / "ck"}"\n'
         '[[spaces]]\nname = "duel"\nmodel = "blade_chest"\ngroup = "served"\n'
         "batch_count = 200\ncheckpoint_every_events = 20000\n"
         "[spaces.model_settings]\ndims = 16\n"
@@ -166,7 +179,7 @@ def query_latency(
     try:
         while r.pubsub_numsub("{sr:duel}:q")[0][1] == 0:
             time.sleep(0.05)
-        reply_to = f"bench:{uuid.uuid4().hex}"
+        reply_to = f"{{sr:duel}}:q:reply:bench-{uuid.uuid4().hex}"  # the reply namespace
         ps = r.pubsub(ignore_subscribe_messages=True)
         ps.subscribe(reply_to)
         ps.get_message(timeout=1)
@@ -183,9 +196,11 @@ def query_latency(
                 r.publish("{sr:duel}:q", req)
                 m = reply(ps, log)
                 lat.append(time.perf_counter() - t0)
-                applied.append(json.loads(m["data"])["applied"])
+                applied.append(int(json.loads(m["data"]).get("applied", -1)))  # -1: not ready
             return lat, applied
 
+        while pairings(1)[1][-1] < 0:  # the service answers "not ready" until it has loaded
+            time.sleep(0.2)
         r_fill.start()
         lat, applied_during = pairings(n_queries)
         r_fill.join()
@@ -306,10 +321,21 @@ def main() -> None:
     ap.add_argument("--entities", type=int, default=5_000)
     ap.add_argument("--queries", type=int, default=3_000)
     ap.add_argument("--memory", action="store_true")
+    ap.add_argument(
+        "--only", choices=("throughput",), help="only the throughput ratios (no queries, lobby)"
+    )
+    ap.add_argument(
+        "--checkpoint", choices=("background", "inline"), help="how the writer stores its "
+        "checkpoints (default: as the service does, background unless configured otherwise)",
+    )  # fmt: skip
     args = ap.parse_args()
+    global BACKGROUND
+    if args.checkpoint:
+        BACKGROUND = args.checkpoint == "background"
     print(
         f"CPUs available to this process: {sorted(os.sched_getaffinity(0))} of {os.cpu_count()} "
-        "(redis-server, service and bench share them; no pinning)"
+        "(redis-server, service and bench share them; no pinning); checkpoints "
+        + ("in the background" if BACKGROUND else "inline")
     )
     with tempfile.TemporaryDirectory() as d:
         tmp = Path(d)
@@ -333,6 +359,8 @@ def main() -> None:
                     f"   ratio {full / base:.3f}   (medians of 3; ratios "
                     f"{', '.join(f'{f / b:.3f}' for f, b in zip(fulls, bases, strict=True))})"
                 )
+            if args.only == "throughput":
+                return
             filler = threading.Thread(
                 target=fill, args=(r, event_lines(200_000, args.entities, 9)), daemon=True
             )

@@ -172,6 +172,9 @@ def _sparse(
     width = max(map(len, maps), default=0)
     if width == 0:
         return np.full((n, 0), -1, dtype=np.int32), np.zeros((n, 0), dtype=np.float64)
+    got = hasher.category_rows(maps, width)
+    if got is not None:  # categories only: rows of the hasher's tables, no scaling
+        return got
     # Gather (slot, signed value) pairs in one flat list and convert once:
     # element-wise writes into numpy arrays cost more than the hashing.
     encoded = hasher.encoded_items

@@ -31,7 +31,7 @@ from __future__ import annotations
 
 import math
 import zlib
-from collections.abc import Callable, Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping, Sequence
 
 import numpy as np
 import numpy.typing as npt
@@ -54,6 +54,11 @@ class FeatureHasher:
         self._slots: dict[str, tuple[int, float]] = {}
         self._items: dict[tuple[str, str | float], tuple[int, float]] = {}
         self._maps: dict[tuple[tuple[str, str | float], ...], Encoded] = {}
+        # Mappings of categories only, as rows of two tables (slots, signed values),
+        # padded with -1 / 0 to the widest: a batch of them is two fancy indexings.
+        self._rows: dict[tuple[tuple[str, str | float], ...], int] = {}
+        self._table_idx = np.full((0, 0), -1, dtype=np.int32)
+        self._table_val = np.zeros((0, 0), dtype=np.float64)
 
     def slot(self, key: str) -> tuple[int, float]:
         """Return (slot index, sign) for a hashed key; cached, as keys repeat a lot."""
@@ -101,6 +106,50 @@ class FeatureHasher:
             if not numbers and len(self._maps) < 100_000:
                 self._maps[items] = hit
         return hit
+
+    def category_rows(
+        self, maps: Sequence[Mapping[str, str | float]], width: int
+    ) -> tuple[IntArray, FloatArray] | None:
+        """(slots, signed values) of a batch of mappings, shape ``(len(maps), width)``
+        padded with -1 / 0, when every mapping holds categories only (the common
+        context: map, mode, patch); None otherwise (numbers need scaling, each in
+        turn). The same pairs as :meth:`encoded_items`, in the same order."""
+        try:
+            keys: list[tuple[tuple[str, str | float], ...]] = list(
+                map(tuple, map(dict.items, maps))  # type: ignore[arg-type]
+            )
+        except TypeError:  # not plain dicts
+            return None
+        get = self._rows.get
+        rows = list(map(get, keys))
+        if None in rows:
+            for key in set(keys):
+                if key not in self._rows and not self._add_row(key):
+                    return None
+            rows = list(map(get, keys))
+        if self._table_idx.shape[1] < width:
+            return None
+        at = np.array(rows, dtype=np.intp)
+        return self._table_idx[at, :width], self._table_val[at, :width]
+
+    def _add_row(self, items: tuple[tuple[str, str | float], ...]) -> bool:
+        """Give a mapping of categories its table row (False: it has numbers, or the
+        table is full)."""
+        pairs, numbers = self.encoded_items(items)
+        if numbers or len(self._rows) >= 100_000:
+            return False
+        n, w = self._table_idx.shape
+        if len(pairs) > w or n == len(self._rows):
+            grown_n, grown_w = max(2 * n, 64), max(w, len(pairs))
+            idx = np.full((grown_n, grown_w), -1, dtype=np.int32)
+            val = np.zeros((grown_n, grown_w), dtype=np.float64)
+            idx[:n, :w], val[:n, :w] = self._table_idx, self._table_val
+            self._table_idx, self._table_val = idx, val
+        r = len(self._rows)
+        for j, (slot, v) in enumerate(pairs):
+            self._table_idx[r, j], self._table_val[r, j] = slot, v
+        self._rows[items] = r
+        return True
 
     def encode(self, values: Mapping[str, str | float]) -> tuple[IntArray, FloatArray]:
         """Sparse (indices, values) of one mapping; duplicates are kept (they add)."""

@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import hashlib
 import math
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterable, Iterator, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Annotated, Any
@@ -379,21 +379,48 @@ def event_digest(event: MatchEvent) -> bytes:
     >>> event_digest(a) == event_digest(b), len(event_digest(a))
     (True, 8)
     """
-    parts = [
-        event.match_id,
-        repr(event.finished_at.timestamp()),
-        "\x1f".join(event.first),
-        "\x1f".join(event.second),
-        repr(event.score),
-    ]
-    if event.context:
-        parts.append(_canonical_values(event.context))
-    if event.features:
-        parts.append(
-            "\x1c".join(f"{k}\x1b{_canonical_values(v)}" for k, v in sorted(event.features.items()))
+    return event_digests([event], [event.finished_at.timestamp()])[0]
+
+
+def event_digests(events: Sequence[MatchEvent], times: Sequence[float]) -> list[bytes]:
+    """:func:`event_digest` of each event of a batch, given their ``finished_at`` as
+    unix seconds (``times``, which the decoder has at hand); the canonical text of a
+    context of categories is kept, as contexts repeat from match to match."""
+    out: list[bytes] = []
+    append = out.append
+    blake2b = hashlib.blake2b
+    join = "\x1f".join
+    for event, t in zip(events, times, strict=True):
+        ctx = event.context
+        text = (
+            f"{event.match_id}\x1e{t!r}\x1e{join(event.first)}\x1e{join(event.second)}"
+            f"\x1e{event.score!r}"
         )
-    text = "\x1e".join(parts)
-    return hashlib.blake2b(text.encode("utf-8"), digest_size=8).digest()
+        if ctx:
+            text = f"{text}\x1e{_canonical_context(ctx)}"
+        if event.features:
+            feats = "\x1c".join(
+                f"{k}\x1b{_canonical_values(v)}" for k, v in sorted(event.features.items())
+            )
+            text = f"{text}\x1e{feats}"
+        append(blake2b(text.encode("utf-8"), digest_size=8).digest())
+    return out
+
+
+_canonical_contexts: dict[tuple[tuple[str, Any], ...], str] = {}
+
+
+def _canonical_context(ctx: dict[str, Any]) -> str:
+    """The canonical text of a context; kept for contexts of categories only (a number
+    never equals a string, so a context with numbers, where 0.0 and -0.0 would share
+    a key, never hits)."""
+    key = tuple(ctx.items())
+    canon = _canonical_contexts.get(key)
+    if canon is None:
+        canon = _canonical_values(ctx)
+        if len(_canonical_contexts) < 10_000 and all(type(v) is str for v in ctx.values()):
+            _canonical_contexts[key] = canon
+    return canon
 
 
 def _canonical_values(values: dict[str, Any]) -> str:

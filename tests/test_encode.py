@@ -102,3 +102,31 @@ def test_one_pass_encoding_equals_the_former_encoder(
         assert np.array_equal(a, b, equal_nan=True), name
     # New ids were handed the same rows, in event order.
     assert tables[0].ids == tables[1].ids
+
+
+context_maps = st.lists(
+    st.dictionaries(
+        st.sampled_from(["map", "mode", "patch", "region", "heat"]),
+        st.one_of(st.sampled_from(["saltflats", "glasswood", "duel", "1.4"]), st.floats(-5, 5)),
+        max_size=5,
+    ),
+    max_size=12,
+)
+
+
+@settings(max_examples=200)
+@given(st.lists(context_maps, min_size=1, max_size=5), st.integers(1, 64))
+def test_contexts_of_categories_from_the_table_equal_the_pair_by_pair_path(
+    batches: list[list[dict[str, str | float]]], width: int
+) -> None:
+    """The hasher's table of category maps (a batch = two fancy indexings) gives the
+    same slots and signed values as hashing each pair, batch after batch."""
+    from streamrate.batch import _sparse
+
+    fast, slow = FeatureHasher(width), FeatureHasher(width)
+    slow.category_rows = lambda maps, w: None  # type: ignore[method-assign]
+    for maps in batches:
+        a, b = _sparse(maps, fast), _sparse(maps, slow)
+        for x, y in zip(a, b, strict=True):
+            assert x.dtype == y.dtype and x.shape == y.shape
+            np.testing.assert_array_equal(x, y)

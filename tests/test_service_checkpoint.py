@@ -82,7 +82,7 @@ def test_retry_record_is_bounded_by_count_and_window(
         if t >= newest - window:
             assert mid in s
     back = SeenIds.from_arrays(keep, window, s.to_arrays())
-    assert list(back._ids) == list(s._ids)
+    assert back.ids() == s.ids()
 
 
 def test_file_store_is_atomic_and_missing_means_none(tmp_path: Path) -> None:

@@ -24,18 +24,30 @@ the dead letters the decision named.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any
+from operator import attrgetter, itemgetter, methodcaller
+from typing import Any, cast
 
+import numpy as np
 import redis
 
 from streamrate.deadletters import dead_fields
+from streamrate.decode import decode_events
 from streamrate.dedupe import SeenIds
 from streamrate.errors import EventError
-from streamrate.events import MatchEvent, event_digest, parse_event, time_problem
+from streamrate.events import (
+    EARLIEST_FINISH,
+    MatchEvent,
+    event_digest,
+    event_digests,
+    time_problem,
+)
 from streamrate.stream.reader import Entry, id_key
 
 DeadEntry = tuple[str, dict[bytes, bytes], str]
 """A dead letter to write: source stream id, its fields, the reason."""
+_FIRST = itemgetter(0)
+_MATCH_ID = attrgetter("match_id")
+_EARLIEST_S = EARLIEST_FINISH.timestamp()
 
 
 @dataclass(frozen=True)
@@ -111,51 +123,107 @@ class Decider:
         its entry was received (the stream id's clock), or before 2000, is a dead
         letter. A match id already applied (or earlier in this batch) is a retry
         when its content digest is the same, and a dead letter (conflict) when not.
+
+        The batch is handled as columns: one decoding call (:func:`decode_events`),
+        one time check, the digests in one pass, and one set operation against the
+        retry record when no match id repeats (the common case).
         """
         out = Decision()
-        batch: dict[str, bytes] = {}
+        if not entries:
+            return out
+        sids = stream_ids([sid for sid, _ in entries])
+        fields = [f for _, f in entries]
         fname = self.event_field.encode()
-        for sid_b, fields in entries:
-            sid = sid_b.decode()
-            if fields is None:
-                out.dead.append((sid, {}, "entry was deleted from the stream before it was read"))
-                continue
-            if sid in self.poison:
-                out.dead.append((sid, fields, self.poison[sid]))
-                continue
-            raw = fields.get(fname)
-            if raw is None:
-                out.dead.append((sid, fields, f"entry has no {self.event_field!r} field"))
-                continue
-            try:
-                ev = parse_event(raw)
-            except EventError as exc:
-                out.dead.append((sid, fields, str(exc)))
-                continue
-            problem = time_problem(ev, id_key(sid)[0], self.future_limit_s)
-            if problem is not None:
-                out.dead.append((sid, fields, problem))
-                continue
-            digest = event_digest(ev)
+        dead: list[tuple[int, DeadEntry]] = []  # (position in the batch, letter)
+        if not self.poison and all(fields):
+            at = list(range(len(entries)))
+            raws = list(map(methodcaller("get", fname), fields))  # type: ignore[arg-type]
+            if None in raws:
+                at, raws = _with_payload(entries, sids, fname, self, dead)
+        else:
+            at, raws = _with_payload(entries, sids, fname, self, dead)
+        decoded, times = decode_events(raws)
+        received_ms = millis([sids[k] for k in at])
+        doubtful: set[int] = set()
+        for j in _refused_or_untrusted(times, received_ms, self.future_limit_s):  # usually none
+            ev, k = decoded[j], at[j]
+            if isinstance(ev, EventError):
+                reason: str | None = str(ev)
+            else:  # the exact test decides, and words the reason
+                reason = time_problem(ev, received_ms[j], self.future_limit_s)
+            if reason is not None:
+                doubtful.add(j)
+                dead.append((k, (sids[k], fields[k] or {}, reason)))
+        if not doubtful:
+            events = cast(list[MatchEvent], decoded)
+            kept_at, kept_raws, kept_times = at, raws, times
+        else:
+            keep = [j for j in range(len(decoded)) if j not in doubtful]
+            events = [cast(MatchEvent, decoded[j]) for j in keep]
+            kept_at = [at[j] for j in keep]
+            kept_raws = [raws[j] for j in keep]
+            kept_times = [times[j] for j in keep]
+        digests = event_digests(events, kept_times)
+        mids = list(map(_MATCH_ID, events))
+        if len(set(mids)) == len(mids) and not self.seen.known(mids):
+            valid_sids = [sids[k] for k in kept_at]
+        else:
+            valid_sids, events, kept_raws, digests = self._retries(
+                sids, fields, kept_at, events, kept_raws, digests, dead, out.dupes
+            )
+        out.valid = list(zip(valid_sids, events, strict=True))
+        out.raws = dict(zip(valid_sids, kept_raws, strict=True))
+        out.digests = dict(zip(valid_sids, digests, strict=True))
+        if dead:
+            dead.sort(key=_FIRST)
+            out.dead = [letter for _, letter in dead]
+        return out
+
+    def _retries(
+        self,
+        sids: list[str],
+        fields: list[dict[bytes, bytes] | None],
+        at: list[int],
+        events: list[MatchEvent],
+        raws: list[bytes],
+        digests: list[bytes],
+        dead: list[tuple[int, DeadEntry]],
+        dupes: list[str],
+    ) -> tuple[list[str], list[MatchEvent], list[bytes], list[bytes]]:
+        """The valid events of a batch in which some match id was applied before or
+        comes twice: retries (skipped) and conflicts (dead letters) taken out."""
+        batch: dict[str, bytes] = {}
+        keep_sids: list[str] = []
+        keep_events: list[MatchEvent] = []
+        keep_raws: list[bytes] = []
+        keep_digests: list[bytes] = []
+        for k, ev, raw, digest in zip(at, events, raws, digests, strict=True):
             mid = ev.match_id
             if mid in batch or mid in self.seen:
                 known = batch[mid] if mid in batch else self.seen.digest(mid)
                 if known is None or known == digest:  # None: content not recorded (old record)
-                    out.dupes.append(sid)
+                    dupes.append(sids[k])
                 else:
-                    out.dead.append((sid, fields, _conflict(mid)))
+                    dead.append((k, (sids[k], fields[k] or {}, _conflict(mid))))
                 continue
             batch[mid] = digest
-            out.digests[sid] = digest
-            out.valid.append((sid, ev))
-            out.raws[sid] = raw
-        return out
+            keep_sids.append(sids[k])
+            keep_events.append(ev)
+            keep_raws.append(raw)
+            keep_digests.append(digest)
+        return keep_sids, keep_events, keep_raws, keep_digests
 
     def remember(self, part: list[tuple[str, MatchEvent]], digests: dict[str, bytes]) -> None:
         """Add applied events to the retry record: stream-id time and content digest."""
-        for sid, ev in part:
-            digest = digests.get(sid)
-            self.seen.add(ev.match_id, id_key(sid)[0] / 1000, digest or event_digest(ev))
+        if not part:
+            return
+        sids = [sid for sid, _ in part]
+        events = [ev for _, ev in part]
+        got = list(map(digests.get, sids))
+        if None in got:
+            got = [d or event_digest(ev) for d, ev in zip(got, events, strict=True)]
+        received_s = [ms / 1000 for ms in millis(sids)]
+        self.seen.add_many([ev.match_id for ev in events], received_s, b"".join(got))  # type: ignore[arg-type]
 
     # -- poison -----------------------------------------------------------------
     def failed(self, top_in_hand: str) -> None:
@@ -197,6 +265,56 @@ class DeadLetters:
                     self.r.xadd(self.key, letter, maxlen=self.keep, approximate=True)
             elif isinstance(res, Exception):
                 raise res
+
+
+def stream_ids(ids: list[bytes]) -> list[str]:
+    """Stream ids as text, in one decoding call (ids are ASCII digits and ``-``)."""
+    return b"\n".join(ids).decode("ascii").split("\n") if ids else []
+
+
+def millis(sids: list[str]) -> list[int]:
+    """The millisecond part of each stream id (its clock), parsed in one pass."""
+    parts = "-".join(sids).split("-")
+    if len(parts) != 2 * len(sids):  # an id without its sequence part
+        return [id_key(s)[0] for s in sids]
+    return list(map(int, parts[::2]))
+
+
+def _with_payload(
+    entries: list[Entry],
+    sids: list[str],
+    fname: bytes,
+    decider: Decider,
+    dead: list[tuple[int, DeadEntry]],
+) -> tuple[list[int], list[bytes]]:
+    """Positions and payloads of the entries that carry one; the others (deleted,
+    set aside as poison, no event field) become dead letters."""
+    at: list[int] = []
+    raws: list[bytes] = []
+    for k, (_, fields) in enumerate(entries):
+        sid = sids[k]
+        if fields is None:
+            dead.append((k, (sid, {}, "entry was deleted from the stream before it was read")))
+        elif sid in decider.poison:
+            dead.append((k, (sid, fields, decider.poison[sid])))
+        elif (raw := fields.get(fname)) is None:
+            dead.append((k, (sid, fields, f"entry has no {decider.event_field!r} field")))
+        else:
+            at.append(k)
+            raws.append(raw)
+    return at, raws
+
+
+def _refused_or_untrusted(
+    times: list[float], received_ms: list[int], future_limit_s: float
+) -> set[int]:
+    """Positions of refused payloads (their time is NaN) and of events finishing past
+    the future limit or before 2000: the test of :func:`time_problem`, on the whole
+    batch at once."""
+    t = np.asarray(times, dtype=np.float64)
+    limit = np.asarray(received_ms, dtype=np.float64) / 1000 + future_limit_s
+    bad = ~(t <= limit) | (t < _EARLIEST_S)  # NaN compares false: refused
+    return set(np.flatnonzero(bad).tolist()) if bad.any() else set()
 
 
 def _conflict(match_id: str) -> str:
