@@ -83,6 +83,7 @@ from streamrate.batch import EncodedBatch, count_matches, encode_events
 from streamrate.encode import EntityTable, FeatureHasher, RunningScale
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
+from streamrate.models._snapshot import RowSnapshot, Snapshots
 from streamrate.models.base import (
     GROW_ROWS,
     Model,
@@ -230,6 +231,7 @@ class MatchupModel(Model):
         self._feat = FeatureHasher(feature_width) if feature_width else None
         self.entities_ = EntityTable()
         self.fast_path = True  # tests switch it off to compare with the general loop
+        self._snapshots = Snapshots()  # copy-on-write snapshots being read (checkpoints)
         self._fresh_state()
 
     # -- settings -------------------------------------------------------------------
@@ -420,6 +422,8 @@ class MatchupModel(Model):
         if np.isnan(b.score).any():
             raise ConfigError("cannot learn from an event without a score")
         self._grow(len(self.entities_))
+        if len(self._snapshots):  # the rows this batch writes: keep a snapshot's values
+            self._snapshots.before_write(np.concatenate([b.first.ravel(), b.second.ravel()]))
 
     def learn_encoded(self, b: EncodedBatch) -> Predictions:
         """Sequential predict-then-learn over an encoded batch (``add=True`` encoding)."""
@@ -509,12 +513,30 @@ class MatchupModel(Model):
         return None if r < 0 or not self.uncertainty else float(self.acc_[r, 0])
 
     # -- persistence -------------------------------------------------------------------
-    def _state_arrays(self) -> dict[str, np.ndarray]:
+    def snapshot(self) -> tuple[ModelState, RowSnapshot]:
+        """:meth:`to_state` without copying the per-entity rows: those stay in a
+        copy-on-write :class:`~streamrate.models._snapshot.RowSnapshot` (each row
+        is copied only if a batch writes it before the snapshot is read and
+        closed). Every write to entity rows goes through :meth:`_check_learnable`,
+        which keeps the open snapshots."""
+        arrays = self._state_arrays(rows=False)
+        snap = RowSnapshot(self._entity_rows(), len(self.entities_))
+        self._snapshots.add(snap)
+        return ModelState(self.kind, self.state_version, self.get_params(), arrays), snap
+
+    def _entity_rows(self) -> dict[str, np.ndarray]:
+        """The live per-entity arrays (all their rows) under their saved names."""
+        rows: dict[str, np.ndarray] = {"own": self.own_, "acc": self.acc_}
+        if self._timed:
+            rows["last_s"] = self.last_s_
+        if self.feature_width:
+            rows["feat_idx"], rows["feat_val"] = self.feat_idx_, self.feat_val_
+        return rows
+
+    def _state_arrays(self, rows: bool = True) -> dict[str, np.ndarray]:
         n = len(self.entities_)
         self._grow(n)
         arrays: dict[str, np.ndarray] = {
-            "own": self.own_[:n].copy(),
-            "acc": self.acc_[:n].copy(),
             "W": self.W_,
             "AW": self.AW_,
             "G": self.G_,
@@ -528,11 +550,8 @@ class MatchupModel(Model):
             **self.context_scale_.to_arrays("context_scale"),
             **self.feature_scale_.to_arrays("feature_scale"),
         }
-        if self._timed:
-            arrays["last_s"] = self.last_s_[:n].copy()
-        if self.feature_width:
-            arrays["feat_idx"] = self.feat_idx_[:n].copy()
-            arrays["feat_val"] = self.feat_val_[:n].copy()
+        if rows:
+            arrays.update({k: v[:n].copy() for k, v in self._entity_rows().items()})
         return arrays
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
