@@ -6,16 +6,22 @@ season pulls touching every row) reads as the model's state when it was taken.""
 
 from __future__ import annotations
 
+import threading
 from datetime import UTC, datetime, timedelta
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from prometheus_client import CollectorRegistry
 
+from streamrate.checkpoint import FileCheckpointStore, decode_checkpoint
 from streamrate.config import SpaceSettings
+from streamrate.dedupe import SeenIds
 from streamrate.events import MatchEvent
+from streamrate.metrics import ServiceMetrics
 from streamrate.models._snapshot import (
     CopyOnWriteRows,
     JoinedSnapshot,
@@ -25,6 +31,8 @@ from streamrate.models._snapshot import (
 from streamrate.models.base import Model, ModelState
 from streamrate.models.registry import build_model, model_from_state
 from streamrate.statefile import state_from_bytes, state_to_bytes
+from streamrate.stream.apply import LiveModel
+from streamrate.stream.checkpoints import Checkpointer, private_arrays
 
 START = datetime(2026, 3, 1, tzinfo=UTC)
 SEASONS = ("spring", "autumn", "winter")
@@ -85,6 +93,21 @@ def _build(name: str) -> Model:
     return build_model(kind, **kw)
 
 
+def _now(model: Model) -> ModelState:
+    """The model's whole state now, every array a copy of its own (``to_state`` may
+    hand out live arrays of the shared parameters)."""
+    st_ = model.to_state()
+    return ModelState(
+        st_.kind, st_.version, st_.params, {k: a.copy() for k, a in st_.arrays.items()}
+    )
+
+
+def _taken(model: Model) -> tuple[ModelState, Any]:
+    """A snapshot as the writer takes it: the state made private at once."""
+    state, snap = snapshot_state(model)
+    return private_arrays(state), snap
+
+
 def _read(state: ModelState, snap: Any) -> ModelState:
     """The state and the snapshot's rows, through the checkpoint file format."""
     sources = {name: SnapshotArray(snap, name) for name in snap.names}
@@ -111,8 +134,8 @@ def _run_on(model: Model, batch: bool, plan: list[tuple[int, bool, int]], at: in
 def test_a_snapshot_is_the_state_when_it_was_taken(name: str, batch: bool) -> None:
     model = _build(name)
     model.learn_many(_events(0, 60, 20, seed=1, teams=True))
-    want = model.to_state()
-    state, snap = snapshot_state(model)
+    want = _now(model)
+    state, snap = _taken(model)
     assert snap is not None
     assert snap.names, "some member keeps its rows in the snapshot"
     assert not set(snap.names) & set(state.arrays)
@@ -134,8 +157,8 @@ def test_with_the_hook_off_the_snapshot_would_see_later_writes(
     monkeypatch.setattr(CopyOnWriteRows, "before_write", lambda self, rows: None)
     model = _build(name)
     model.learn_many(_events(0, 60, 20, seed=1))
-    want = model.to_state()
-    state, snap = snapshot_state(model)
+    want = _now(model)
+    state, snap = _taken(model)
     _run_on(model, False, [(20, False, 1)], at=60)
     got = _read(state, snap)
     snap.close()
@@ -145,8 +168,8 @@ def test_with_the_hook_off_the_snapshot_would_see_later_writes(
 def test_a_season_pull_copies_every_row_once() -> None:
     model = build_model("bayes_strength", period_field="season", period_pull=0.5)
     model.learn_many(_events(0, 40, 12, seed=2))
-    want = model.to_state()
-    state, snap = snapshot_state(model)
+    want = _now(model)
+    state, snap = _taken(model)
     n = len(model.entities_)
     model.learn_many(_events(40, 41, 12, seed=3, season=1))  # a pull: every row
     assert snap.rows_copied == n
@@ -211,8 +234,8 @@ def test_any_run_of_writes_leaves_the_snapshot_as_taken(
 ) -> None:
     model = _build(name)
     model.learn_many(_events(0, 30, max(before, 4), seed=before))
-    want = model.to_state()
-    state, snap = snapshot_state(model)
+    want = _now(model)
+    state, snap = _taken(model)
     assert snap is not None
     names = snap.names
     early = {n: list(snap.slices(n)) for n in names[:reads_first]}  # read, then copied no more
@@ -239,3 +262,78 @@ class _Rest:
 
     def slices(self, name: str) -> Any:
         return iter(self.early[name]) if name in self.early else self.snap.slices(name)
+
+
+# -- through the writer's checkpointer: the default model streamed into a file ------
+
+
+class _Reader:
+    def __init__(self) -> None:
+        self.acked: list[bytes] = []
+
+    def ack(self, ids: list[bytes]) -> None:
+        self.acked.extend(ids)
+
+    def trim(self, min_id: str) -> None:
+        return None
+
+
+class _Log:
+    def promote(self, seq: int, model: str) -> None:
+        return None
+
+    def flush(self) -> str:
+        return "0-0"
+
+    def trim(self, keep_from: str, min_entries: int) -> None:
+        return None
+
+
+@pytest.mark.parametrize("batch", [False, True])
+def test_a_background_checkpoint_of_the_default_model_is_the_model_it_was_taken_from(
+    tmp_path: Path, batch: bool
+) -> None:
+    """The served default, saved in the background by the writer's checkpointer
+    while it learns (under the model lock, as the writer does): the stored file
+    holds the model as it was when the save began, and is acknowledged."""
+    space = SpaceSettings(name="duel", checkpoint_every_events=1, checkpoint_every_s=10**6)
+    gate, started = threading.Event(), threading.Event()
+
+    class GatedStore(FileCheckpointStore):
+        def save_with(self, write: Any) -> None:
+            def gated(fh: Any) -> None:
+                started.set()
+                assert gate.wait(30), "the test never opened the gate"
+                write(fh)
+
+            super().save_with(gated)
+
+    model = _build("default")
+    model.learn_many(_events(0, 60, 20, seed=8, teams=True))
+    live = LiveModel(model)
+    reader = _Reader()
+    store = GatedStore(tmp_path, space.name)
+    ck = Checkpointer(
+        store,
+        reader,  # type: ignore[arg-type]
+        _Log(),  # type: ignore[arg-type]
+        live,
+        (),
+        ServiceMetrics(CollectorRegistry(), [space.name]),
+        space,
+        lambda: 0.0,
+        0,
+        background=True,
+    )
+    want = _now(model)
+    ck.handled([b"60-0"])
+    ck.save("60-0", SeenIds(10, 60), {}, wait=False)
+    assert ck.in_flight and started.wait(30)
+    with live.lock:  # the writer goes on applying while the file is written
+        _run_on(model, batch, [(20, True, 1), (500, False, 2)], at=60)
+    gate.set()
+    ck.settle()
+    got = decode_checkpoint(store.path.read_bytes(), 10, 1e12).state
+    _assert_same(got, want)
+    assert not any(len(m._snapshots) for m in model.model_.models_)  # type: ignore[attr-defined]
+    assert model.to_state().arrays["base.loss"].tolist() != want.arrays["base.loss"].tolist()
