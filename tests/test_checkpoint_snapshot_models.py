@@ -215,9 +215,9 @@ def test_a_failed_composite_snapshot_leaves_no_member_copying(
     assert all(not m._snapshots for m in members)
 
 
-@settings(max_examples=25, deadline=None)
+@settings(max_examples=40, deadline=None)
 @given(
-    name=st.sampled_from(["default", "elo", "glicko2", "trueskill", "bayes_strength"]),
+    name=st.sampled_from(list(SETUPS)),
     batch=st.booleans(),
     before=st.integers(2, 40),
     plan=st.lists(
