@@ -1,6 +1,25 @@
 """Resident memory of a model holding many entities, measured in a process of its own.
 
 Run by hand:  python bench/bench_memory.py [--entities 1000000] [--dims 16] [--batch 1000]
+              python bench/bench_memory.py --service [--entities 1000000] [--dims 16]
+                  [--env MALLOC_MMAP_THRESHOLD_=131072 ...]
+
+``--service`` measures the service itself: a ``streamrate serve`` subprocess
+(blade-chest, ``--dims``, default settings otherwise: background checkpoints
+to a file, retry record, quality windows; metrics off) against a
+``redis-server`` this script starts on a free loopback port in a temporary
+directory (no persistence) and stops by its PID. After a warm-up (1,000
+events among 100 entities, applied and acknowledged) it reads the service's
+VmRSS from ``/proc/PID/status`` and resets its peak (VmHWM, by writing 5 to
+``/proc/PID/clear_refs``); it then adds events that each name two new
+entities until ``--entities`` are known, waits until every one is applied and
+acknowledged (the group has no lag and nothing pending), and reads VmRSS and
+VmHWM again (sampled every 0.2 s meanwhile too). The state's own bytes are
+computed the same way as below, from the service's last checkpoint loaded in
+this process. Printed: RSS growth and peak growth per entity and as ratios to
+the state's own bytes (aims: at most 1.5 and 2).
+
+Without ``--service``:
 
 A child process (this script with ``--child``) builds a blade-chest model, warms
 it up (kernels compiled or loaded), reads its own VmRSS, clears its peak
@@ -148,15 +167,193 @@ def report(r: dict[str, float], dims: int, context: str, label: str) -> None:
           f"({peak / 2**20:,.0f} MiB){note}")  # fmt: skip
 
 
+def _proc_kb(pid: int, field: str) -> int:
+    with open(f"/proc/{pid}/status") as f:
+        for line in f:
+            if line.startswith(field + ":"):
+                return int(line.split()[1])
+    raise RuntimeError(f"{field} not in /proc/{pid}/status")
+
+
+def _own_bytes(model: Any) -> tuple[int, int]:
+    """(bytes of the per-entity arrays' rows in use, bytes of the id map): the
+    state's own bytes, as :func:`child` counts them."""
+    n = len(model.entities_)
+    table = model.entities_
+    arrays = [model.own_, model.acc_, model.last_s_, model.feat_idx_, model.feat_val_]
+    array_bytes = sum(a[:n].nbytes for a in arrays if a.shape[0]) + table.counts[:n].nbytes
+    id_bytes = (
+        sys.getsizeof(table._rows)
+        + sys.getsizeof(table._ids)
+        + sum(sys.getsizeof(s) for s in table._ids)
+    )
+    return array_bytes, id_bytes
+
+
+def service(n_ent: int, dims: int, batch: int, env: list[str]) -> None:
+    import json as _json
+    import os
+    import shutil
+    import signal
+    import socket
+    import tempfile
+    import time
+    from datetime import timedelta
+    from pathlib import Path
+
+    import redis
+
+    from streamrate.checkpoint import decode_checkpoint
+    from streamrate.models.registry import model_from_state
+
+    def free_port() -> int:
+        with socket.socket() as sock:
+            sock.bind(("127.0.0.1", 0))
+            return int(sock.getsockname()[1])
+
+    stream = "{sr:duel}:events"
+    now = datetime.now(UTC).replace(microsecond=0)
+
+    def line(k: int, a: str, b: str) -> str:
+        t = (now - timedelta(hours=2) + timedelta(milliseconds=k)).isoformat()
+        return _json.dumps({"match_id": f"m-{k}", "finished_at": t.replace("+00:00", "Z"),
+                            "first": [a], "second": [b], "score": k % 2,
+                            "context": {"map": ("saltflats", "glasswood")[k % 2]}})  # fmt: skip
+
+    with tempfile.TemporaryDirectory() as d:
+        tmp = Path(d)
+        port = free_port()
+        exe = shutil.which("redis-server") or "/usr/bin/redis-server"
+        rs = subprocess.Popen(
+            [exe, "--port", str(port), "--bind", "127.0.0.1", "--dir", d, "--save", "",
+             "--appendonly", "no", "--daemonize", "no"],
+            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+        )  # fmt: skip
+        svc: subprocess.Popen[bytes] | None = None
+        try:
+            r = redis.Redis(port=port)
+            for _ in range(500):
+                try:
+                    r.ping()
+                    break
+                except redis.ConnectionError:
+                    time.sleep(0.02)
+            cfg = tmp / "serve.toml"
+            cfg.write_text(
+                f'[redis]\nurl = "redis://127.0.0.1:{port}/0"\n'
+                f'[checkpoint]\ndir = "{tmp / "ck"}"\n[metrics]\nenabled = false\n'
+                '[[spaces]]\nname = "duel"\nmodel = "blade_chest"\n'
+                f"batch_count = {batch}\n[spaces.model_settings]\ndims = {dims}\n"
+            )
+            log = tmp / "serve.log"
+
+            def fill(lo: int, hi: int, ids: Any) -> None:
+                pipe = r.pipeline(transaction=False)
+                for k in range(lo, hi):
+                    a, b = ids(k)
+                    pipe.xadd(stream, {"event": line(k, a, b)})
+                    if (k - lo) % 5000 == 4999:
+                        pipe.execute()
+                pipe.execute()
+
+            def settled() -> bool:
+                groups = r.xinfo_groups(stream)
+                return bool(groups) and all(g["lag"] == 0 and g["pending"] == 0 for g in groups)
+
+            def wait(what: str, timeout_s: float = 1800.0) -> tuple[int, int]:
+                deadline = time.monotonic() + timeout_s
+                top_rss = 0
+                assert svc is not None
+                while not settled():
+                    if svc.poll() is not None or time.monotonic() > deadline:
+                        raise RuntimeError(f"{what}: service log:\n{log.read_text()[-3000:]}")
+                    top_rss = max(top_rss, _proc_kb(svc.pid, "VmRSS"))
+                    time.sleep(0.2)
+                return top_rss, _proc_kb(svc.pid, "VmRSS")
+
+            warm = 1000
+            fill(0, warm, lambda k: (f"warm-{k % 100}", f"warm-{(k + 1 + k % 7) % 100}"))
+            with open(log, "wb") as fh:
+                svc = subprocess.Popen(
+                    [sys.executable, "-m", "streamrate", "serve", "--config", str(cfg)],
+                    stdout=fh, stderr=subprocess.STDOUT,
+                    env={**os.environ, **dict(e.split("=", 1) for e in env)},
+                )  # fmt: skip
+            wait("warm-up")
+            time.sleep(1.0)  # a last checkpoint, quiet threads
+            rss0 = _proc_kb(svc.pid, "VmRSS")
+            try:
+                with open(f"/proc/{svc.pid}/clear_refs", "w") as f:
+                    f.write("5")
+                hwm0 = rss0
+            except OSError:
+                hwm0 = _proc_kb(svc.pid, "VmHWM")
+            t0 = time.perf_counter()
+            pairs = n_ent // 2
+            step = 50_000
+            top = 0
+            for lo in range(warm, warm + pairs, step):
+                hi = min(lo + step, warm + pairs)
+                fill(lo, hi, lambda k: (f"quill-{2 * (k - warm)}", f"quill-{2 * (k - warm) + 1}"))
+                top = max(top, _proc_kb(svc.pid, "VmRSS"))
+            top_wait, rss1 = wait("one million entities")
+            took = time.perf_counter() - t0
+            time.sleep(1.0)
+            rss1 = _proc_kb(svc.pid, "VmRSS")
+            hwm1 = _proc_kb(svc.pid, "VmHWM")
+            top = max(top, top_wait)
+            os.kill(svc.pid, signal.SIGTERM)
+            svc.wait(300)
+            svc = None
+            ck = decode_checkpoint((tmp / "ck" / "duel.ckpt.npz").read_bytes(), 10**6, 1e12)
+        finally:
+            if svc is not None:
+                svc.kill()
+                svc.wait()
+            rs.kill()
+            rs.wait()
+    model = model_from_state(ck.state)
+    array_bytes, id_bytes = _own_bytes(model)
+    n = len(model.entities_)  # type: ignore[attr-defined]
+    own = array_bytes + id_bytes
+    growth = (rss1 - rss0) * 1024
+    peak = (hwm1 - hwm0) * 1024
+    mib = 2**20
+    print(
+        f"streamrate serve (blade_chest d={dims}, batch {batch}), {n:,} entities "
+        f"({n - 100:,} added in {took:.0f} s), RSS of the service process"
+        f"{' with ' + ' '.join(env) if env else ''}:"
+    )
+    print(
+        f"  state's own bytes: {own / n:8.1f} per entity (arrays {array_bytes / n:.1f}, "
+        f"id map {id_bytes / n:.1f}); {own / mib:,.0f} MiB"
+    )
+    print(
+        f"  RSS {rss0 / 1024:,.0f} -> {rss1 / 1024:,.0f} MiB; growth {growth / n:8.1f} "
+        f"per entity = {growth / own:.2f} x own bytes (aim <= 1.5)"
+    )
+    print(
+        f"  peak (VmHWM) growth:  {peak / n:8.1f} per entity = {peak / own:.2f} x own bytes "
+        f"(peak {hwm1 / 1024:,.0f} MiB; aim <= 2); largest sampled RSS {top / 1024:,.0f} MiB"
+    )
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--entities", type=int, default=1_000_000)
     ap.add_argument("--dims", type=int, default=16)
     ap.add_argument("--batch", type=int, default=1000)
     ap.add_argument("--context", default="none", choices=("none", "stacked", "gated"))
+    ap.add_argument("--service", action="store_true", help="measure a streamrate serve process")
+    ap.add_argument(
+        "--env", action="append", default=[], help="KEY=VALUE for the service's environment"
+    )
     ap.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
     ap.add_argument("--former", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args()
+    if args.service:
+        service(args.entities, args.dims, args.batch, args.env)
+        return
     if args.child:
         got = child(args.entities, args.dims, args.batch, args.context, args.former)
         print(json.dumps(got))

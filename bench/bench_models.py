@@ -420,6 +420,10 @@ def speed_default(n: int, n_ent: int, chunk: int = 64) -> None:
         ("blade_chest d=16 (context stacked)", lambda: BladeChest(dims=16)),
         ("blade_chest d=16, uncertainty off", lambda: BladeChest(dims=16, uncertainty=False)),
         (served, lambda: build_model(space.model, **space.model_settings)),
+        # a candidate member alone: the diagonal Gaussian filter and the full
+        # covariance over the 48 most recent entities (here every event evicts)
+        ("bayes_strength (diagonal)", lambda: build_model("bayes_strength")),
+        ("kalman_strength (max_active=48)", lambda: build_model("kalman_strength")),
     ]
     rows = []
     for name, make in makers:

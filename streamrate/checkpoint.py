@@ -53,10 +53,10 @@ from __future__ import annotations
 import math
 import re
 import time
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Protocol
+from typing import IO, Any, Protocol
 
 import numpy as np
 
@@ -64,7 +64,7 @@ from streamrate.dedupe import SeenIds
 from streamrate.errors import CheckpointError, StateError
 from streamrate.events import bad_ids
 from streamrate.models.base import ModelState
-from streamrate.statefile import state_from_bytes, state_to_bytes, write_atomic
+from streamrate.statefile import state_from_bytes, state_to_bytes, write_atomic, write_atomic_with
 
 _PREFIX = "_ckpt_"
 _PART_PREFIX = "_part_"
@@ -391,6 +391,11 @@ class FileCheckpointStore:
 
     def save(self, data: bytes) -> None:
         write_atomic(self.path, data, None if self.fence is None else self.fence.check)
+
+    def save_with(self, write: Callable[[IO[bytes]], object]) -> None:
+        """:meth:`save` of what ``write`` writes into the file (streamed, never
+        whole in memory)."""
+        write_atomic_with(self.path, write, None if self.fence is None else self.fence.check)
 
 
 class RedisCheckpointStore:

@@ -344,9 +344,11 @@ def serve(
     """Consume the event stream, keep the model current, answer queries (until SIGTERM)."""
     from streamrate.connect import service_clients
     from streamrate.errors import ConfigError, StreamrateError
+    from streamrate.heap import fix_malloc_thresholds
     from streamrate.logs import setup_logging
     from streamrate.service import serve_forever
 
+    fix_malloc_thresholds()  # a long-running process: give freed large blocks back
     try:
         if role not in ("writer", "responder", "both", "standby", "shared"):
             raise ConfigError(f"--role {role!r}: one of writer, responder, both, standby, shared")

@@ -24,9 +24,9 @@ import math
 import os
 import tempfile
 import zipfile
-from collections.abc import Callable
+from collections.abc import Callable, Iterable, Mapping
 from pathlib import Path
-from typing import IO, Any
+from typing import IO, Any, Protocol
 
 import numpy as np
 
@@ -38,8 +38,20 @@ FORMAT_VERSION = 1
 _META = "__meta__"
 
 
-def state_to_bytes(state: ModelState, extra: dict[str, Any] | None = None) -> bytes:
-    """Encode a state (and optional JSON-able ``extra`` metadata) as npz bytes."""
+class ArraySource(Protocol):
+    """An array written piece by piece (a copy-on-write snapshot's rows): its shape
+    and type, then its rows in order as C-contiguous pieces."""
+
+    @property
+    def shape(self) -> tuple[int, ...]: ...
+
+    @property
+    def dtype(self) -> np.dtype[Any]: ...
+
+    def pieces(self) -> Iterable[np.ndarray]: ...
+
+
+def _meta_bytes(state: ModelState, extra: dict[str, Any] | None, names: Iterable[str]) -> bytes:
     meta = {
         "format": FORMAT_NAME,
         "format_version": FORMAT_VERSION,
@@ -48,19 +60,68 @@ def state_to_bytes(state: ModelState, extra: dict[str, Any] | None = None) -> by
         "params": state.params,
         "extra": extra or {},
     }
-    for name, arr in state.arrays.items():
+    for name in names:
         if name == _META:
             raise StateError(f"array name {_META!r} is reserved")
+    for name, arr in state.arrays.items():
         if np.asarray(arr).dtype == object:
             raise StateError(f"array {name!r} holds Python objects; only numbers are saved")
     try:
         meta_text = json.dumps(meta, sort_keys=True, allow_nan=False)
     except ValueError as exc:  # NaN or infinity in settings or metadata: not readable back
         raise StateError(f"state metadata must hold finite numbers only: {exc}") from exc
+    return meta_text.encode("utf-8")
+
+
+def write_state(
+    fh: IO[bytes],
+    state: ModelState,
+    extra: dict[str, Any] | None = None,
+    sources: Mapping[str, ArraySource] | None = None,
+) -> None:
+    """Write a state as an npz archive (stored, not compressed, as ``np.savez``)
+    to ``fh``; the arrays of ``sources`` are written piece by piece, so they are
+    never whole in memory. What :func:`state_from_bytes` reads back."""
+    sources = sources or {}
+    both = [*state.arrays, *sources]
+    if len(set(both)) != len(both):
+        raise StateError("an array is named twice")
+    meta = np.frombuffer(_meta_bytes(state, extra, both), dtype=np.uint8)
+    with zipfile.ZipFile(fh, mode="w", compression=zipfile.ZIP_STORED, allowZip64=True) as zf:
+        for name, arr in {_META: meta, **state.arrays}.items():
+            with zf.open(name + ".npy", "w", force_zip64=True) as out:
+                np.lib.format.write_array(out, np.asanyarray(arr), allow_pickle=False)
+        for name, src in sources.items():
+            dtype = np.dtype(src.dtype)
+            if dtype.kind not in _NUMBER_KINDS:
+                raise StateError(f"array {name!r} is of type {dtype}; only numbers are saved")
+            header = {
+                "descr": np.lib.format.dtype_to_descr(dtype),
+                "fortran_order": False,
+                "shape": tuple(src.shape),
+            }
+            want = math.prod(src.shape) * dtype.itemsize
+            got = 0
+            with zf.open(name + ".npy", "w", force_zip64=True) as out:
+                np.lib.format.write_array_header_2_0(out, header)
+                for piece in src.pieces():
+                    if piece.dtype != dtype:
+                        raise StateError(f"array {name!r}: a piece of type {piece.dtype}")
+                    data = np.ascontiguousarray(piece)
+                    out.write(data.data.cast("B"))
+                    got += data.nbytes
+            if got != want:
+                raise StateError(f"array {name!r}: {got} bytes written, its shape needs {want}")
+
+
+def state_to_bytes(
+    state: ModelState,
+    extra: dict[str, Any] | None = None,
+    sources: Mapping[str, ArraySource] | None = None,
+) -> bytes:
+    """Encode a state (and optional JSON-able ``extra`` metadata) as npz bytes."""
     buf = io.BytesIO()
-    meta_bytes = np.frombuffer(meta_text.encode("utf-8"), dtype=np.uint8)
-    members: dict[str, Any] = {_META: meta_bytes, **state.arrays}
-    np.savez(buf, **members)
+    write_state(buf, state, extra, sources)
     return buf.getvalue()
 
 
@@ -202,12 +263,21 @@ def write_atomic(
 
     ``before_replace`` runs after the data is on disk and before the rename; what
     it raises stops the write (the writer lease's fence)."""
+    write_atomic_with(path, lambda fh: fh.write(data), before_replace)
+
+
+def write_atomic_with(
+    path: Path | str,
+    write: Callable[[IO[bytes]], object],
+    before_replace: Callable[[], None] | None = None,
+) -> None:
+    """:func:`write_atomic` of what ``write`` writes into the file it is given."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
         with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
+            write(fh)
             fh.flush()
             os.fsync(fh.fileno())
         if before_replace is not None:

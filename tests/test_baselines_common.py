@@ -29,6 +29,8 @@ MODELS: list[tuple[str, dict[str, Any]]] = [
     ("elo", {"advantage_k": 0.0}),
     ("bayes_strength", {"period_field": "map", "period_pull": 0.2, "period_var": 0.1}),
     ("bayes_strength", {"newcomer_matches": 2, "shared_noise_per_day": 0.01}),
+    ("kalman_strength", {"period_field": "map", "period_pull": 0.2, "period_var": 0.1}),
+    ("kalman_strength", {"newcomer_matches": 2, "shared_noise_per_day": 0.01, "max_active": 7}),
     (
         "mixture",
         {
@@ -50,7 +52,14 @@ IDS = [f"{k}-{i}" for i, (k, _) in enumerate(MODELS)]
 SYMMETRIC = [
     (k, s)
     for k, s in MODELS
-    if k not in ("logistic_batch", "bayes_strength", "mixture", "recalibrated")  # learn an edge
+    if k
+    not in (
+        "logistic_batch",
+        "bayes_strength",
+        "kalman_strength",
+        "mixture",
+        "recalibrated",
+    )  # learn an edge
     and not s.get("first_advantage")
     and (k != "elo" or s.get("advantage_k") == 0.0)  # Elo learns a first-side edge by default
 ]
@@ -133,7 +142,12 @@ def test_learn_returns_the_prediction_made_before_the_update(
     for ev in stream(6, 10, start=300):
         before = m.predict(ev)
         got = m.learn(ev)
-        if settings_.get("period_s") or kind in ("bayes_strength", "mixture", "recalibrated"):
+        if settings_.get("period_s") or kind in (
+            "bayes_strength",
+            "kalman_strength",
+            "mixture",
+            "recalibrated",
+        ):
             # learn first inflates idle deviations (and may start a new period),
             # which predict (no clock) cannot.
             assert got.p_win == pytest.approx(before.p_win, abs=0.05)
@@ -160,7 +174,12 @@ def test_learn_batch_predicts_from_the_batch_start_state(
     evs = stream(8, 6, start=500)
     # Every prediction of a batch comes from the state at the batch start, which
     # is what predict() sees beforehand (idle-time inflation aside).
-    if settings_.get("period_s") or kind in ("bayes_strength", "mixture", "recalibrated"):
+    if settings_.get("period_s") or kind in (
+        "bayes_strength",
+        "kalman_strength",
+        "mixture",
+        "recalibrated",
+    ):
         pytest.skip("predict() does not know the clock; covered by the model's own tests")
     expected = [m.predict(ev) for ev in evs]
     got = m.learn_batch(evs)
@@ -184,7 +203,7 @@ def test_unknown_entities_get_the_prior(kind: str, settings_: dict[str, Any]) ->
     fresh = build_model(kind, **settings_)
     m = trained(kind, settings_)
     q = Matchup(first=("ghost-a",), second=("ghost-b",))
-    if kind in ("logistic_batch", "bayes_strength", "mixture", "recalibrated"):
+    if kind in ("logistic_batch", "bayes_strength", "kalman_strength", "mixture", "recalibrated"):
         # Only the learned first-side term separates two unknowns.
         assert fresh.predict(q).p_win == 0.5
     elif kind == "elo":

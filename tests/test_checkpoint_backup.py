@@ -130,13 +130,14 @@ def test_the_commands_print_one_line_and_exit_2_when_refused(
     _run(settings, server, LINES[:40], 40)
     ckpt = str(settings.checkpoint.dir)
     common = ["--set", f"checkpoint.dir={ckpt}", "--set", "spaces.0.name=duel"]
+    common += ["--set", "spaces.0.model=elo"]  # the model the checkpoint above holds
     runner = CliRunner()
     out = tmp_path / "b.ckpt"
     res = runner.invoke(app, ["checkpoint-backup", str(out), *common])
     assert res.exit_code == 0, res.output
     assert "40 events applied" in res.output and out.exists()
-    # the default settings ask for elo with compiled kernels: "compiled" is a
-    # runtime setting, so this checkpoint fits; another k does not
+    # the settings ask for elo with its default (compiled) kernels: "compiled" is
+    # a runtime setting, so this checkpoint fits; another model does not
     res = runner.invoke(app, ["checkpoint-restore", str(out), *common])
     assert res.exit_code == 2 and "running writer" in res.output
     res = runner.invoke(app, ["checkpoint-restore", str(out), *common, "--force"])

@@ -35,7 +35,15 @@ from streamrate.events import MatchEvent
 from streamrate.models.registry import build_model
 
 MEMBER = "resources/rdata/csv/vcd/Bundesliga.csv"
-ONLINE = ("elo", "glicko2", "trueskill", "bradley_terry", "blade_chest", "head_to_head")
+ONLINE = (
+    "recalibrated",  # the served default
+    "elo",
+    "glicko2",
+    "trueskill",
+    "bradley_terry",
+    "blade_chest",
+    "head_to_head",
+)
 LATER_FROM = 2000
 EARLIER_FROM = 1990
 

@@ -83,9 +83,9 @@ from streamrate.batch import EncodedBatch, count_matches, encode_events
 from streamrate.encode import EntityTable, FeatureHasher, RunningScale
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
+from streamrate.models._snapshot import CopyOnWriteRows
 from streamrate.models.base import (
     GROW_ROWS,
-    Model,
     ModelState,
     Prediction,
     Predictions,
@@ -129,7 +129,7 @@ def hashed_uniform(seed: int, lo: int, hi: int, width: int) -> np.ndarray:
     return (2.0 * u - 1.0).reshape(hi - lo, width)
 
 
-class MatchupModel(Model):
+class MatchupModel(CopyOnWriteRows):
     """Strength + blade-chest model; :class:`BradleyTerry`, :class:`BladeChest` and
     :class:`BladeChestDistance` are its presets.
 
@@ -420,6 +420,7 @@ class MatchupModel(Model):
         if np.isnan(b.score).any():
             raise ConfigError("cannot learn from an event without a score")
         self._grow(len(self.entities_))
+        self.before_batch(b)  # the rows this batch writes: keep a snapshot's values
 
     def learn_encoded(self, b: EncodedBatch) -> Predictions:
         """Sequential predict-then-learn over an encoded batch (``add=True`` encoding)."""
@@ -509,12 +510,19 @@ class MatchupModel(Model):
         return None if r < 0 or not self.uncertainty else float(self.acc_[r, 0])
 
     # -- persistence -------------------------------------------------------------------
-    def _state_arrays(self) -> dict[str, np.ndarray]:
+    def _entity_rows(self) -> dict[str, np.ndarray]:
+        """The live per-entity arrays (all their rows) under their saved names."""
+        rows: dict[str, np.ndarray] = {"own": self.own_, "acc": self.acc_}
+        if self._timed:
+            rows["last_s"] = self.last_s_
+        if self.feature_width:
+            rows["feat_idx"], rows["feat_val"] = self.feat_idx_, self.feat_val_
+        return rows
+
+    def _state_arrays(self, rows: bool = True) -> dict[str, np.ndarray]:
         n = len(self.entities_)
         self._grow(n)
         arrays: dict[str, np.ndarray] = {
-            "own": self.own_[:n].copy(),
-            "acc": self.acc_[:n].copy(),
             "W": self.W_,
             "AW": self.AW_,
             "G": self.G_,
@@ -528,11 +536,8 @@ class MatchupModel(Model):
             **self.context_scale_.to_arrays("context_scale"),
             **self.feature_scale_.to_arrays("feature_scale"),
         }
-        if self._timed:
-            arrays["last_s"] = self.last_s_[:n].copy()
-        if self.feature_width:
-            arrays["feat_idx"] = self.feat_idx_[:n].copy()
-            arrays["feat_val"] = self.feat_val_[:n].copy()
+        if rows:
+            arrays.update({k: v[:n].copy() for k, v in self._entity_rows().items()})
         return arrays
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:

@@ -30,6 +30,7 @@ BUILTIN: dict[str, str] = {
     "blade_chest": "streamrate.models.matchup:BladeChest",
     "blade_chest_dist": "streamrate.models.matchup:BladeChestDistance",
     "bayes_strength": "streamrate.models.bayes_strength:BayesStrength",
+    "kalman_strength": "streamrate.models.kalman_strength:KalmanStrength",
     "mixture": "streamrate.models.mixture:Mixture",
     "recalibrated": "streamrate.recalibrate:Recalibrated",
     "challengers": "streamrate.challengers:ChallengerSet",

@@ -42,9 +42,10 @@ from streamrate.config import SpaceSettings
 from streamrate.dedupe import SeenIds
 from streamrate.errors import CheckpointRefusedError, LeaseLostError, StreamrateError
 from streamrate.metrics import ServiceMetrics
+from streamrate.models._snapshot import RowSnapshot, SnapshotArray, snapshot_state
 from streamrate.models.base import Model, ModelState
 from streamrate.models.registry import model_from_state
-from streamrate.statefile import state_to_bytes
+from streamrate.statefile import state_to_bytes, write_state
 from streamrate.stream.applied_log import AppliedLogWriter
 from streamrate.stream.apply import LiveModel, Observer
 from streamrate.stream.reader import ACK_CHUNK, StreamReader, id_key
@@ -177,7 +178,10 @@ def private_arrays(state: ModelState) -> ModelState:
 @dataclass
 class _Save:
     """One checkpoint on its way to the store: its contents, the stream id and
-    applied-log position it covers, the entries it acknowledges once durable."""
+    applied-log position it covers, the entries it acknowledges once durable.
+    ``rows``: the model's per-entity rows, left in a copy-on-write snapshot that
+    is read while the state is written (streamed into a file store) and closed
+    once written, whether or not the save succeeds."""
 
     state: ModelState
     extra: dict[str, Any]
@@ -188,15 +192,24 @@ class _Save:
     started: float
     done: threading.Event = field(default_factory=threading.Event)
     error: BaseException | None = None
+    rows: RowSnapshot | None = None
 
     def run(self, store: CheckpointStore) -> None:
         """Encode and store (in the background thread or inline); never raises:
         an error is kept for the writer's thread (:meth:`Checkpointer.poll`)."""
+        snap = self.rows
+        sources = {n: SnapshotArray(snap, n) for n in snap.names} if snap is not None else {}
         try:
-            store.save(state_to_bytes(self.state, self.extra))
+            save_with = getattr(store, "save_with", None)
+            if callable(save_with):  # a file: streamed, the rows never whole in memory
+                save_with(lambda fh: write_state(fh, self.state, self.extra, sources))
+            else:
+                store.save(state_to_bytes(self.state, self.extra, sources))
         except Exception as exc:  # loop boundary of the saving thread: kept, reported
             self.error = exc
         finally:
+            if snap is not None:
+                snap.close()  # the model copies no more rows for it
             self.done.set()
 
 
@@ -208,9 +221,12 @@ class Checkpointer:
     cadence) or :meth:`covered` (re-delivered, only to acknowledge); nothing is
     acknowledged before a checkpoint covering it is durable.
 
-    With ``background`` the model lock is held only to copy the state
-    (:func:`private_arrays`); encoding and storing run in a thread of their own
-    while the writer goes on applying. At most one save is in flight: none is
+    With ``background`` the model lock is held only to take the state: a model
+    that keeps copy-on-write snapshots (the matchup models) leaves its
+    per-entity rows in one (:func:`~streamrate.models._snapshot.snapshot_state`),
+    copying a row only when a batch writes it before the save has read it; the
+    rest is copied (:func:`private_arrays`). Encoding and storing run in a
+    thread of their own while the writer goes on applying. At most one save is in flight: none is
     due while one is. The entries a save covers (those handled up to its last
     id) wait aside until the save is durable (:meth:`poll`), then are
     acknowledged; a save that fails acknowledges nothing, puts its entries back
@@ -310,34 +326,42 @@ class Checkpointer:
         t0 = time.perf_counter()
         live = self.live
         if self.since or self.ckpt_id != last_id or live.changed:
+            rows: RowSnapshot | None = None
             with live.lock:
-                state = live.model.to_state()
-                if not inline:
+                if inline:
+                    state = live.model.to_state()
+                else:
+                    state, rows = snapshot_state(live.model)
                     state = private_arrays(state)
                 live.changed = False
                 applied = live.applied
                 promoted, live.promoted = live.promoted, []
-            for model in promoted:  # in the state above: logged before it is saved
-                self.log.promote(applied, model)
-            log_id = self.log.flush()
-            contents = checkpoint_contents(
-                Checkpoint(
-                    state,
-                    last_id,
-                    applied,
-                    seen,
-                    dict(counters),
-                    parts=parts_of(self.observers),
-                    log_id=log_id,
+            try:
+                for model in promoted:  # in the state above: logged before it is saved
+                    self.log.promote(applied, model)
+                log_id = self.log.flush()
+                contents = checkpoint_contents(
+                    Checkpoint(
+                        state,
+                        last_id,
+                        applied,
+                        seen,
+                        dict(counters),
+                        parts=parts_of(self.observers),
+                        log_id=log_id,
+                    )
                 )
-            )
-            del state  # its arrays are in the contents now
-            state, extra = contents
-            del contents
-            if not inline:
-                state = private_arrays(state)  # the retry record's and parts' arrays
-                extra = copy.deepcopy(extra)
-            job = _Save(state, extra, last_id, log_id, self.to_ack, self.since, t0)
+                del state  # its arrays are in the contents now
+                state, extra = contents
+                del contents
+                if not inline:
+                    state = private_arrays(state)  # the retry record's and parts' arrays
+                    extra = copy.deepcopy(extra)
+            except BaseException:
+                if rows is not None:
+                    rows.close()  # no save will read it: the model copies no rows for it
+                raise
+            job = _Save(state, extra, last_id, log_id, self.to_ack, self.since, t0, rows=rows)
             self.to_ack, self.since = [], 0
             self.last_at = self.clock()
             self._job = job

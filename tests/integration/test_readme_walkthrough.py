@@ -90,7 +90,10 @@ EXPECT = [
     (("simulate",), r"wrote quillrock\.jsonl"),
     (("send",), r"sent 3000 entries to \{sr:duel\}:events"),
     (("ask", "--lobby"), r"\S+ \+ \S+  vs  \S+ \+ \S+: P\(first wins\) = 0\.\d{3} \[exact\]"),
-    (("ask",), r"P\(first wins\) = 0\.\d{3}  seen: nevjor: \d+, murnyeb: \d+  \(model blade_chest"),
+    (
+        ("ask",),
+        r"P\(first wins\) = 0\.\d{3}  seen: nevjor: \d+, murnyeb: \d+  \(model recalibrated",
+    ),
     # "watch" when a quality figure is past a warning level; both exit 0
     (("health",), r"(?m)^duel +consumer lag .*\n(?:.*\n)*overall: (ok|watch)$"),
 ]
