@@ -87,14 +87,27 @@ batch of 100 and found nothing (``bench/bench_service.py`` measures the writer
 with this setting, as the service runs it)."""
 
 
+_gc_tuned = threading.Event()
+
+
 def tune_gc() -> None:
     """Collect once, move what exists now (modules, settings, models loaded so
     far) out of the collector's sight for good (``gc.freeze``), and collect young
     objects less often (:data:`GC_THRESHOLDS`). Called once at start; garbage in
-    cycles is still collected, only later."""
+    cycles is still collected, only later. Each space's writer freezes again once
+    it has loaded its checkpoint (:func:`freeze_loaded`)."""
     gc.collect()
     gc.freeze()
     gc.set_threshold(*GC_THRESHOLDS)
+    _gc_tuned.set()
+
+
+def freeze_loaded() -> None:
+    """After a checkpoint is loaded (in a process that called :func:`tune_gc`):
+    what it loaded (the model's id list: one string per entity) is left out of
+    every later collection, so that a full collection does not walk it."""
+    if _gc_tuned.is_set():
+        gc.freeze()
 
 
 def redis_factory(settings: RedisSettings) -> ClientFactory:
@@ -325,6 +338,7 @@ class SpaceService:
                         c.adopt(handoff, stop)
                     else:
                         c.recover(stop)
+                    freeze_loaded()
                     must_recover = False
                     if not errors.streak:  # after errors: ready once a turn goes well
                         c.mark("ready", "applying events")
