@@ -333,6 +333,11 @@ class AppliedLogWriter:
         self.last_id = _text(got[-1])
         return self.last_id
 
+    @property
+    def waiting(self) -> bool:
+        """Whether anything is collected and not written yet."""
+        return bool(self.pending) or self._open is not None
+
     def carry(self, pipe: Any) -> tuple[int, Callable[[list[Any]], None]]:
         """Queue what :meth:`flush` would write on ``pipe`` (sent with the writer's
         next read: one round trip for both, see :meth:`StreamReader.read

@@ -316,7 +316,9 @@ class Writer:
             self.lease.ensure()  # after a pause: nothing is read on a lapsed lease
         # The applied log of the batch before goes with this read, in one round trip
         # (written before the read, so a blocking read does not hold it back).
-        if self.reader.carries:
+        if not self.log.waiting:
+            entries = self.reader.read()
+        elif self.reader.carries:
             entries = self.reader.read(self.log.carry)
         else:
             self.log.flush()
