@@ -80,7 +80,7 @@ class _Wire(msgspec.Struct, forbid_unknown_fields=True, gc=False):
     score: int | float
     context: dict[str, _Value] | msgspec.UnsetType = msgspec.UNSET
     features: dict[str, dict[str, _Value]] | msgspec.UnsetType = msgspec.UNSET
-    margin: int | float | None | msgspec.UnsetType = msgspec.UNSET
+    margin: int | float | msgspec.UnsetType | None = msgspec.UNSET
 
 
 _decode_wire = msgspec.json.Decoder(_Wire).decode

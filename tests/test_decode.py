@@ -296,11 +296,11 @@ def test_margins_take_the_fast_path_and_sign_conflicts_get_the_models_message() 
         b'{"match_id": "m-1", "finished_at": "2026-03-01T18:00:00Z", "first": ["kelvash"],'
         b' "second": ["morvenn"], "score": %s, "margin": %s}'
     )
-    for score, given, kept in ((b"1", b"3", 3.0), (b"0.5", b"-0.0", 0.0), (b"0", b"-1.5", -1.5)):
-        ev = fast_event(base % (score, given))
+    for score, sent, kept in ((b"1", b"3", 3.0), (b"0.5", b"-0.0", 0.0), (b"0", b"-1.5", -1.5)):
+        ev = fast_event(base % (score, sent))
         assert ev is not None and repr(ev.margin) == repr(kept)
-    for score, given in ((b"1", b"-1"), (b"0.5", b"2"), (b"0", b"0.5")):
-        raw = base % (score, given)
+    for score, sent in ((b"1", b"-1"), (b"0.5", b"2"), (b"0", b"0.5")):
+        raw = base % (score, sent)
         assert fast_event(raw) is None
         (got,), _ = decode_events([raw])
         assert str(got) == "margin: must be > 0 only when score is 1 and < 0 only when score is 0"
