@@ -166,8 +166,8 @@ def test_without_margins_it_is_bayes_strength() -> None:
 
 
 def test_margins_change_the_forecasts_and_a_wider_margin_moves_further() -> None:
-    def after(margin: float | None) -> float:
-        m = MarginStrength(result_with_margin=False)
+    def after(margin: float | None, cap: float = 1e9) -> float:
+        m = MarginStrength(result_with_margin=False, margin_cap=cap)
         m.learn(
             MatchEvent(
                 match_id="q-1",
@@ -182,6 +182,7 @@ def test_margins_change_the_forecasts_and_a_wider_margin_moves_further() -> None
 
     assert 0.0 < after(1.0) < after(3.0) < after(6.0)
     assert after(None) > 0.0  # the result alone
+    assert after(6.0, cap=2.0) == after(2.0)
 
 
 def test_compiled_and_plain_loops_agree_and_the_state_round_trips() -> None:
