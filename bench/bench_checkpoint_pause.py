@@ -1,9 +1,12 @@
 """The longest pause of the apply loop while checkpoints are written.
 
-Run by hand:  python bench/bench_checkpoint_pause.py [--entities 1000000] [--dims 16]
+Run by hand:  python bench/bench_checkpoint_pause.py [--model blade_chest|default]
+[--entities 1000000] [--dims 16]
 (``uptime`` before and after: the load of the machine sets the wall-clock pauses)
 
-Builds a blade-chest model holding ``--entities`` entities (d = ``--dims``), then
+Builds a model holding ``--entities`` entities (``--model blade_chest``, the
+default: blade-chest d = ``--dims``; ``--model default``: the served default, a
+recalibrated mixture of three Gaussian-strength members and blade-chest d=8), then
 runs the writer's apply loop twice on it in the same process: events applied in
 chunks of ``lock_chunk`` under the model lock, a checkpoint due every
 ``--every`` events, stored through the writer's own
@@ -21,7 +24,8 @@ next: the chunk itself plus whatever the loop did in between (a checkpoint).
 Printed per mode: the longest pause in wall-clock time and in the loop
 thread's CPU time (``time.thread_time``: what the loop itself did, without the
 time other processes or the saving thread kept it off a core), the 99th
-percentile, the median chunk, the longest ``save`` call, the rows the snapshots
+percentile, the median chunk, the longest ``save`` call, the longest time a
+``save`` call held the model lock (taking the state), the rows the snapshots
 copied, the checkpoints completed; then the ratio of the longest pauses
 (synchronous over background). The stream reader and applied log are stand-ins
 that only count (Redis is not what is measured). On a shared two-core machine
@@ -32,8 +36,10 @@ from __future__ import annotations
 
 import argparse
 import tempfile
+import threading
 import time
 from datetime import UTC, datetime, timedelta
+from typing import Any
 
 import numpy as np
 from prometheus_client import CollectorRegistry
@@ -44,9 +50,9 @@ from streamrate.dedupe import SeenIds
 from streamrate.events import MatchEvent
 from streamrate.metrics import ServiceMetrics
 from streamrate.models._snapshot import RowSnapshot
-from streamrate.models.base import ModelState, warm_up
+from streamrate.models.base import Model, ModelState, warm_up
 from streamrate.models.matchup import BladeChest
-from streamrate.models.registry import model_from_state
+from streamrate.models.registry import build_model, model_from_state
 from streamrate.stream.apply import LiveModel
 from streamrate.stream.checkpoints import Checkpointer
 
@@ -96,12 +102,44 @@ def events(lo: int, hi: int, n_ent: int, rng: np.random.Generator) -> list[Match
     ]
 
 
-def build(n_ent: int, dims: int, learned: int = 4000) -> BladeChest:
+class TimedLock:
+    """The model lock, also timing how long it is held while ``armed`` (a save)."""
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self.armed = False
+        self.longest = 0.0
+        self._t0 = 0.0
+
+    def acquire(self, *args: Any) -> bool:
+        got = self._lock.acquire(*args)
+        self._t0 = time.perf_counter()
+        return got
+
+    def release(self) -> None:
+        held = time.perf_counter() - self._t0
+        if self.armed:
+            self.longest = max(self.longest, held)
+        self._lock.release()
+
+    def __enter__(self) -> bool:
+        return self.acquire()
+
+    def __exit__(self, *exc: object) -> None:
+        self.release()
+
+
+def build(n_ent: int, dims: int, kind: str = "blade_chest", learned: int = 4000) -> Model:
     """A model of ``n_ent`` entities: ``learned`` of them learned from matches,
     their rows repeated to fill the rest (learning a million entities one match
     at a time would take minutes; what a checkpoint costs depends on the rows,
-    not on how they were learned)."""
-    model = BladeChest(dims=dims, context="stacked")
+    not on how they were learned). ``kind`` ``default``: the served default
+    model, whose members' rows (each member's ``entity_*`` and per-entity
+    arrays) are repeated the same way."""
+    if kind == "default":
+        model = build_model(SpaceSettings().model, **SpaceSettings().model_settings)
+    else:
+        model = BladeChest(dims=dims, context="stacked")
     warm_up(model)
     model.learn_many(
         [
@@ -120,14 +158,17 @@ def build(n_ent: int, dims: int, learned: int = 4000) -> BladeChest:
     state = model.to_state()
     k = len(model.entities_)
     arrays = dict(state.arrays)
+    ids = np.frombuffer(
+        "\n".join(f"quill-{i}" for i in range(n_ent)).encode("utf-8"), dtype=np.uint8
+    )
     for name, arr in state.arrays.items():
-        if name != "entity_ids" and arr.ndim >= 1 and arr.shape[0] == k:
+        if name.endswith("entity_ids"):
+            arrays[name] = ids.copy()
+        elif arr.ndim >= 1 and arr.shape[0] == k:
             reps = (-(-n_ent // k),) + (1,) * (arr.ndim - 1)
             arrays[name] = np.ascontiguousarray(np.tile(arr, reps)[:n_ent])
-    ids = "\n".join(f"quill-{i}" for i in range(n_ent)).encode("utf-8")
-    arrays["entity_ids"] = np.frombuffer(ids, dtype=np.uint8).copy()
     big = model_from_state(ModelState(state.kind, state.version, state.params, arrays))
-    assert isinstance(big, BladeChest)
+    assert len(big.entities_) == n_ent
     warm_up(big)
     return big
 
@@ -140,7 +181,10 @@ def run(
     reader, applied_log = CountingReader(), QuietLog()
     copied = [0]
     model = live.model
-    take = model.snapshot if isinstance(model, BladeChest) else None
+    take = getattr(model, "snapshot", None)
+    lock = live.lock
+    assert isinstance(lock, TimedLock)
+    lock.longest = 0.0
 
     def counted() -> tuple[ModelState, RowSnapshot]:  # counts the rows the snapshots copy
         assert take is not None
@@ -195,7 +239,9 @@ def run(
             ck.poll()
             if ck.due():
                 t0 = time.perf_counter()
+                lock.armed = True
                 ck.save(f"{lo + len(evs)}-0", seen, {}, wait=not background)
+                lock.armed = False
                 save_s = max(save_s, time.perf_counter() - t0)
                 saves += 1
         if mode != "none":
@@ -209,6 +255,7 @@ def run(
         "p99_ms": float(np.percentile(g, 99)),
         "median_ms": float(np.median(g)),
         "save_ms": save_s * 1000,
+        "lock_ms": lock.longest * 1000,
         "rows_copied": float(copied[0]),
         "checkpoints": float(saves),
         "acked": float(reader.acked),
@@ -217,19 +264,21 @@ def run(
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--model", choices=("blade_chest", "default"), default="blade_chest")
     ap.add_argument("--entities", type=int, default=1_000_000)
     ap.add_argument("--dims", type=int, default=16)
     ap.add_argument("--events", type=int, default=60_000, help="events applied per mode")
     ap.add_argument("--every", type=int, default=15_000, help="events between checkpoints")
     args = ap.parse_args()
     t0 = time.perf_counter()
-    model = build(args.entities, args.dims)
+    model = build(args.entities, args.dims, args.model)
+    name = f"blade_chest d={args.dims}" if args.model == "blade_chest" else "the default model"
     print(
-        f"blade_chest d={args.dims}, {len(model.entities_):,} entities "
+        f"{name} ({model.kind}), {len(model.entities_):,} entities "
         f"(built in {time.perf_counter() - t0:.0f} s); {args.events:,} events per mode, "
         f"a checkpoint every {args.every:,}"
     )
-    live = LiveModel(model)
+    live = LiveModel(model, lock=TimedLock())  # type: ignore[arg-type]
     chunk = SpaceSettings().lock_chunk
     got = {}
     for mode in ("none", "synchronous", "background"):
@@ -238,7 +287,8 @@ def main() -> None:
         print(
             f"  {mode:>11}: longest pause {r['max_ms']:7.1f} ms (loop CPU {r['cpu_max_ms']:6.1f}"
             f" ms), p99 {r['p99_ms']:5.1f} ms, median chunk {r['median_ms']:4.2f} ms, longest"
-            f" save call {r['save_ms']:6.1f} ms, {r['checkpoints']:.0f} checkpoints, "
+            f" save call {r['save_ms']:6.1f} ms (lock held {r['lock_ms']:5.1f} ms), "
+            f"{r['checkpoints']:.0f} checkpoints, "
             f"{r['acked']:.0f} acknowledged, {r['rows_copied']:.0f} rows copied on write"
         )
     sync, bg = got["synchronous"], got["background"]

@@ -38,6 +38,7 @@ from streamrate import calibration as cal
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
+from streamrate.models._snapshot import MemberState, RowSnapshot, full_state, snapshot_of_members
 from streamrate.models.base import Learned, Model, ModelState, Prediction, Predictions
 
 WINDOW_EVENTS = 5000
@@ -228,12 +229,13 @@ class ChallengerSet(Model):
             "window_events": self.window_events,
         }
 
-    def to_state(self) -> ModelState:
-        """Members' own states (kind, version, full settings; arrays under ``LABEL/``)."""
+    def to_state(self, member_state: MemberState = full_state) -> ModelState:
+        """Members' own states (kind, version, full settings; arrays under ``LABEL/``),
+        each taken by ``member_state`` (whole, or in a snapshot: :meth:`snapshot`)."""
         arrays: dict[str, np.ndarray] = {}
         saved: dict[str, Any] = {}
         for label, model in self.models_.items():
-            st = model.to_state()
+            st = member_state(model, f"{label}{_SEP}")
             saved[label] = {"kind": st.kind, "version": st.version, "params": st.params}
             for name, arr in st.arrays.items():
                 arrays[f"{label}{_SEP}{name}"] = arr
@@ -245,6 +247,11 @@ class ChallengerSet(Model):
             "window_events": self.window_events,
         }
         return ModelState(self.kind, self.state_version, params, arrays)
+
+    def snapshot(self) -> tuple[ModelState, RowSnapshot]:
+        """:meth:`to_state` with the members' per-entity rows left in their
+        copy-on-write snapshots (:func:`~streamrate.models._snapshot.snapshot_of_members`)."""
+        return snapshot_of_members(self, self.to_state)
 
     def _state_arrays(self) -> dict[str, np.ndarray]:
         rows = self._order(self.size_)

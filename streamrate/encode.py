@@ -374,4 +374,7 @@ class EntityTable:
             raise StateError("saved state is inconsistent: an entity id is listed twice")
         table.counts = np.zeros(max(16, 2 * len(ids)), dtype=np.int32)
         table.counts[: len(ids)] = counts
+        # The loaded bytes are the saved ids: the next checkpoint encodes only newer
+        # ones instead of joining every id again (under the model lock).
+        table._blob, table._blob_n = bytearray(blob), len(ids)
         return table

@@ -38,7 +38,8 @@ from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError, StateVersionError
 from streamrate.events import MatchEvent, Matchup
 from streamrate.models._jit import kernel
-from streamrate.models.base import Learned, Model, Prediction, Predictions
+from streamrate.models._snapshot import MemberState, RowSnapshot, full_state, snapshot_of_members
+from streamrate.models.base import Learned, Model, ModelState, Prediction, Predictions
 
 Method = Literal["slope_intercept", "temperature"]
 P_CLIP = 1e-9
@@ -356,14 +357,25 @@ class Recalibrated(Model):
             "prior_events": self.prior_events,
         }
 
-    def _state_arrays(self) -> dict[str, np.ndarray]:
-        arrays = {_BASE_PREFIX + k: v for k, v in self.model_.to_state().arrays.items()}
+    def _state_arrays(self, member_state: MemberState = full_state) -> dict[str, np.ndarray]:
+        base = member_state(self.model_, _BASE_PREFIX)
+        arrays = {_BASE_PREFIX + k: v for k, v in base.arrays.items()}
         rc = self.recalibrator_
         arrays["recal_theta"] = rc.theta_.copy()
         arrays["recal_hess"] = rc.hess_.copy()
         arrays["recal_events"] = np.array([rc.n_events_], dtype=np.int64)
         arrays["recal_base_version"] = np.array([self.model_.state_version], dtype=np.int64)
         return arrays
+
+    def snapshot(self) -> tuple[ModelState, RowSnapshot]:
+        """:meth:`to_state` with the base model's per-entity rows left in its
+        copy-on-write snapshots (:func:`~streamrate.models._snapshot.snapshot_of_members`)."""
+        return snapshot_of_members(
+            self,
+            lambda take: ModelState(
+                self.kind, self.state_version, self.get_params(), self._state_arrays(take)
+            ),
+        )
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
         version = int(arrays["recal_base_version"][0])

@@ -180,7 +180,7 @@ def test_a_model_with_no_snapshot_copies_nothing_on_write() -> None:
 
 
 def test_other_models_give_their_state_as_before() -> None:
-    model = build_model("elo", compiled=False)
+    model = build_model("head_to_head")  # no per-entity rows to keep
     model.learn_many(_events(0, 10, 6, seed=4))
     state, snap = snapshot_state(model)
     assert snap is None

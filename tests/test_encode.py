@@ -31,6 +31,27 @@ def test_rows_are_dense_stable_and_survive_a_round_trip(ids: list[str]) -> None:
     assert back.get("never-seen-id-\x01") == -1 and "never-seen-id-\x01" not in back
 
 
+@given(
+    st.lists(st.text(min_size=1, max_size=8).filter(lambda s: "\n" not in s), max_size=30),
+    st.lists(st.text(min_size=1, max_size=8).filter(lambda s: "\n" not in s), max_size=30),
+)
+def test_a_loaded_table_saves_what_a_never_saved_one_would(old: list[str], new: list[str]) -> None:
+    # A loaded table keeps the saved bytes and appends only newer ids to them; what
+    # it saves must equal a table that saw the same ids without a save between.
+    straight = EntityTable()
+    straight.rows(old + new)
+    loaded = EntityTable.from_arrays(_saved(old))
+    loaded.rows(new)
+    assert loaded._blob_n == len(set(old))  # nothing joined again on load
+    assert np.array_equal(loaded.to_arrays()["entity_ids"], straight.to_arrays()["entity_ids"])
+
+
+def _saved(ids: list[str]) -> dict[str, np.ndarray]:
+    table = EntityTable()
+    table.rows(ids)
+    return table.to_arrays()
+
+
 def test_inconsistent_saved_table_fails() -> None:
     arrays = EntityTable().to_arrays()
     arrays["entity_counts"] = np.array([1, 2])

@@ -17,11 +17,15 @@ for a handful of rows), so their memory is that of the rows written while the
 snapshot is read, not of the whole state. An array the reader has finished is
 dropped from the snapshot and copied no more.
 
-The owner's duties (the hook, :class:`MatchupModel`): every write to a row
+The owner's duties (the hook, :class:`CopyOnWriteRows`: the matchup models,
+Elo, Glicko-2, TrueSkill, the Gaussian strengths): every write to a row
 below ``n`` of a snapshot array calls :meth:`before_write` first (``None``
 for "every row"); an array replaced by a larger one (growth) may stay in the
 snapshot as it is, since the owner no longer writes it; :meth:`close` (by the
-reader, when done or failed) ends the copying.
+reader, when done or failed) ends the copying. A model made of models
+(mixture, recalibrated, challengers) takes its members' snapshots
+(:func:`snapshot_of_members`) and hands them out as one
+(:class:`JoinedSnapshot`), its members' names under their prefixes.
 
 >>> import numpy as np
 >>> live = np.arange(6.0).reshape(3, 2)
@@ -37,11 +41,16 @@ False
 from __future__ import annotations
 
 import threading
-from collections.abc import Iterator, Mapping
+from abc import abstractmethod
+from collections.abc import Callable, Iterator, Mapping
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from streamrate.models.base import Model, ModelState
+
+if TYPE_CHECKING:
+    from streamrate.batch import EncodedBatch
 
 SLICE_ROWS = 1 << 14
 """Rows a reader copies per slice under the snapshot's lock (16,384 rows of 33
@@ -69,8 +78,12 @@ class RowSnapshot:
         self._pos = np.zeros(self.n, dtype=np.int64 if self.n >= 1 << 31 else np.int32)
         self._lock = threading.Lock()
         self.active = True
-        self.rows_copied = 0
+        self._copied = 0
+
+    @property
+    def rows_copied(self) -> int:
         """Rows copied for the owner's writes so far (for tests and benchmarks)."""
+        return self._copied
 
     def shape(self, name: str) -> tuple[int, ...]:
         return self._shapes[name]
@@ -101,7 +114,7 @@ class RowSnapshot:
         with self._lock:
             if not self.active:
                 return
-            start = self.rows_copied
+            start = self._copied
             for name, live in self._live.items():
                 blocks = self._blocks[name]
                 done = 0
@@ -114,7 +127,7 @@ class RowSnapshot:
                     blocks[b][o : o + k] = live[new[done : done + k]]
                     done += k
             self._pos[new] = np.arange(start + 1, start + 1 + new.size)
-            self.rows_copied += int(new.size)
+            self._copied += int(new.size)
 
     def slices(self, name: str) -> Iterator[np.ndarray]:
         """The snapshot's rows of ``name`` in order, as private arrays of at most
@@ -179,6 +192,153 @@ class SnapshotArray:
 
     def pieces(self) -> Iterator[np.ndarray]:
         return self.snap.slices(self.name)
+
+
+class JoinedSnapshot(RowSnapshot):
+    """Several snapshots read as one, each one's names under its prefix: the rows
+    of the members of a model made of models (a mixture, a recalibrated model,
+    challengers). Only the reader's side: each member keeps its own part up to
+    date (the owners call :meth:`RowSnapshot.before_write` on their parts).
+
+    >>> a = RowSnapshot({"w": np.zeros((2, 1))}, 2)
+    >>> b = RowSnapshot({"w": np.ones((3, 1))}, 3)
+    >>> j = JoinedSnapshot({"m0.": a, "m1.": b})
+    >>> j.names, j.shape("m1.w")
+    (['m0.w', 'm1.w'], (3, 1))
+    >>> j.close(); a.active, b.active
+    (False, False)
+    """
+
+    def __init__(self, parts: Mapping[str, RowSnapshot]) -> None:
+        self._parts = list(parts.values())
+        self._at: dict[str, tuple[RowSnapshot, str]] = {}
+        for prefix, part in parts.items():
+            for name in part.names:
+                self._at[prefix + name] = (part, name)
+        self._shapes = {k: p.shape(n) for k, (p, n) in self._at.items()}
+        self._dtypes = {k: p.dtype(n) for k, (p, n) in self._at.items()}
+        self.n = max((p.n for p in self._parts), default=0)
+        self.slice_rows = max((p.slice_rows for p in self._parts), default=SLICE_ROWS)
+        self._live, self._blocks = {}, {}
+        self._pos = np.zeros(0, dtype=np.int32)
+        self._lock = threading.Lock()
+        self.active = True
+        self._copied = 0
+
+    @property
+    def rows_copied(self) -> int:
+        return sum(p.rows_copied for p in self._parts)
+
+    def before_write(self, rows: np.ndarray | None) -> None:
+        raise TypeError("a joined snapshot is only read: its members keep their own parts")
+
+    def slices(self, name: str) -> Iterator[np.ndarray]:
+        part, own = self._at[name]
+        return part.slices(own)
+
+    def close(self) -> None:
+        self.active = False
+        for p in self._parts:
+            p.close()
+
+
+class CopyOnWriteRows(Model):
+    """A model whose per-entity state is rows of arrays (:meth:`_entity_rows`),
+    saved under the same names and cut to the known entities, and which keeps
+    copy-on-write snapshots of them for checkpoints written while it learns.
+
+    The one hook of every such model: each write to rows below the number of
+    entities (a kernel's batch, a season pull touching every row) is preceded by
+    :meth:`before_write` with those rows (``None``: all of them). Growth that
+    moves the rows into a larger array needs no call: the snapshot keeps the
+    old array, which nothing writes any more."""
+
+    _snapshots: Snapshots | None = None
+
+    @abstractmethod
+    def _entity_rows(self) -> dict[str, np.ndarray]:
+        """The live per-entity arrays (at least one row per known entity) by saved name."""
+
+    @abstractmethod
+    def _state_arrays(self, rows: bool = True) -> dict[str, np.ndarray]:
+        """Learned state as arrays; without the :meth:`_entity_rows` ones when ``rows``
+        is false."""
+
+    def _copying(self) -> bool:
+        """Whether a snapshot is open (only then are the rows to write worth finding)."""
+        return self._snapshots is not None and len(self._snapshots) > 0
+
+    def before_write(self, rows: np.ndarray | None) -> None:
+        """``rows`` of the entity arrays are about to be written (see the class)."""
+        snaps = self._snapshots
+        if snaps is not None:
+            snaps.before_write(rows)
+
+    def before_batch(self, b: EncodedBatch) -> None:
+        """:meth:`before_write` with the rows of an encoded batch (padding ignored)."""
+        if self._copying():
+            self.before_write(np.concatenate([b.first.ravel(), b.second.ravel()]))
+
+    def snapshot(self) -> tuple[ModelState, RowSnapshot]:
+        """:meth:`~streamrate.models.base.Model.to_state` without copying the
+        per-entity rows: those stay in a copy-on-write :class:`RowSnapshot` (a row
+        is copied only when the model writes it before the snapshot is read and
+        closed). Call under the model's lock."""
+        arrays = self._state_arrays(rows=False)
+        snap = RowSnapshot(self._entity_rows(), len(self.entities_))
+        if self._snapshots is None:
+            self._snapshots = Snapshots()
+        self._snapshots.add(snap)
+        return ModelState(self.kind, self.state_version, self.get_params(), arrays), snap
+
+
+MemberState = Callable[[Model, str], ModelState]
+"""How a model made of models takes a member's state: the member and the prefix
+its arrays are saved under (see :class:`MemberSnapshots`)."""
+
+
+def full_state(model: Model, prefix: str) -> ModelState:
+    """A member's whole state (:meth:`~streamrate.models.base.Model.to_state`)."""
+    return model.to_state()
+
+
+class MemberSnapshots:
+    """Takes the members' states for a model made of models' :meth:`snapshot`:
+    each member that keeps copy-on-write snapshots leaves its rows in one, the
+    others are copied as before; :meth:`joined` reads them all as one under the
+    members' prefixes. Close it (or the joined snapshot) if the state is not
+    used."""
+
+    def __init__(self) -> None:
+        self.parts: dict[str, RowSnapshot] = {}
+
+    def state_of(self, model: Model, prefix: str) -> ModelState:
+        state, snap = snapshot_state(model)
+        if snap is not None:
+            self.parts[prefix] = snap
+        return state
+
+    def joined(self) -> JoinedSnapshot:
+        return JoinedSnapshot(self.parts)
+
+    def close(self) -> None:
+        for snap in self.parts.values():
+            snap.close()
+
+
+def snapshot_of_members(
+    model: Model, build: Callable[[MemberState], ModelState]
+) -> tuple[ModelState, RowSnapshot]:
+    """The ``snapshot()`` of a model made of models: ``build`` makes its state taking
+    each member's through the given function (as ``to_state`` does with
+    :func:`full_state`); the members' snapshots are closed if it fails."""
+    members = MemberSnapshots()
+    try:
+        state = build(members.state_of)
+    except BaseException:
+        members.close()
+        raise
+    return state, members.joined()
 
 
 def snapshot_state(model: Model) -> tuple[ModelState, RowSnapshot | None]:

@@ -74,8 +74,8 @@ from streamrate.batch import EncodedBatch, count_matches, encode_events
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
+from streamrate.models._snapshot import CopyOnWriteRows
 from streamrate.models.base import (
-    Model,
     ModelState,
     Prediction,
     Predictions,
@@ -162,7 +162,7 @@ def _strength_loop(
 _strength_loop_compiled = njit(cache=True)(_strength_loop)
 
 
-class BayesStrength(Model):
+class BayesStrength(CopyOnWriteRows):
     """Gaussian strengths with per-entity variance, time noise and season pulls."""
 
     kind: ClassVar[str] = "bayes_strength"
@@ -264,6 +264,7 @@ class BayesStrength(Model):
     def new_period(self) -> None:
         """Pull every strength part way to the prior and widen every variance."""
         n = len(self.entities_)
+        self.before_write(None)
         self.mu_[:n] *= 1.0 - self.period_pull
         self.var_[:n] = np.minimum(self.var_[:n] + self.period_var, self.prior_var)
 
@@ -313,6 +314,7 @@ class BayesStrength(Model):
         entity table (``batch``); ``count=False`` leaves the match counts alone (a
         mixture whose members share one table counts once)."""
         self._fit_capacity()
+        self.before_batch(batch)
         out = np.empty(len(events))
         periods = [self._period_of(ev) for ev in events]
         start = 0
@@ -369,6 +371,7 @@ class BayesStrength(Model):
             return Predictions(np.zeros(0), np.zeros(0))
         self._enter_period(self._period_of(events[0]))
         self._fit_capacity()
+        self.before_batch(b)
         day = b.time_s / DAY_S
         for i in range(len(b)):  # idle widening, as the sequential loop does it
             for r in (*b.first[i, : b.first_size[i]], *b.second[i, : b.second_size[i]]):
@@ -418,10 +421,11 @@ class BayesStrength(Model):
         return Predictions(p, np.zeros_like(p))
 
     # -- persistence --------------------------------------------------------------
-    def _state_arrays(self) -> dict[str, np.ndarray]:
-        arrays = entity_arrays(
-            self.entities_, mu=self.mu_, var=self.var_, last_day=self.last_day_, age=self.age_
-        )
+    def _entity_rows(self) -> dict[str, np.ndarray]:
+        return {"mu": self.mu_, "var": self.var_, "last_day": self.last_day_, "age": self.age_}
+
+    def _state_arrays(self, rows: bool = True) -> dict[str, np.ndarray]:
+        arrays = entity_arrays(self.entities_, **(self._entity_rows() if rows else {}))
         arrays["advantage"] = self.adv_.copy()
         arrays["newcomer"] = self.newcomer_.copy()
         arrays["clock"] = self.clock_.copy()

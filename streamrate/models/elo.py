@@ -44,8 +44,8 @@ from streamrate.batch import EncodedBatch, count_matches, encode_events
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
+from streamrate.models._snapshot import CopyOnWriteRows
 from streamrate.models.base import (
-    Model,
     Prediction,
     Predictions,
     entity_arrays,
@@ -94,7 +94,7 @@ def _elo_loop(
 _elo_loop_compiled = njit(cache=True)(_elo_loop)
 
 
-class Elo(Model):
+class Elo(CopyOnWriteRows):
     """Elo ratings with team means and a learned first-side advantage (rating points)."""
 
     kind: ClassVar[str] = "elo"
@@ -163,6 +163,8 @@ class Elo(Model):
         rows1 = table.rows(event.first)
         rows2 = table.rows(event.second)
         self._fit_capacity()
+        if self._copying():
+            self.before_write(np.array(rows1 + rows2))
         ratings = self.ratings_
         r1 = 0.0
         for r in rows1:
@@ -195,6 +197,7 @@ class Elo(Model):
         if _any_unknown(batch):
             raise ValueError("learn_encoded: batch holds entities unknown to this model")
         self._fit_capacity()
+        self.before_batch(batch)
         out = np.empty(len(batch), dtype=np.float64)
         use = self.compiled if compiled is None else compiled
         loop = _elo_loop_compiled if use and len(batch) > 1 else _elo_loop
@@ -239,6 +242,7 @@ class Elo(Model):
             adv_step += self.advantage_k * (b.score[i] - p[i])
             delta[rows1] += d
             delta[rows2] -= d
+        self.before_batch(b)
         self.ratings_[: len(delta)] += delta
         self.advantage_[0] += adv_step
         count_matches(b, self.entities_)
@@ -255,8 +259,11 @@ class Elo(Model):
             "advantage_k": self.advantage_k,
         }
 
-    def _state_arrays(self) -> dict[str, np.ndarray]:
-        arrays = entity_arrays(self.entities_, ratings=self.ratings_)
+    def _entity_rows(self) -> dict[str, np.ndarray]:
+        return {"ratings": self.ratings_}
+
+    def _state_arrays(self, rows: bool = True) -> dict[str, np.ndarray]:
+        arrays = entity_arrays(self.entities_, **(self._entity_rows() if rows else {}))
         arrays["advantage"] = self.advantage_.copy()
         return arrays
 

@@ -51,8 +51,8 @@ from streamrate.events import MatchEvent, Matchup
 from streamrate.models import _kernels_glicko2 as _k
 from streamrate.models._kernels_glicko2 import finish, g, logistic
 from streamrate.models._kernels_glicko2 import new_volatility as _new_volatility
+from streamrate.models._snapshot import CopyOnWriteRows
 from streamrate.models.base import (
-    Model,
     Prediction,
     Predictions,
     entity_arrays,
@@ -100,7 +100,7 @@ def rate_period(
     return finish(mu, phi, sigma, inv_v, total, tau, tolerance)
 
 
-class Glicko2(Model):
+class Glicko2(CopyOnWriteRows):
     """Glicko-2 with one rating period per match (or per mini-batch)."""
 
     kind: ClassVar[str] = "glicko2"
@@ -183,6 +183,7 @@ class Glicko2(Model):
         if has_unknown(b):
             raise ValueError("learn_encoded: batch holds entities unknown to this model")
         self._fit_capacity()
+        self.before_batch(b)
         p = np.empty(len(b))
         run = _k.learn_seq_compiled if self.compiled else _k.learn_seq
         run(b.first, b.first_size, b.second, b.second_size, b.score, b.time_s, self.mu_,
@@ -196,6 +197,7 @@ class Glicko2(Model):
             return Predictions(np.zeros(0), np.zeros(0))
         b = encode_events(events, self.entities_)
         self._fit_capacity()
+        self.before_batch(b)
         p = np.empty(len(b))
         run = _k.learn_period_compiled if self.compiled else _k.learn_period
         run(b.first, b.first_size, b.second, b.second_size, b.score, b.time_s, self.mu_,
@@ -215,10 +217,11 @@ class Glicko2(Model):
             "compiled": self.compiled,
         }
 
-    def _state_arrays(self) -> dict[str, np.ndarray]:
-        return entity_arrays(
-            self.entities_, mu=self.mu_, phi=self.phi_, sigma=self.sigma_, last_s=self.last_s_
-        )
+    def _entity_rows(self) -> dict[str, np.ndarray]:
+        return {"mu": self.mu_, "phi": self.phi_, "sigma": self.sigma_, "last_s": self.last_s_}
+
+    def _state_arrays(self, rows: bool = True) -> dict[str, np.ndarray]:
+        return entity_arrays(self.entities_, **(self._entity_rows() if rows else {}))
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
         table, loaded = load_entity_arrays(self.kind, arrays, ("mu", "phi", "sigma", "last_s"))

@@ -83,10 +83,9 @@ from streamrate.batch import EncodedBatch, count_matches, encode_events
 from streamrate.encode import EntityTable, FeatureHasher, RunningScale
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
-from streamrate.models._snapshot import RowSnapshot, Snapshots
+from streamrate.models._snapshot import CopyOnWriteRows
 from streamrate.models.base import (
     GROW_ROWS,
-    Model,
     ModelState,
     Prediction,
     Predictions,
@@ -130,7 +129,7 @@ def hashed_uniform(seed: int, lo: int, hi: int, width: int) -> np.ndarray:
     return (2.0 * u - 1.0).reshape(hi - lo, width)
 
 
-class MatchupModel(Model):
+class MatchupModel(CopyOnWriteRows):
     """Strength + blade-chest model; :class:`BradleyTerry`, :class:`BladeChest` and
     :class:`BladeChestDistance` are its presets.
 
@@ -231,7 +230,6 @@ class MatchupModel(Model):
         self._feat = FeatureHasher(feature_width) if feature_width else None
         self.entities_ = EntityTable()
         self.fast_path = True  # tests switch it off to compare with the general loop
-        self._snapshots = Snapshots()  # copy-on-write snapshots being read (checkpoints)
         self._fresh_state()
 
     # -- settings -------------------------------------------------------------------
@@ -422,8 +420,7 @@ class MatchupModel(Model):
         if np.isnan(b.score).any():
             raise ConfigError("cannot learn from an event without a score")
         self._grow(len(self.entities_))
-        if len(self._snapshots):  # the rows this batch writes: keep a snapshot's values
-            self._snapshots.before_write(np.concatenate([b.first.ravel(), b.second.ravel()]))
+        self.before_batch(b)  # the rows this batch writes: keep a snapshot's values
 
     def learn_encoded(self, b: EncodedBatch) -> Predictions:
         """Sequential predict-then-learn over an encoded batch (``add=True`` encoding)."""
@@ -513,17 +510,6 @@ class MatchupModel(Model):
         return None if r < 0 or not self.uncertainty else float(self.acc_[r, 0])
 
     # -- persistence -------------------------------------------------------------------
-    def snapshot(self) -> tuple[ModelState, RowSnapshot]:
-        """:meth:`to_state` without copying the per-entity rows: those stay in a
-        copy-on-write :class:`~streamrate.models._snapshot.RowSnapshot` (each row
-        is copied only if a batch writes it before the snapshot is read and
-        closed). Every write to entity rows goes through :meth:`_check_learnable`,
-        which keeps the open snapshots."""
-        arrays = self._state_arrays(rows=False)
-        snap = RowSnapshot(self._entity_rows(), len(self.entities_))
-        self._snapshots.add(snap)
-        return ModelState(self.kind, self.state_version, self.get_params(), arrays), snap
-
     def _entity_rows(self) -> dict[str, np.ndarray]:
         """The live per-entity arrays (all their rows) under their saved names."""
         rows: dict[str, np.ndarray] = {"own": self.own_, "acc": self.acc_}

@@ -40,6 +40,7 @@ from streamrate.batch import EncodedBatch, encode_events
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
+from streamrate.models._snapshot import MemberState, RowSnapshot, full_state, snapshot_of_members
 from streamrate.models.base import Model, ModelState, Prediction, Predictions
 from streamrate.models.bayes_strength import BayesStrength
 
@@ -213,13 +214,24 @@ class Mixture(Model):
     def get_params(self) -> dict[str, Any]:
         return {"members": [dict(s) for s in self.members], "eta": self.eta}
 
-    def _state_arrays(self) -> dict[str, np.ndarray]:
+    def _state_arrays(self, member_state: MemberState = full_state) -> dict[str, np.ndarray]:
         arrays: dict[str, np.ndarray] = {"loss": self.loss_.copy()}
         for i, m in enumerate(self.models_):
-            arrays[f"member{i}.version"] = np.array([m.state_version])
-            for name, a in m.to_state().arrays.items():
-                arrays[f"member{i}.{name}"] = a
+            prefix = f"member{i}."
+            arrays[f"{prefix}version"] = np.array([m.state_version])
+            for name, a in member_state(m, prefix).arrays.items():
+                arrays[f"{prefix}{name}"] = a
         return arrays
+
+    def snapshot(self) -> tuple[ModelState, RowSnapshot]:
+        """:meth:`to_state` with the members' per-entity rows left in their
+        copy-on-write snapshots (:func:`~streamrate.models._snapshot.snapshot_of_members`)."""
+        return snapshot_of_members(
+            self,
+            lambda take: ModelState(
+                self.kind, self.state_version, self.get_params(), self._state_arrays(take)
+            ),
+        )
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
         loss = np.asarray(arrays["loss"], dtype=np.float64)

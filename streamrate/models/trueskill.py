@@ -55,8 +55,8 @@ from streamrate.errors import ConfigError
 from streamrate.events import MatchEvent, Matchup
 from streamrate.models import _kernels_trueskill as _k
 from streamrate.models._kernels_trueskill import draw_terms, v_win, w_win
+from streamrate.models._snapshot import CopyOnWriteRows
 from streamrate.models.base import (
-    Model,
     Prediction,
     Predictions,
     entity_arrays,
@@ -82,7 +82,7 @@ def draw_margin(draw_probability: float, n_players: int, beta: float) -> float:
     return float(ndtri((draw_probability + 1.0) / 2.0)) * math.sqrt(n_players) * beta
 
 
-class TrueSkill(Model):
+class TrueSkill(CopyOnWriteRows):
     """Two-team TrueSkill with draws; beliefs kept as (mu, sigma) per entity."""
 
     kind: ClassVar[str] = "trueskill"
@@ -164,6 +164,7 @@ class TrueSkill(Model):
         if has_unknown(b):
             raise ValueError("learn_encoded: batch holds entities unknown to this model")
         self._fit_capacity()
+        self.before_batch(b)
         p = np.empty((len(b), 2))
         run = _k.learn_seq_compiled if self.compiled else _k.learn_seq
         run(b.first, b.first_size, b.second, b.second_size, b.score, self.mu_, self.var_,
@@ -177,6 +178,7 @@ class TrueSkill(Model):
             return self.learn_many(events)
         b = encode_events(events, self.entities_)
         self._fit_capacity()
+        self.before_batch(b)
         p = np.empty((len(b), 2))
         run = _k.learn_combined_compiled if self.compiled else _k.learn_combined
         run(b.first, b.first_size, b.second, b.second_size, b.score, self.mu_, self.var_,
@@ -194,8 +196,11 @@ class TrueSkill(Model):
             "compiled": self.compiled,
         }
 
-    def _state_arrays(self) -> dict[str, np.ndarray]:
-        return entity_arrays(self.entities_, mu=self.mu_, var=self.var_)
+    def _entity_rows(self) -> dict[str, np.ndarray]:
+        return {"mu": self.mu_, "var": self.var_}
+
+    def _state_arrays(self, rows: bool = True) -> dict[str, np.ndarray]:
+        return entity_arrays(self.entities_, **(self._entity_rows() if rows else {}))
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
         table, (mu, var) = load_entity_arrays(self.kind, arrays, ("mu", "var"))
