@@ -14,7 +14,8 @@ It is faster on the common path by doing the work per batch, not per event:
    letters, digits, punctuation or symbols, the id rule's categories), field
    names and categories against sets of those already checked, outcomes by one
    set inclusion, times by one compiled pattern each, sides disjoint; feature
-   maps (rarer) event by event;
+   maps and margins (bounds, sign against the score) event by event, only in a
+   batch that has them;
 3. the events are then built directly (no second validation, no Python call
    per event).
 
@@ -79,12 +80,14 @@ class _Wire(msgspec.Struct, forbid_unknown_fields=True, gc=False):
     score: int | float
     context: dict[str, _Value] | msgspec.UnsetType = msgspec.UNSET
     features: dict[str, dict[str, _Value]] | msgspec.UnsetType = msgspec.UNSET
+    margin: int | float | msgspec.UnsetType | None = msgspec.UNSET
 
 
 _decode_wire = msgspec.json.Decoder(_Wire).decode
 _MATCH_ID, _FINISHED_AT = attrgetter("match_id"), attrgetter("finished_at")
 _FIRST, _SECOND, _SCORE = attrgetter("first"), attrgetter("second"), attrgetter("score")
 _CONTEXT, _FEATURES = attrgetter("context"), attrgetter("features")
+_MARGIN = attrgetter("margin")
 _ONLY = itemgetter(0)
 _UNSET = msgspec.UNSET
 _OUTCOMES = frozenset((0, 0.5, 1))
@@ -102,6 +105,7 @@ _FIELDS = frozenset(("first", "second", "match_id", "finished_at", "score"))
 _FIELDS_CONTEXT = _FIELDS | {"context"}
 _FEATURES_ONLY = frozenset(("features",))
 _CONTEXT_ONLY = frozenset(("context",))
+_MARGIN_ONLY = frozenset(("margin",))
 _NONE: frozenset[str] = frozenset()
 _CACHE_MAX = 100_000
 _names: set[str] = set()  # context field names already checked
@@ -178,6 +182,21 @@ def _features(
     return out
 
 
+def _margin(margin: Any, score: float) -> float | None:
+    """An event's margin checked as the model would (bounded, finite, its sign agreeing
+    with the score; -0.0 as 0.0), or :class:`_Doubt`."""
+    if margin is None:
+        return None
+    kind = type(margin)
+    if kind is not int and kind is not float:
+        raise _Doubt
+    if not math.isfinite(margin) or abs(margin) > MAX_NUMBER_ABS:
+        raise _Doubt
+    if (margin > 0 and score != 1) or (margin < 0 and score != 0):
+        raise _Doubt
+    return float(margin) + 0.0
+
+
 def _fast(wires: list[_Wire]) -> tuple[list[MatchEvent], list[float]]:
     """The events of payloads that all passed step 1, or :class:`_Doubt` (step 2, 3)."""
     if not wires:
@@ -220,6 +239,16 @@ def _fast(wires: list[_Wire]) -> tuple[list[MatchEvent], list[float]]:
         contexts = [{} if ctx is _UNSET else ctx for ctx in contexts]
     else:
         fields = [_FIELDS_CONTEXT] * n
+    given = list(map(_MARGIN, wires))
+    if given.count(_UNSET) == n:  # the usual shape: no margins
+        margins: list[float | None] = [None] * n
+    else:
+        margins = [
+            None if m is _UNSET else _margin(m, s) for m, s in zip(given, scores, strict=True)
+        ]
+        fields = [
+            f | _MARGIN_ONLY if m is not _UNSET else f for f, m in zip(fields, given, strict=True)
+        ]
     if not (
         all(map(_names.issuperset, contexts))
         and all(map(_categories.issuperset, map(dict.values, contexts)))
@@ -244,9 +273,10 @@ def _fast(wires: list[_Wire]) -> tuple[list[MatchEvent], list[float]]:
             "match_id": mid,
             "finished_at": when,
             "score": float(score),
+            "margin": margin,
         }
-        for first, second, ctx, feats, mid, when, score in zip(
-            firsts, seconds, contexts, feature_maps, mids, finished, scores, strict=True
+        for first, second, ctx, feats, mid, when, score, margin in zip(
+            firsts, seconds, contexts, feature_maps, mids, finished, scores, margins, strict=True
         )
     ]
     out = list(map(_new, repeat(MatchEvent, n)))

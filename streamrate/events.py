@@ -34,6 +34,7 @@ from pydantic import (
     StringConstraints,
     TypeAdapter,
     ValidationError,
+    ValidationInfo,
     WithJsonSchema,
     field_validator,
     model_validator,
@@ -54,6 +55,8 @@ MAX_CONTEXT_FIELDS = 16
 MAX_FEATURES_PER_ENTITY = 16
 MAX_NUMBER_ABS = 1e9
 """Numbers beyond this magnitude are rejected: they are almost always unit mistakes."""
+MARGIN_SIGN = "must be > 0 only when score is 1 and < 0 only when score is 0"
+"""The refusal of a ``margin`` whose sign contradicts ``score``."""
 
 ID_CHARS = r"[\p{L}\p{M}\p{N}\p{P}\p{S}]"
 """The characters of an id or a category: Unicode general categories L (letters),
@@ -236,6 +239,11 @@ class MatchEvent(Matchup):
     """A finished match: who played, in what context, and the first side's score.
 
     ``score`` is 1 when the first side won, 0.5 for a draw, 0 when it lost.
+    ``margin`` (optional) is by how much, in the game's own unit (goals, rounds,
+    points): the first side's margin of victory, a finite number of magnitude at
+    most :data:`MAX_NUMBER_ABS`, positive only for a win and negative only for a
+    loss (so a draw has 0; 0 with a win or a loss is a level game decided by a
+    tiebreak). Absent (or null) means unknown.
     ``finished_at`` is an RFC 3339 string with an offset (never a number).
     ``match_id`` is unique per match: a second event with the same id and the
     same content (:func:`event_digest`) is a producer retry; with other content
@@ -245,6 +253,13 @@ class MatchEvent(Matchup):
     match_id: EntityId
     finished_at: Rfc3339Time
     score: float
+    margin: Annotated[
+        Number | None,
+        Field(
+            description="the first side's margin of victory in the game's unit (goals, rounds); "
+            "> 0 only when score is 1, < 0 only when score is 0; absent: unknown"
+        ),
+    ] = None
 
     @field_validator("score", mode="before")
     @classmethod
@@ -252,6 +267,18 @@ class MatchEvent(Matchup):
         if isinstance(v, bool) or not isinstance(v, int | float) or v not in (0, 0.5, 1):
             raise ValueError("must be 1 (first side won), 0.5 (draw) or 0 (first side lost)")
         return float(v)
+
+    @field_validator("margin", mode="after")
+    @classmethod
+    def _margin_agrees_with_score(cls, v: float | None, info: ValidationInfo) -> float | None:
+        if v is None:
+            return None
+        score = info.data.get("score")
+        if v > 0 and score is not None and score != 1.0:
+            raise ValueError(MARGIN_SIGN)
+        if v < 0 and score is not None and score != 0.0:
+            raise ValueError(MARGIN_SIGN)
+        return v + 0.0  # -0.0 is 0.0: one content, one digest
 
 
 def _message(err: Any) -> str:
@@ -367,8 +394,10 @@ def event_digest(event: MatchEvent) -> bytes:
 
     Canonical: fields in a fixed order, context and feature names sorted,
     ``finished_at`` as its instant (any offset spelling), numbers as floats, each
-    value tagged string or number. Parts are joined with control characters,
-    which no id, name or category may contain, so the text is unambiguous. Key
+    value tagged string or number, ``margin`` only when given (so events without
+    one keep the digest they had before margins existed). Parts are joined with
+    control characters, which no id, name or category may contain, so the text
+    is unambiguous. Key
     order, spacing, ``1`` against ``1.0`` and ``Z`` against ``+00:00`` do not
     make two events differ; any other change does.
 
@@ -396,6 +425,8 @@ def event_digests(events: Sequence[MatchEvent], times: Sequence[float]) -> list[
             f"{event.match_id}\x1e{t!r}\x1e{join(event.first)}\x1e{join(event.second)}"
             f"\x1e{event.score!r}"
         )
+        if event.margin is not None:  # only when given: older events keep their digests
+            text = f"{text}\x1em{event.margin!r}"
         if ctx:
             text = f"{text}\x1e{_canonical_context(ctx)}"
         if event.features:

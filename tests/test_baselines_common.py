@@ -31,6 +31,7 @@ MODELS: list[tuple[str, dict[str, Any]]] = [
     ("bayes_strength", {"newcomer_matches": 2, "shared_noise_per_day": 0.01}),
     ("kalman_strength", {"period_field": "map", "period_pull": 0.2, "period_var": 0.1}),
     ("kalman_strength", {"newcomer_matches": 2, "shared_noise_per_day": 0.01, "max_active": 7}),
+    ("margin_strength", {"period_field": "map", "period_pull": 0.2, "newcomer_matches": 2}),
     (
         "mixture",
         {
@@ -57,6 +58,7 @@ SYMMETRIC = [
         "logistic_batch",
         "bayes_strength",
         "kalman_strength",
+        "margin_strength",
         "mixture",
         "recalibrated",
     )  # learn an edge
@@ -145,6 +147,7 @@ def test_learn_returns_the_prediction_made_before_the_update(
         if settings_.get("period_s") or kind in (
             "bayes_strength",
             "kalman_strength",
+            "margin_strength",
             "mixture",
             "recalibrated",
         ):
@@ -177,6 +180,7 @@ def test_learn_batch_predicts_from_the_batch_start_state(
     if settings_.get("period_s") or kind in (
         "bayes_strength",
         "kalman_strength",
+        "margin_strength",
         "mixture",
         "recalibrated",
     ):
@@ -203,7 +207,14 @@ def test_unknown_entities_get_the_prior(kind: str, settings_: dict[str, Any]) ->
     fresh = build_model(kind, **settings_)
     m = trained(kind, settings_)
     q = Matchup(first=("ghost-a",), second=("ghost-b",))
-    if kind in ("logistic_batch", "bayes_strength", "kalman_strength", "mixture", "recalibrated"):
+    if kind in (
+        "logistic_batch",
+        "bayes_strength",
+        "kalman_strength",
+        "margin_strength",
+        "mixture",
+        "recalibrated",
+    ):
         # Only the learned first-side term separates two unknowns.
         assert fresh.predict(q).p_win == 0.5
     elif kind == "elo":

@@ -48,6 +48,10 @@ SETUPS: dict[str, tuple[str, dict[str, Any]]] = {
         "bayes_strength",
         {"period_field": "season", "period_pull": 0.3, "period_var": 0.05, "newcomer_matches": 3},
     ),
+    "margin_strength": (
+        "margin_strength",
+        {"period_field": "season", "period_pull": 0.3, "period_var": 0.05, "newcomer_matches": 3},
+    ),
     "challengers": (
         "challengers",
         {

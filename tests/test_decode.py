@@ -6,7 +6,8 @@ years 0000 to 9999, unknown and missing fields, wrong types, oversized input,
 duplicate keys, an entity twice on a side or on both sides, any unicode), the
 fast decoder must accept exactly what the model accepts, give the same event
 (same values, types, time offset, JSON and content digest), and refuse with the
-same message, which names the same field.
+same message, which names the same field. Margins too: valid ones, NaN, infinities,
+huge ones, -0.0, signs that contradict the score, wrong types and null.
 """
 
 from __future__ import annotations
@@ -110,7 +111,16 @@ score = st.one_of(
     st.sampled_from([0, 0.5, 1, 1.0, 0.0, -0.0, True, False, 2, -1, "1", None, 0.25]),
     number,
 )
-FIELDS = ("match_id", "finished_at", "first", "second", "score", "context", "features")
+margin = st.one_of(
+    number,  # NaN, infinities, huge, -0.0, integers beyond 64 bits
+    st.integers(-12, 12),
+    st.floats(-30, 30),
+    st.sampled_from([0, 0.0, -0.0, 1, -1, 2.5, 1e9, -1e9, 1e9 + 1, True, False, "2", None, []]),
+)
+"""Any number (so often of the wrong sign for the score), wrong types and null."""
+FIELDS = (
+    "match_id", "finished_at", "first", "second", "score", "context", "features", "margin"
+)  # fmt: skip
 
 
 @st.composite
@@ -132,6 +142,8 @@ def payloads(draw: st.DrawFn) -> bytes:
         data["features"] = draw(
             st.one_of(st.just({}), st.dictionaries(st.just(who), st.dictionaries(names, value)))
         )
+    if draw(st.integers(0, 2)) == 0:
+        data["margin"] = draw(margin)
     if draw(st.integers(0, 6)) == 0:
         data[draw(st.sampled_from(["extra", "Score", "match id", "contexts"]))] = 1
     if draw(st.integers(0, 8)) == 0:
@@ -195,6 +207,11 @@ def plain_events(draw: st.DrawFn) -> bytes:
     if draw(st.booleans()):
         who = draw(st.sampled_from(people))
         data["features"] = {who: {"training_hours": draw(st.floats(0, 100)), "style": "rush"}}
+    if draw(st.booleans()):  # a margin that agrees with the score
+        size = draw(st.one_of(st.integers(1, 9), st.floats(0.5, 100.0)))
+        data["margin"] = {0: -size, 0.5: draw(st.sampled_from([0, 0.0, -0.0])), 1: size}[
+            data["score"]
+        ]
     return json.dumps(data).encode()
 
 
@@ -214,6 +231,7 @@ def _same_event(got: MatchEvent, want: MatchEvent) -> None:
     assert event_to_json(got) == event_to_json(want)
     assert event_digest(got) == event_digest(want)
     assert repr(got.score) == repr(want.score)
+    assert repr(got.margin) == repr(want.margin)
     for k, v in want.context.items():
         assert type(got.context[k]) is type(v) and repr(got.context[k]) == repr(v)
     assert list(got.context) == list(want.context)
@@ -271,3 +289,18 @@ def test_a_bad_payload_in_a_batch_is_refused_alone_with_the_models_message() -> 
     assert evs[0].context == {"map": "saltflats", "year": 2004.0}
     assert isinstance(evs[1], EventError) and str(evs[1]).startswith("score: must be 1")
     assert decode_events([]) == ([], [])
+
+
+def test_margins_take_the_fast_path_and_sign_conflicts_get_the_models_message() -> None:
+    base = (
+        b'{"match_id": "m-1", "finished_at": "2026-03-01T18:00:00Z", "first": ["kelvash"],'
+        b' "second": ["morvenn"], "score": %s, "margin": %s}'
+    )
+    for score, sent, kept in ((b"1", b"3", 3.0), (b"0.5", b"-0.0", 0.0), (b"0", b"-1.5", -1.5)):
+        ev = fast_event(base % (score, sent))
+        assert ev is not None and repr(ev.margin) == repr(kept)
+    for score, sent in ((b"1", b"-1"), (b"0.5", b"2"), (b"0", b"0.5")):
+        raw = base % (score, sent)
+        assert fast_event(raw) is None
+        (got,), _ = decode_events([raw])
+        assert str(got) == "margin: must be > 0 only when score is 1 and < 0 only when score is 0"

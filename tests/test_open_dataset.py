@@ -59,8 +59,9 @@ def _csv_text() -> str:
         return member.read().decode("utf-8")
 
 
-def league_events() -> list[MatchEvent]:
-    """All matches as events, sorted by kick-off (ties keep file order)."""
+def league_events(margins: bool = False) -> list[MatchEvent]:
+    """All matches as events, sorted by kick-off (ties keep file order); with
+    ``margins``, each carries the home side's goal difference as its margin."""
     rows = list(csv.DictReader(io.StringIO(_csv_text())))
     events = []
     kickoff = datetime(1963, 8, 24, tzinfo=UTC)
@@ -78,6 +79,7 @@ def league_events() -> list[MatchEvent]:
                 second=(row["AwayTeam"].replace(" ", "_"),),
                 score=1.0 if home > away else (0.5 if home == away else 0.0),
                 context={"season": row["Year"]},
+                margin=float(home - away) if margins else None,
             )
         )
     events.sort(key=lambda ev: ev.finished_at)

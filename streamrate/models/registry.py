@@ -31,6 +31,7 @@ BUILTIN: dict[str, str] = {
     "blade_chest_dist": "streamrate.models.matchup:BladeChestDistance",
     "bayes_strength": "streamrate.models.bayes_strength:BayesStrength",
     "kalman_strength": "streamrate.models.kalman_strength:KalmanStrength",
+    "margin_strength": "streamrate.models.margin_strength:MarginStrength",
     "mixture": "streamrate.models.mixture:Mixture",
     "recalibrated": "streamrate.recalibrate:Recalibrated",
     "challengers": "streamrate.challengers:ChallengerSet",
