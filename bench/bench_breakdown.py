@@ -48,7 +48,8 @@ import redis
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 import bench_service
-from bench_service import empty_consumer, event_lines, fill, make_writer, start_redis
+from _common import run_to_end, start_redis
+from bench_service import empty_consumer, event_lines, fill, make_writer
 
 import streamrate.stream.decide as decide_mod
 from streamrate.dedupe import SeenIds
@@ -142,11 +143,7 @@ def run(r: redis.Redis, batch: int, n: int, ckpt: str, rep: int) -> dict[str, fl
     hook(t, w)
     try:
         t0 = time.perf_counter()
-        while True:
-            reading_new = w.cursor == ">"
-            if w.step() == 0 and reading_new:
-                break
-        w.checkpoint()
+        run_to_end(w)
         wall = time.perf_counter() - t0
     finally:
         t.undo()

@@ -36,9 +36,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import shutil
 import signal
-import socket
 import statistics
 import subprocess
 import sys
@@ -49,6 +47,7 @@ from pathlib import Path
 
 import numpy as np
 import redis
+from _common import fill_stream, start_redis
 from prometheus_client import CollectorRegistry
 
 from streamrate.checkpoint import RedisCheckpointStore
@@ -61,24 +60,6 @@ from streamrate.stream.writer import Writer
 
 MODEL = "blade_chest"
 MODEL_SETTINGS = {"dims": 8}
-
-
-def start_redis(directory: Path) -> tuple[subprocess.Popen[bytes], int]:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        port = int(s.getsockname()[1])
-    exe = shutil.which("redis-server") or "/usr/bin/redis-server"
-    args = [exe, "--port", str(port), "--bind", "127.0.0.1", "--dir", str(directory),
-            "--save", "", "--appendonly", "no", "--daemonize", "no"]  # fmt: skip
-    proc = subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    r = redis.Redis(port=port)
-    for _ in range(200):
-        try:
-            r.ping()
-            return proc, port
-        except redis.ConnectionError:
-            time.sleep(0.02)
-    raise RuntimeError("redis-server did not start")
 
 
 def event_lines(n: int, entities: int, seed: int) -> list[str]:
@@ -94,15 +75,6 @@ def event_lines(n: int, entities: int, seed: int) -> list[str]:
         })
         for i in range(n)
     ]  # fmt: skip
-
-
-def fill(r: redis.Redis, stream: str, lines: list[str]) -> None:
-    pipe = r.pipeline(transaction=False)
-    for k, line in enumerate(lines, 1):
-        pipe.xadd(stream, {"event": line})
-        if k % 2000 == 0:
-            pipe.execute()
-    pipe.execute()
 
 
 def space_settings(name: str, batch: int = 500) -> SpaceSettings:
@@ -121,7 +93,7 @@ def writer_rate(r: redis.Redis, name: str, lines: list[str], fenced: bool) -> di
     processes on a shared machine than the wall clock."""
     space = space_settings(name)
     keys = Settings(spaces=(space,)).keys(space)
-    fill(r, keys.events, lines)
+    fill_stream(r, keys.events, lines)
     lease = Lease(r, keys.lease, keys.epoch, LeaseSettings()) if fenced else None
     w = Writer(
         r, space, keys, RedisCheckpointStore(r, keys.ckpt, lease),
@@ -259,7 +231,7 @@ def rate_of(
         lines = {n: event_lines(events, 2000, seed=100 + k) for k, n in enumerate(names)}
         t0 = time.perf_counter()
         fillers = [
-            threading.Thread(target=fill, args=(redis.Redis(port=port), s, lines[n]))
+            threading.Thread(target=fill_stream, args=(redis.Redis(port=port), s, lines[n]))
             for s, n in zip(streams, names, strict=True)
         ]
         for t in fillers:

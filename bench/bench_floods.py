@@ -57,7 +57,8 @@ from prometheus_client import CollectorRegistry
 from prometheus_client.parser import text_string_to_metric_families
 
 sys.path.insert(0, str(Path(__file__).parent))
-from bench_service import event_lines, start_redis
+from _common import fill_stream, start_redis
+from bench_service import event_lines
 
 from streamrate.client import ask
 from streamrate.config import QuerySettings, load_settings
@@ -217,12 +218,7 @@ def scrape(metrics_port: int) -> dict[tuple[str, tuple[tuple[str, str], ...]], f
 
 def fill_backlog(r: redis.Redis, backlog: int) -> None:
     lines = event_lines(backlog, ENTITIES, seed=7)
-    pipe = r.pipeline(transaction=False)
-    for k, line in enumerate(lines, 1):
-        pipe.xadd(TEMPLATE, {"event": line})
-        if k % 5000 == 0:
-            pipe.execute()
-    pipe.execute()
+    fill_stream(r, TEMPLATE, lines, chunk=5000)
 
 
 def run_flood(

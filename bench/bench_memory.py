@@ -128,14 +128,7 @@ def child(n_ent: int, dims: int, batch: int, context: str, former: bool) -> dict
     rss1 = _status_kb("VmRSS")
     hwm1 = _status_kb("VmHWM")
     n = len(model.entities_)
-    table = model.entities_
-    arrays = [model.own_, model.acc_, model.last_s_, model.feat_idx_, model.feat_val_]
-    array_bytes = sum(a[:n].nbytes for a in arrays if a.shape[0]) + table.counts[:n].nbytes
-    id_bytes = (
-        sys.getsizeof(table._rows)
-        + sys.getsizeof(table._ids)
-        + sum(sys.getsizeof(s) for s in table._ids)
-    )
+    array_bytes, id_bytes = _own_bytes(model)
     saved = sum(np.asarray(a).nbytes for a in model.to_state().arrays.values())
     return {
         "entities": n,

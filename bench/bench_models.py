@@ -450,7 +450,7 @@ def speed_default_service(n: int, n_ent: int) -> None:
     """The consumer (validation, update, checkpoints, acks) with the served default
     against the same with blade-chest d=16, and both against an empty consumer that
     only reads and acks, over one pre-filled stream of a real redis-server (started
-    here by :mod:`bench_service`'s helpers, stopped by its PID); medians of three."""
+    here by :mod:`_common`'s helper, stopped by its PID); medians of three."""
     import os
     import signal
     import tempfile
@@ -460,6 +460,7 @@ def speed_default_service(n: int, n_ent: int) -> None:
 
     sys.path.insert(0, str(Path(__file__).resolve().parent))
     import bench_service as bs
+    from _common import run_to_end, start_redis
 
     from streamrate.checkpoint import FileCheckpointStore
     from streamrate.config import Settings, SpaceSettings
@@ -479,16 +480,12 @@ def speed_default_service(n: int, n_ent: int) -> None:
                      lambda: build_model(model, **st))  # fmt: skip
         c.recover()
         t0 = time.perf_counter()
-        while True:
-            reading_new = c.cursor == ">"
-            if c.step() == 0 and reading_new:
-                break
-        c.checkpoint()
+        run_to_end(c)
         return c.live.applied / (time.perf_counter() - t0)
 
     setups = [("blade_chest", {"dims": 16}), (served.model, dict(served.model_settings))]
     with tempfile.TemporaryDirectory() as d:
-        proc, port = bs.start_redis(Path(d))
+        proc, port = start_redis(Path(d))
         try:
             r = redis.Redis(port=port)
             bs.fill(r, bs.event_lines(n, n_ent, 0))

@@ -38,7 +38,8 @@ from typing import Any
 
 import numpy as np
 import redis
-from bench_service import event_lines, start_redis
+from _common import start_redis
+from bench_service import event_lines
 
 from streamrate.config import load_settings
 from streamrate.replica.reader import LocalReader

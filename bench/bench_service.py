@@ -24,9 +24,7 @@ import argparse
 import json
 import os
 import resource
-import shutil
 import signal
-import socket
 import subprocess
 import sys
 import tempfile
@@ -37,6 +35,7 @@ from pathlib import Path
 
 import numpy as np
 import redis
+from _common import fill_stream, run_to_end, start_redis
 from prometheus_client import CollectorRegistry
 
 from streamrate.checkpoint import FileCheckpointStore
@@ -49,24 +48,6 @@ from streamrate.stream.lease import Lease
 
 MODEL_SETTINGS = {"dims": 16}
 STREAM = "{sr:duel}:events"
-
-
-def start_redis(directory: Path) -> tuple[subprocess.Popen[bytes], int]:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        port = int(s.getsockname()[1])
-    exe = shutil.which("redis-server") or "/usr/bin/redis-server"
-    args = [exe, "--port", str(port), "--bind", "127.0.0.1", "--dir", str(directory),
-            "--save", "", "--appendonly", "no", "--daemonize", "no"]  # fmt: skip
-    proc = subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    r = redis.Redis(port=port)
-    for _ in range(200):
-        try:
-            r.ping()
-            return proc, port
-        except redis.ConnectionError:
-            time.sleep(0.02)
-    raise RuntimeError("redis-server did not start")
 
 
 def event_lines(n: int, entities: int, seed: int) -> list[str]:
@@ -86,12 +67,7 @@ def event_lines(n: int, entities: int, seed: int) -> list[str]:
 
 
 def fill(r: redis.Redis, lines: list[str]) -> None:
-    pipe = r.pipeline(transaction=False)
-    for k, line in enumerate(lines, 1):
-        pipe.xadd(STREAM, {"event": line})
-        if k % 2000 == 0:
-            pipe.execute()
-    pipe.execute()
+    fill_stream(r, STREAM, lines)
 
 
 def empty_consumer(r: redis.Redis, group: str, batch: int) -> float:
@@ -145,11 +121,7 @@ def real_consumer(r: redis.Redis, group: str, batch: int, ckpt_dir: str) -> tupl
     c = make_writer(r, group, batch, ckpt_dir)
     c.recover()
     t0 = time.perf_counter()
-    while True:
-        reading_new = c.cursor == ">"
-        if c.step() == 0 and reading_new:
-            break
-    c.checkpoint()
+    run_to_end(c)
     return c.live.applied / (time.perf_counter() - t0), c.live.applied
 
 
