@@ -277,15 +277,7 @@ class SpaceService:
             )
         ]
         if self.stream is not None:
-            rs = self.settings.redis
-            out.append(
-                threading.Thread(
-                    target=self.stream.run,
-                    args=(stop, self.clients, rs.reconnect_min_s, rs.reconnect_max_s),
-                    name=f"responder-{name}",
-                    daemon=True,
-                )
-            )
+            out.append(self.stream.thread(stop, self.clients, self.settings.redis))
         return out
 
     # -- consumer thread --------------------------------------------------------
@@ -658,6 +650,14 @@ class Service:
                 self._replica_metrics = ReplicaMetrics(self.registry, names)
             return self._replica_metrics
 
+    def _with_quality(self, observers: Sequence[Observer], space: SpaceSettings) -> list[Observer]:
+        """``observers`` and the quality observers of ``space`` (which do not export:
+        the gauges are exported by the process writing the space)."""
+        return [
+            *observers,
+            *quality_observers(space.name, space.quality, self.quality, exporting=False),
+        ]
+
     def _standby(
         self,
         clients: ClientFactory,
@@ -668,10 +668,7 @@ class Service:
     ) -> Standby:
         """A standby of ``space``; its writer has the process's role (``both`` for a standby)."""
         # The replica feeds the same observers the writer goes on with.
-        obs: list[Observer] = [
-            *observers,
-            *quality_observers(space.name, space.quality, self.quality, exporting=False),
-        ]
+        obs = self._with_quality(observers, space)
         writer_role: Role = "writer" if role == "writer" else "both"
         make = partial(self._space_service, clients, obs, clock, space, writer_role, own=True)
         return Standby(
@@ -698,10 +695,7 @@ class Service:
         """The writer of a space (``own``: ``observers`` are the space's own already,
         the quality observers among them)."""
         if not own:
-            observers = [
-                *observers,
-                *quality_observers(space.name, space.quality, self.quality, exporting=False),
-            ]
+            observers = self._with_quality(observers, space)
         sp = SpaceService(
             self.settings,
             space,

@@ -39,7 +39,7 @@ from typing import Any
 
 import redis
 
-from streamrate.config import ReplicaSettings, SpaceKeys, SpaceSettings
+from streamrate.config import RedisSettings, ReplicaSettings, SpaceKeys, SpaceSettings
 from streamrate.errors import ReadCutError
 from streamrate.metrics import ServiceMetrics
 from streamrate.pubsub import publish
@@ -163,6 +163,19 @@ class StreamResponder:
             self.metrics.query_shed.labels(space=self.space.name, reason="too_old").inc(
                 len(claimed)
             )
+
+    def thread(
+        self, stop: threading.Event, clients: Any, redis_settings: RedisSettings
+    ) -> threading.Thread:
+        """A daemon thread running :meth:`run` until ``stop``, reconnecting with the
+        back-off of ``redis_settings``."""
+        rs = redis_settings
+        return threading.Thread(
+            target=self.run,
+            args=(stop, clients, rs.reconnect_min_s, rs.reconnect_max_s),
+            name=f"responder-{self.space.name}",
+            daemon=True,
+        )
 
     def run(self, stop: threading.Event, clients: Any, min_s: float, max_s: float) -> None:
         """Serve until ``stop``; Redis outages back off and reconnect."""

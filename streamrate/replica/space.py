@@ -80,12 +80,5 @@ class ReplicaSpace:
             )
         ]
         if answer:
-            out.append(
-                threading.Thread(
-                    target=self.stream.run,
-                    args=(stop, self.clients, rs.reconnect_min_s, rs.reconnect_max_s),
-                    name=f"responder-{name}",
-                    daemon=True,
-                )
-            )
+            out.append(self.stream.thread(stop, self.clients, rs))
         return out
