@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import json
 import random
+import subprocess
+import sys
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -120,3 +122,13 @@ def write_toml(path: Path, url: str, ckpt_dir: Path, store: str = "file", **spac
     body.append("[spaces.model_settings]")
     body += [f"{k} = {json.dumps(v)}" for k, v in MODEL_SETTINGS.items()]
     path.write_text("\n".join(body) + "\n")
+
+
+def serve(cfg: Path, log: Path, role: str) -> subprocess.Popen[bytes]:
+    """``streamrate serve --config cfg --role role`` in a subprocess, output appended to ``log``."""
+    with open(log, "ab") as fh:
+        return subprocess.Popen(
+            [sys.executable, "-m", "streamrate", "serve", "--config", str(cfg), "--role", role],
+            stdout=fh,
+            stderr=subprocess.STDOUT,
+        )

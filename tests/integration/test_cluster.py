@@ -25,7 +25,6 @@ import json
 import os
 import signal
 import subprocess
-import sys
 import threading
 import time
 from collections.abc import Iterator
@@ -47,7 +46,7 @@ from streamrate.web.hub import Hub, PairKey, Update, pairing_key
 
 from .cluster import LocalCluster
 from .conftest import RedisServer, render_users
-from .helpers import assert_same_state, wait_for, world_lines
+from .helpers import assert_same_state, serve, wait_for, world_lines
 from .test_lost_replies import check_lost_replies
 
 pytestmark = [pytest.mark.integration, pytest.mark.slow]
@@ -103,15 +102,6 @@ def _config(path: Path, cluster: LocalCluster, names: list[str], lease_ms: int) 
             "checkpoint_every_events = 300\ncheckpoint_every_s = 0.3\ndedupe_window_s = 1e9",
         ]
     path.write_text("\n".join(body) + "\n")
-
-
-def _serve(cfg: Path, log: Path, role: str) -> subprocess.Popen[bytes]:
-    with open(log, "ab") as fh:
-        return subprocess.Popen(
-            [sys.executable, "-m", "streamrate", "serve", "--config", str(cfg), "--role", role],
-            stdout=fh,
-            stderr=subprocess.STDOUT,
-        )
 
 
 def _client(cluster: LocalCluster, role: str) -> Any:
@@ -222,8 +212,8 @@ def test_six_spaces_on_three_masters_with_failover(cluster: LocalCluster, tmp_pa
     procs: list[subprocess.Popen[bytes]] = []
     producer, asker = _client(cluster, "producer"), _client(cluster, "asker")
     try:
-        procs.append(_serve(main_cfg, logs["main"], "both"))
-        procs.append(writer := _serve(one_cfg, logs["writer"], "both"))
+        procs.append(serve(main_cfg, logs["main"], "both"))
+        procs.append(writer := serve(one_cfg, logs["writer"], "both"))
 
         def listening(name: str) -> bool:
             node = nodes[owner[name].port]
@@ -236,8 +226,8 @@ def test_six_spaces_on_three_masters_with_failover(cluster: LocalCluster, tmp_pa
         for name in names:
             wait_for(lambda n=name: listening(n), 120, f"the writer of {name}")
         old_holder = admin.get(_keys(failed).lease)
-        procs.append(_serve(one_cfg, logs["standby"], "standby"))
-        procs.append(_serve(resp_cfg, logs["responder"], "responder"))
+        procs.append(serve(one_cfg, logs["standby"], "standby"))
+        procs.append(serve(resp_cfg, logs["responder"], "responder"))
 
         # Phase 1: the first half of every space's events.
         half = {name: len(w[0]) // 2 for name, w in worlds.items()}

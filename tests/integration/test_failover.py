@@ -16,7 +16,6 @@ from __future__ import annotations
 import os
 import signal
 import subprocess
-import sys
 import threading
 import time
 from pathlib import Path
@@ -29,7 +28,7 @@ from streamrate.client import send_events
 from streamrate.stream.applied_log import parse_entry
 
 from .conftest import RedisServer
-from .helpers import assert_same_state, reference, wait_for, world_lines, write_toml
+from .helpers import assert_same_state, reference, serve, wait_for, world_lines, write_toml
 
 pytestmark = [pytest.mark.integration, pytest.mark.slow]
 EVENTS = "{sr:duel}:events"
@@ -43,15 +42,6 @@ def _config(path: Path, server: RedisServer, tmp: Path) -> None:
     write_toml(path, server.url, tmp / "ckpt", store="redis")
     with open(path, "a") as fh:  # top-level tables may follow the spaces' arrays
         fh.write(f"[lease]\nlease_ms = {LEASE_MS}\nrenew_every_ms = 300\npoll_every_ms = 100\n")
-
-
-def _serve(cfg: Path, log: Path, role: str) -> subprocess.Popen[bytes]:
-    with open(log, "ab") as fh:
-        return subprocess.Popen(
-            [sys.executable, "-m", "streamrate", "serve", "--config", str(cfg), "--role", role],
-            stdout=fh,
-            stderr=subprocess.STDOUT,
-        )
 
 
 def _holder(r: redis.Redis) -> str | None:
@@ -78,11 +68,11 @@ def _start_pair(
     _config(cfg, server, tmp)
     r = server.client()
     wlog, slog = tmp / "writer.log", tmp / "standby.log"
-    writer = _serve(cfg, wlog, "both")
+    writer = serve(cfg, wlog, "both")
     wait_for(lambda: wlog.exists() and "entries to read" in wlog.read_text(), 60, "writer")
     holder = _holder(r)
     assert holder is not None
-    standby = _serve(cfg, slog, "standby")
+    standby = serve(cfg, slog, "standby")
     wait_for(lambda: slog.exists() and "replica loaded" in slog.read_text(), 60, "standby")
     return writer, standby, wlog, slog, holder
 

@@ -17,7 +17,6 @@ import random
 import re
 import signal
 import subprocess
-import sys
 import threading
 import time
 import uuid
@@ -40,6 +39,7 @@ from .helpers import (
     MODEL_SETTINGS,
     file_checkpoint,
     reference,
+    serve,
     wait_for,
     world_lines,
     write_toml,
@@ -48,15 +48,6 @@ from .helpers import (
 pytestmark = [pytest.mark.integration, pytest.mark.slow]
 EVENTS = "{sr:duel}:events"
 QSTREAM = "{sr:duel}:q:stream"
-
-
-def _serve(cfg: Path, log: Path, role: str) -> subprocess.Popen[bytes]:
-    with open(log, "ab") as fh:
-        return subprocess.Popen(
-            [sys.executable, "-m", "streamrate", "serve", "--config", str(cfg), "--role", role],
-            stdout=fh,
-            stderr=subprocess.STDOUT,
-        )
 
 
 def _count(log: Path, text: str) -> int:
@@ -141,7 +132,7 @@ def test_replica_equals_writer_while_the_writer_is_killed_and_claimed_from(
             # Another consumer name each time: the new writer claims what the dead one held.
             write_toml(cfg, redis_server.url, ckpt_dir, consumer=f"writer-{kills}", **settings_of)
             before = _count(log, "entries to read")
-            proc = _serve(cfg, log, "writer")
+            proc = serve(cfg, log, "writer")
             _wait_started(proc, log, before)
             try:
                 proc.wait(rng.uniform(0.3, 1.2))
@@ -154,7 +145,7 @@ def test_replica_equals_writer_while_the_writer_is_killed_and_claimed_from(
                 pytest.fail(f"writer exited early: {log.read_text()[-2000:]}")
         sender.join()
         write_toml(cfg, redis_server.url, ckpt_dir, consumer="writer-last", **settings_of)
-        proc = _serve(cfg, log, "writer")
+        proc = serve(cfg, log, "writer")
         try:
             wait_for(lambda: follower.live.applied == len(events), 120, "the replica to catch up")
             snap()
@@ -195,14 +186,14 @@ def test_three_responders_answer_each_request_once_when_one_is_killed(
     write_toml(cfg, redis_server.url, tmp_path / "ckpt", store="redis")
     r = redis_server.client()
     writer_log = tmp_path / "writer.log"
-    writer = _serve(cfg, writer_log, "writer")
+    writer = serve(cfg, writer_log, "writer")
     responders: list[tuple[subprocess.Popen[bytes], Path]] = []
     try:
         send_events(r, EVENTS, lines)
         wait_for(lambda: _count(writer_log, "entries to read") > 0, 60, "writer start")
         for i in range(3):
             log = tmp_path / f"responder-{i}.log"
-            responders.append((_serve(cfg, log, "responder"), log))
+            responders.append((serve(cfg, log, "responder"), log))
         for _, log in responders:
             wait_for(lambda: _count(log, "answering from the request") > 0, 60, "responder")  # noqa: B023
         wait_for(lambda: r.exists(QSTREAM) == 1 and len(r.xinfo_groups(QSTREAM)) == 1, 30, "group")
