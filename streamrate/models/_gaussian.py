@@ -22,6 +22,7 @@ import numpy as np
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError
 from streamrate.events import MatchEvent, Matchup
+from streamrate.models._snapshot import CopyOnWriteRows
 from streamrate.models.base import Model, Prediction
 
 PROBIT = math.pi / 8.0
@@ -190,28 +191,31 @@ class GaussianRows(Model):
         self.period_ = text if has else None
 
 
-def diagonal_forecast(
-    model: GaussianRows,
-    matchup: Matchup,
-    mu: np.ndarray,
-    var: np.ndarray,
-    age: np.ndarray,
-    newcomer_matches: int,
-    shared: tuple[float, float, float, float],
-) -> float:
-    """The diagonal filter's probit forecast: ``shared`` holds the advantage's mean
-    and variance, then the newcomer offset's; an unknown entity is new, at 0 with
-    ``prior_var``."""
-    m, big_v = shared[0], shared[1]
-    xb = 0.0
-    for side, sign in ((matchup.first, 1.0), (matchup.second, -1.0)):
-        x = sign / len(side)
-        for e in side:
-            r = model.entities_.get(e)
-            m += x * (0.0 if r < 0 else float(mu[r]))
-            big_v += x * x * (model.prior_var if r < 0 else float(var[r]))
-            if newcomer_matches and (r < 0 or age[r] < newcomer_matches):
-                xb += x  # an unknown entity would be new
-    m += xb * shared[2]
-    big_v += xb * xb * shared[3]
-    return 1.0 / (1.0 + math.exp(-m / math.sqrt(1.0 + PROBIT * big_v)))
+class DiagonalRows(GaussianRows, CopyOnWriteRows):
+    """The diagonal filter's rows (``bayes_strength``, ``margin_strength``): one
+    mean and variance per entity, written under copy-on-write snapshots."""
+
+    def new_period(self) -> None:
+        """Pull every strength part way to the prior and widen every variance."""
+        n = len(self.entities_)
+        self.before_write(None)
+        self.mu_[:n] *= 1.0 - self.period_pull
+        self.var_[:n] = np.minimum(self.var_[:n] + self.period_var, self.prior_var)
+
+    def _forecast(self, matchup: Matchup, shared: tuple[float, float, float, float]) -> float:
+        """The probit forecast: ``shared`` holds the advantage's mean and variance,
+        then the newcomer offset's; an unknown entity is new, at 0 with ``prior_var``."""
+        m, big_v = shared[0], shared[1]
+        xb = 0.0
+        nm = self.newcomer_matches
+        for side, sign in ((matchup.first, 1.0), (matchup.second, -1.0)):
+            x = sign / len(side)
+            for e in side:
+                r = self.entities_.get(e)
+                m += x * (0.0 if r < 0 else float(self.mu_[r]))
+                big_v += x * x * (self.prior_var if r < 0 else float(self.var_[r]))
+                if nm and (r < 0 or self.age_[r] < nm):
+                    xb += x  # an unknown entity would be new
+        m += xb * shared[2]
+        big_v += xb * xb * shared[3]
+        return 1.0 / (1.0 + math.exp(-m / math.sqrt(1.0 + PROBIT * big_v)))

@@ -77,11 +77,9 @@ from streamrate.models._gaussian import (
     DAY_S,
     PROBIT,
     ROW_NAMES,
-    GaussianRows,
+    DiagonalRows,
     check_settings,
-    diagonal_forecast,
 )
-from streamrate.models._snapshot import CopyOnWriteRows
 from streamrate.models.base import (
     ModelState,
     Prediction,
@@ -168,7 +166,7 @@ def _strength_loop(
 _strength_loop_compiled = njit(cache=True)(_strength_loop)
 
 
-class BayesStrength(GaussianRows, CopyOnWriteRows):
+class BayesStrength(DiagonalRows):
     """Gaussian strengths with per-entity variance, time noise and season pulls."""
 
     kind: ClassVar[str] = "bayes_strength"
@@ -247,13 +245,6 @@ class BayesStrength(GaussianRows, CopyOnWriteRows):
         return ModelState(state.kind, 2, params, arrays)
 
     # -- state helpers ------------------------------------------------------------
-    def new_period(self) -> None:
-        """Pull every strength part way to the prior and widen every variance."""
-        n = len(self.entities_)
-        self.before_write(None)
-        self.mu_[:n] *= 1.0 - self.period_pull
-        self.var_[:n] = np.minimum(self.var_[:n] + self.period_var, self.prior_var)
-
     def variance(self, entity_id: str) -> float:
         """The entity's strength variance now (``prior_var`` if never seen)."""
         r = self.entities_.get(entity_id)
@@ -263,9 +254,7 @@ class BayesStrength(GaussianRows, CopyOnWriteRows):
     def predict(self, matchup: Matchup) -> Prediction:
         adv, newc = self.adv_, self.newcomer_
         shared = (float(adv[0]), float(adv[1]), float(newc[0]), float(newc[1]))
-        nm = self.newcomer_matches
-        p = diagonal_forecast(self, matchup, self.mu_, self.var_, self.age_, nm, shared)
-        return Prediction(p)
+        return Prediction(self._forecast(matchup, shared))
 
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
         return self.learn_encoded(events, encode_events(events, self.entities_))
