@@ -222,16 +222,7 @@ class MarginStrength(DiagonalRows):
     """Gaussian strengths learning from results and, when given, margins."""
 
     kind: ClassVar[str] = "margin_strength"
-    PARAMS: ClassVar[tuple[str, ...]] = (
-        *BayesStrength.PARAMS,
-        "margin_scale",
-        "margin_var",
-        "margin_prior_weight",
-        "margin_memory",
-        "margin_weight",
-        "result_with_margin",
-        "margin_cap",
-    )
+    PARAMS: ClassVar[tuple[str, ...]] = (*BayesStrength.PARAMS, *KNOBS[4:])  # the margin's
 
     def __init__(
         self,
