@@ -65,16 +65,21 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from typing import Any, ClassVar
+from typing import ClassVar
 
 import numpy as np
 from numba import njit
 
 from streamrate.batch import EncodedBatch, count_matches, encode_events
-from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
-from streamrate.models._snapshot import CopyOnWriteRows
+from streamrate.models._gaussian import (
+    DAY_S,
+    PROBIT,
+    ROW_NAMES,
+    DiagonalRows,
+    check_settings,
+)
 from streamrate.models.base import (
     ModelState,
     Prediction,
@@ -83,8 +88,7 @@ from streamrate.models.base import (
     load_entity_arrays,
 )
 
-PROBIT = math.pi / 8.0
-DAY_S = 86_400.0
+__all__ = ["DAY_S", "PROBIT", "BayesStrength"]
 
 
 def _strength_loop(
@@ -162,7 +166,7 @@ def _strength_loop(
 _strength_loop_compiled = njit(cache=True)(_strength_loop)
 
 
-class BayesStrength(CopyOnWriteRows):
+class BayesStrength(DiagonalRows):
     """Gaussian strengths with per-entity variance, time noise and season pulls."""
 
     kind: ClassVar[str] = "bayes_strength"
@@ -170,6 +174,18 @@ class BayesStrength(CopyOnWriteRows):
     # clock of the shared parameters' drift (``clock``); a version 1 state loads
     # with both off, as it was trained.
     state_version: ClassVar[int] = 2
+    PARAMS: ClassVar[tuple[str, ...]] = (
+        "prior_var",
+        "noise_per_day",
+        "advantage_var",
+        "period_field",
+        "period_pull",
+        "period_var",
+        "compiled",
+        "newcomer_matches",
+        "newcomer_var",
+        "shared_noise_per_day",
+    )
 
     def __init__(
         self,
@@ -193,33 +209,26 @@ class BayesStrength(CopyOnWriteRows):
             newcomer_var,
             shared_noise_per_day,
         )
-        if not all(math.isfinite(x) for x in nums):
-            raise ConfigError("bayes_strength: settings must be finite numbers")
-        if prior_var <= 0 or min(noise_per_day, advantage_var, period_var) < 0:
-            raise ConfigError("bayes_strength: prior_var > 0; noise and variances >= 0")
-        if not 0.0 <= period_pull <= 1.0:
-            raise ConfigError("bayes_strength: period_pull must lie in [0, 1]")
+        nonnegative = (noise_per_day, advantage_var, period_var)
+        check_settings(self.kind, nums, prior_var, nonnegative, period_pull)
         if newcomer_matches < 0 or newcomer_var < 0 or shared_noise_per_day < 0:
             raise ConfigError("bayes_strength: newcomer and shared noise settings must be >= 0")
-        self.prior_var = float(prior_var)
-        self.noise_per_day = float(noise_per_day)
-        self.advantage_var = float(advantage_var)
-        self.period_field = period_field
-        self.period_pull = float(period_pull)
-        self.period_var = float(period_var)
-        self.compiled = bool(compiled)
-        self.newcomer_matches = int(newcomer_matches)
-        self.newcomer_var = float(newcomer_var)
-        self.shared_noise_per_day = float(shared_noise_per_day)
-        self.entities_ = EntityTable()
-        self.mu_ = np.zeros(16)
-        self.var_ = np.full(16, self.prior_var)
-        self.last_day_ = np.full(16, np.nan)
+        self._store_settings(
+            prior_var,
+            noise_per_day,
+            advantage_var,
+            period_field,
+            period_pull,
+            period_var,
+            newcomer_matches,
+            newcomer_var,
+            shared_noise_per_day,
+            compiled,
+        )
+        self._init_rows()
         self.adv_ = np.array([0.0, self.advantage_var])
-        self.age_ = np.zeros(16)
         self.newcomer_ = np.array([0.0, self.newcomer_var])
         self.clock_ = np.array([np.nan])  # the day of the latest event
-        self.period_: str | None = None
 
     @classmethod
     def upgrade_state(cls, state: ModelState) -> ModelState:
@@ -235,51 +244,7 @@ class BayesStrength(CopyOnWriteRows):
         params = {**state.params, "newcomer_matches": 0, "shared_noise_per_day": 0.0}
         return ModelState(state.kind, 2, params, arrays)
 
-    def get_params(self) -> dict[str, Any]:
-        return {
-            "prior_var": self.prior_var,
-            "noise_per_day": self.noise_per_day,
-            "advantage_var": self.advantage_var,
-            "period_field": self.period_field,
-            "period_pull": self.period_pull,
-            "period_var": self.period_var,
-            "compiled": self.compiled,
-            "newcomer_matches": self.newcomer_matches,
-            "newcomer_var": self.newcomer_var,
-            "shared_noise_per_day": self.shared_noise_per_day,
-        }
-
     # -- state helpers ------------------------------------------------------------
-    def _fit_capacity(self) -> None:
-        n = len(self.entities_)
-        if n > len(self.mu_):
-            size = max(n, 2 * len(self.mu_))
-            fills = (("mu_", 0.0), ("var_", self.prior_var), ("last_day_", np.nan), ("age_", 0.0))
-            for name, fill in fills:
-                old = getattr(self, name)
-                grown = np.full(size, fill)
-                grown[: len(old)] = old
-                setattr(self, name, grown)
-
-    def new_period(self) -> None:
-        """Pull every strength part way to the prior and widen every variance."""
-        n = len(self.entities_)
-        self.before_write(None)
-        self.mu_[:n] *= 1.0 - self.period_pull
-        self.var_[:n] = np.minimum(self.var_[:n] + self.period_var, self.prior_var)
-
-    def _period_of(self, event: Matchup) -> str | None:
-        if self.period_field is None or self.period_field not in event.context:
-            return None
-        return str(event.context[self.period_field])
-
-    def _enter_period(self, period: str | None) -> None:
-        if period is None:
-            return
-        if self.period_ is not None and period != self.period_:
-            self.new_period()
-        self.period_ = period
-
     def variance(self, entity_id: str) -> float:
         """The entity's strength variance now (``prior_var`` if never seen)."""
         r = self.entities_.get(entity_id)
@@ -287,22 +252,9 @@ class BayesStrength(CopyOnWriteRows):
 
     # -- the online API -----------------------------------------------------------
     def predict(self, matchup: Matchup) -> Prediction:
-        m, big_v = float(self.adv_[0]), float(self.adv_[1])
-        xb = 0.0
-        for side, sign in ((matchup.first, 1.0), (matchup.second, -1.0)):
-            x = sign / len(side)
-            for e in side:
-                r = self.entities_.get(e)
-                m += x * (0.0 if r < 0 else float(self.mu_[r]))
-                big_v += x * x * (self.prior_var if r < 0 else float(self.var_[r]))
-                if self.newcomer_matches and (r < 0 or self.age_[r] < self.newcomer_matches):
-                    xb += x  # an unknown entity would be new
-        m += xb * float(self.newcomer_[0])
-        big_v += xb * xb * float(self.newcomer_[1])
-        return Prediction(1.0 / (1.0 + math.exp(-m / math.sqrt(1.0 + PROBIT * big_v))))
-
-    def learn(self, event: MatchEvent) -> Prediction:
-        return self.learn_many([event]).one(0)
+        adv, newc = self.adv_, self.newcomer_
+        shared = (float(adv[0]), float(adv[1]), float(newc[0]), float(newc[1]))
+        return Prediction(self._forecast(matchup, shared))
 
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
         return self.learn_encoded(events, encode_events(events, self.entities_))
@@ -315,17 +267,7 @@ class BayesStrength(CopyOnWriteRows):
         mixture whose members share one table counts once)."""
         self._fit_capacity()
         self.before_batch(batch)
-        out = np.empty(len(events))
-        periods = [self._period_of(ev) for ev in events]
-        start = 0
-        # Runs of one period go through the loop together; a change of period
-        # between two runs pulls and widens first.
-        for i in range(1, len(events) + 1):
-            if i < len(events) and periods[i] == periods[i - 1]:
-                continue
-            self._enter_period(periods[start])
-            out[start:i] = self._run(batch.take(slice(start, i)))
-            start = i
+        out = self._by_period(events, lambda part: self._run(batch.take(part)))
         if count:
             count_matches(batch, self.entities_)
         return Predictions(out, np.zeros_like(out))
@@ -429,32 +371,20 @@ class BayesStrength(CopyOnWriteRows):
         arrays["advantage"] = self.adv_.copy()
         arrays["newcomer"] = self.newcomer_.copy()
         arrays["clock"] = self.clock_.copy()
-        # The current period as its UTF-8 bytes (empty: none yet).
-        arrays["period"] = np.frombuffer((self.period_ or "").encode(), dtype=np.uint8).copy()
-        arrays["has_period"] = np.array([self.period_ is not None])
+        arrays.update(self._period_arrays())
         return arrays
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
-        names = ("mu", "var", "last_day", "age")
-        table, (mu, var, last, age) = load_entity_arrays(self.kind, arrays, names)
+        table, rows = load_entity_arrays(self.kind, arrays, ROW_NAMES)
         adv = np.asarray(arrays["advantage"], dtype=np.float64)
         newc = np.asarray(arrays["newcomer"], dtype=np.float64)
         for name, a in (("advantage", adv), ("newcomer", newc)):
             if a.shape != (2,) or not np.all(np.isfinite(a)):
                 raise StateError(f"bayes_strength: array {name!r} must hold two finite numbers")
-        self.entities_ = table
-        size = max(16, 2 * len(table))
-        self.mu_, self.var_ = np.zeros(size), np.full(size, self.prior_var)
-        self.last_day_ = np.full(size, np.nan)
-        self.mu_[: len(table)], self.var_[: len(table)] = mu, var
-        self.last_day_[: len(table)] = last
-        self.age_ = np.zeros(size)
-        self.age_[: len(table)] = age
+        self._load_rows(table, rows)
         self.adv_, self.newcomer_ = adv.copy(), newc.copy()
         clock = np.asarray(arrays["clock"], dtype=np.float64)
         if clock.shape != (1,):
             raise StateError("bayes_strength: array 'clock' must hold one number")
         self.clock_ = clock.copy()
-        has = bool(np.asarray(arrays["has_period"]).reshape(-1)[0])
-        text = np.asarray(arrays["period"], dtype=np.uint8).tobytes().decode()
-        self.period_ = text if has else None
+        self._load_period(arrays)

@@ -78,25 +78,29 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from typing import Any, ClassVar
+from typing import ClassVar
 
 import numpy as np
 
 from streamrate.batch import EncodedBatch, count_matches, encode_events
-from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
+from streamrate.models._gaussian import (
+    DAY_S,
+    PROBIT,
+    ROW_NAMES,
+    GaussianRows,
+    check_settings,
+)
 from streamrate.models._jit import kernel
 from streamrate.models.base import (
-    Model,
     Prediction,
     Predictions,
     entity_arrays,
     load_entity_arrays,
 )
 
-PROBIT = math.pi / 8.0
-DAY_S = 86_400.0
+__all__ = ["DAY_S", "HEAD", "PROBIT", "KalmanStrength"]
 HEAD = 2
 """Slots 0 and 1 of the state hold the advantage and the newcomer offset."""
 
@@ -211,7 +215,7 @@ def _kalman_loop(
 _kalman_loop_compiled = kernel(_kalman_loop)
 
 
-class KalmanStrength(Model):
+class KalmanStrength(GaussianRows):
     """Gaussian strengths with a full covariance over the active entities.
 
     The settings shared with :class:`~streamrate.models.bayes_strength.BayesStrength`
@@ -219,6 +223,24 @@ class KalmanStrength(Model):
 
     kind: ClassVar[str] = "kalman_strength"
     state_version: ClassVar[int] = 1
+    PARAMS: ClassVar[tuple[str, ...]] = (
+        "prior_var",
+        "noise_per_day",
+        "advantage_var",
+        "period_field",
+        "period_pull",
+        "period_var",
+        "newcomer_matches",
+        "newcomer_var",
+        "shared_noise_per_day",
+        "max_active",
+        "idle_days",
+        "compiled",
+    )
+    ROW_FILLS: ClassVar[tuple[tuple[str, float], ...]] = (
+        *GaussianRows.ROW_FILLS,
+        ("slot_of_", -1),
+    )
 
     def __init__(
         self,
@@ -245,76 +267,36 @@ class KalmanStrength(Model):
             shared_noise_per_day,
             idle_days,
         )
-        if not all(math.isfinite(x) for x in nums):
-            raise ConfigError("kalman_strength: settings must be finite numbers")
-        if prior_var <= 0 or min(noise_per_day, advantage_var, period_var, newcomer_var) < 0:
-            raise ConfigError("kalman_strength: prior_var > 0; noise and variances >= 0")
-        if not 0.0 <= period_pull <= 1.0:
-            raise ConfigError("kalman_strength: period_pull must lie in [0, 1]")
+        nonnegative = (noise_per_day, advantage_var, period_var, newcomer_var)
+        check_settings(self.kind, nums, prior_var, nonnegative, period_pull)
         if newcomer_matches < 0 or shared_noise_per_day < 0 or idle_days <= 0:
             raise ConfigError("kalman_strength: newcomer_matches, shared noise >= 0; idle_days > 0")
         if not 2 <= max_active <= 1024:  # the covariance: at most 8.4 MB
             raise ConfigError("kalman_strength: max_active must lie in [2, 1024]")
-        self.prior_var = float(prior_var)
-        self.noise_per_day = float(noise_per_day)
-        self.advantage_var = float(advantage_var)
-        self.period_field = period_field
-        self.period_pull = float(period_pull)
-        self.period_var = float(period_var)
-        self.newcomer_matches = int(newcomer_matches)
-        self.newcomer_var = float(newcomer_var)
-        self.shared_noise_per_day = float(shared_noise_per_day)
+        self._store_settings(
+            prior_var,
+            noise_per_day,
+            advantage_var,
+            period_field,
+            period_pull,
+            period_var,
+            newcomer_matches,
+            newcomer_var,
+            shared_noise_per_day,
+            compiled,
+        )
         self.max_active = int(max_active)
         self.idle_days = float(idle_days)
-        self.compiled = bool(compiled)
-        self.entities_ = EntityTable()
-        self.mu_ = np.zeros(16)
-        self.var_ = np.full(16, self.prior_var)
-        self.last_day_ = np.full(16, np.nan)
-        self.age_ = np.zeros(16)
-        self.slot_of_ = np.full(16, -1, dtype=np.int64)
+        self.slot_of_: np.ndarray
+        self._init_rows({"slot_of_": np.int64})
         self.row_of_ = np.full(self.max_active, -1, dtype=np.int64)
         self.z_ = np.zeros(HEAD + self.max_active)
         self.cov_ = np.zeros((HEAD + self.max_active, HEAD + self.max_active))
         self.cov_[0, 0] = self.advantage_var
         self.cov_[1, 1] = self.newcomer_var
         self.clock_ = np.array([np.nan])
-        self.period_: str | None = None
-
-    def get_params(self) -> dict[str, Any]:
-        return {
-            "prior_var": self.prior_var,
-            "noise_per_day": self.noise_per_day,
-            "advantage_var": self.advantage_var,
-            "period_field": self.period_field,
-            "period_pull": self.period_pull,
-            "period_var": self.period_var,
-            "newcomer_matches": self.newcomer_matches,
-            "newcomer_var": self.newcomer_var,
-            "shared_noise_per_day": self.shared_noise_per_day,
-            "max_active": self.max_active,
-            "idle_days": self.idle_days,
-            "compiled": self.compiled,
-        }
 
     # -- state helpers ------------------------------------------------------------
-    def _fit_capacity(self) -> None:
-        n = len(self.entities_)
-        if n > len(self.mu_):
-            size = max(n, 2 * len(self.mu_))
-            fills: tuple[tuple[str, float], ...] = (
-                ("mu_", 0.0),
-                ("var_", self.prior_var),
-                ("last_day_", np.nan),
-                ("age_", 0.0),
-                ("slot_of_", -1),
-            )
-            for name, fill in fills:
-                old = getattr(self, name)
-                grown = np.full(size, fill, dtype=old.dtype)
-                grown[: len(old)] = old
-                setattr(self, name, grown)
-
     def new_period(self) -> None:
         """Every strength becomes ``(1 - c) s + e``, ``e ~ N(0, period_var)``."""
         c = 1.0 - self.period_pull
@@ -327,18 +309,6 @@ class KalmanStrength(Model):
         for s in np.flatnonzero(self.row_of_ >= 0):
             k = HEAD + int(s)
             self.cov_[k, k] = max(min(self.cov_[k, k] + self.period_var, self.prior_var), 0.0)
-
-    def _period_of(self, event: Matchup) -> str | None:
-        if self.period_field is None or self.period_field not in event.context:
-            return None
-        return str(event.context[self.period_field])
-
-    def _enter_period(self, period: str | None) -> None:
-        if period is None:
-            return
-        if self.period_ is not None and period != self.period_:
-            self.new_period()
-        self.period_ = period
 
     def mean_cov(self, entity_ids: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
         """The joint mean and covariance of these entities' strengths now (no idle
@@ -409,9 +379,6 @@ class KalmanStrength(Model):
         big_v = max(big_v + float(u @ x), 0.0)
         return 1.0 / (1.0 + math.exp(-m / math.sqrt(1.0 + PROBIT * big_v)))
 
-    def learn(self, event: MatchEvent) -> Prediction:
-        return self.learn_many([event]).one(0)
-
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
         return self.learn_encoded(events, encode_events(events, self.entities_))
 
@@ -424,15 +391,7 @@ class KalmanStrength(Model):
         self._fit_capacity()
         if len(events) and int((batch.first_size + batch.second_size).max()) > self.max_active:
             raise ConfigError("kalman_strength: a match has more members than max_active")
-        out = np.empty(len(events))
-        periods = [self._period_of(ev) for ev in events]
-        start = 0
-        for i in range(1, len(events) + 1):
-            if i < len(events) and periods[i] == periods[i - 1]:
-                continue
-            self._enter_period(periods[start])
-            out[start:i] = self._run(batch.take(slice(start, i)))
-            start = i
+        out = self._by_period(events, lambda part: self._run(batch.take(part)))
         if count:
             count_matches(batch, self.entities_)
         return Predictions(out, np.zeros_like(out))
@@ -501,13 +460,12 @@ class KalmanStrength(Model):
         arrays["z"] = self.z_.copy()
         arrays["cov"] = self.cov_.copy()
         arrays["clock"] = self.clock_.copy()
-        arrays["period"] = np.frombuffer((self.period_ or "").encode(), dtype=np.uint8).copy()
-        arrays["has_period"] = np.array([self.period_ is not None])
+        arrays.update(self._period_arrays())
         return arrays
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
-        names = ("mu", "var", "last_day", "age", "slot_of")
-        table, (mu, var, last, age, slot_of) = load_entity_arrays(self.kind, arrays, names)
+        names = (*ROW_NAMES, "slot_of")
+        table, rows = load_entity_arrays(self.kind, arrays, names)
         k = HEAD + self.max_active
         z = np.asarray(arrays["z"], dtype=np.float64)
         cov = np.asarray(arrays["cov"], dtype=np.float64)
@@ -518,13 +476,7 @@ class KalmanStrength(Model):
         if not (np.all(np.isfinite(z)) and np.all(np.isfinite(cov))) or clock.shape != (1,):
             raise StateError("kalman_strength: mean and covariance must be finite")
         n = len(table)
-        size = max(16, 2 * n)
-        self.entities_ = table
-        self.mu_, self.var_ = np.zeros(size), np.full(size, self.prior_var)
-        self.last_day_, self.age_ = np.full(size, np.nan), np.zeros(size)
-        self.slot_of_ = np.full(size, -1, dtype=np.int64)
-        self.mu_[:n], self.var_[:n], self.last_day_[:n], self.age_[:n] = mu, var, last, age
-        self.slot_of_[:n] = slot_of.astype(np.int64)
+        self._load_rows(table, (*rows[:-1], rows[-1].astype(np.int64)))
         active = row_of[row_of >= 0]
         if np.any(active >= n) or not np.array_equal(
             np.sort(np.flatnonzero(self.slot_of_[:n] >= 0)), np.sort(active)
@@ -532,6 +484,4 @@ class KalmanStrength(Model):
             raise StateError("kalman_strength: active slots and entities disagree")
         self.row_of_, self.z_, self.cov_ = row_of.copy(), z.copy(), cov.copy()
         self.clock_ = clock.copy()
-        has = bool(np.asarray(arrays["has_period"]).reshape(-1)[0])
-        text = np.asarray(arrays["period"], dtype=np.uint8).tobytes().decode()
-        self.period_ = text if has else None
+        self._load_period(arrays)

@@ -68,25 +68,30 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from typing import Any, ClassVar
+from typing import ClassVar
 
 import numpy as np
 
 from streamrate.batch import EncodedBatch, count_matches, encode_events
-from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
+from streamrate.models._gaussian import (
+    DAY_S,
+    PROBIT,
+    ROW_NAMES,
+    DiagonalRows,
+    check_settings,
+)
 from streamrate.models._jit import kernel
-from streamrate.models._snapshot import CopyOnWriteRows
 from streamrate.models.base import (
     Prediction,
     Predictions,
     entity_arrays,
     load_entity_arrays,
 )
+from streamrate.models.bayes_strength import BayesStrength
 
-PROBIT = math.pi / 8.0
-DAY_S = 86_400.0
+__all__ = ["DAY_S", "KNOBS", "PROBIT", "MarginStrength"]
 # shared: [mu_h, v_h, mu_b, v_b, clock]; moments: [count, sum d m, sum m^2, sum resid]
 # knobs: the settings the loop reads, in this order:
 KNOBS = (
@@ -213,10 +218,11 @@ def _margin_loop(
 _margin_loop_compiled = kernel(_margin_loop)
 
 
-class MarginStrength(CopyOnWriteRows):
+class MarginStrength(DiagonalRows):
     """Gaussian strengths learning from results and, when given, margins."""
 
     kind: ClassVar[str] = "margin_strength"
+    PARAMS: ClassVar[tuple[str, ...]] = (*BayesStrength.PARAMS, *KNOBS[4:])  # the margin's
 
     def __init__(
         self,
@@ -253,28 +259,26 @@ class MarginStrength(CopyOnWriteRows):
             margin_weight,
             margin_cap,
         )
-        if not all(math.isfinite(x) for x in nums):
-            raise ConfigError("margin_strength: settings must be finite numbers")
-        if prior_var <= 0 or min(noise_per_day, advantage_var, period_var) < 0:
-            raise ConfigError("margin_strength: prior_var > 0; noise and variances >= 0")
-        if not 0.0 <= period_pull <= 1.0:
-            raise ConfigError("margin_strength: period_pull must lie in [0, 1]")
+        nonnegative = (noise_per_day, advantage_var, period_var)
+        check_settings(self.kind, nums, prior_var, nonnegative, period_pull)
         if newcomer_matches < 0 or newcomer_var < 0 or shared_noise_per_day < 0:
             raise ConfigError("margin_strength: newcomer and shared noise settings must be >= 0")
         if min(margin_scale, margin_var, margin_prior_weight, margin_weight, margin_cap) <= 0:
             raise ConfigError("margin_strength: margin settings must be > 0")
         if margin_memory < 1:
             raise ConfigError("margin_strength: margin_memory must be at least 1 (events)")
-        self.prior_var = float(prior_var)
-        self.noise_per_day = float(noise_per_day)
-        self.advantage_var = float(advantage_var)
-        self.period_field = period_field
-        self.period_pull = float(period_pull)
-        self.period_var = float(period_var)
-        self.compiled = bool(compiled)
-        self.newcomer_matches = int(newcomer_matches)
-        self.newcomer_var = float(newcomer_var)
-        self.shared_noise_per_day = float(shared_noise_per_day)
+        self._store_settings(
+            prior_var,
+            noise_per_day,
+            advantage_var,
+            period_field,
+            period_pull,
+            period_var,
+            newcomer_matches,
+            newcomer_var,
+            shared_noise_per_day,
+            compiled,
+        )
         self.margin_scale = float(margin_scale)
         self.margin_var = float(margin_var)
         self.margin_prior_weight = float(margin_prior_weight)
@@ -283,35 +287,9 @@ class MarginStrength(CopyOnWriteRows):
         self.result_with_margin = bool(result_with_margin)
         self.margin_cap = float(margin_cap)
         self._knobs = np.array([float(getattr(self, name)) for name in KNOBS])
-        self.entities_ = EntityTable()
-        self.mu_ = np.zeros(16)
-        self.var_ = np.full(16, self.prior_var)
-        self.last_day_ = np.full(16, np.nan)
-        self.age_ = np.zeros(16)
+        self._init_rows()
         self.shared_ = np.array([0.0, self.advantage_var, 0.0, self.newcomer_var, np.nan])
         self.moments_ = np.zeros(4)
-        self.period_: str | None = None
-
-    def get_params(self) -> dict[str, Any]:
-        return {
-            "prior_var": self.prior_var,
-            "noise_per_day": self.noise_per_day,
-            "advantage_var": self.advantage_var,
-            "period_field": self.period_field,
-            "period_pull": self.period_pull,
-            "period_var": self.period_var,
-            "compiled": self.compiled,
-            "newcomer_matches": self.newcomer_matches,
-            "newcomer_var": self.newcomer_var,
-            "shared_noise_per_day": self.shared_noise_per_day,
-            "margin_scale": self.margin_scale,
-            "margin_var": self.margin_var,
-            "margin_prior_weight": self.margin_prior_weight,
-            "margin_memory": self.margin_memory,
-            "margin_weight": self.margin_weight,
-            "result_with_margin": self.result_with_margin,
-            "margin_cap": self.margin_cap,
-        }
 
     def margin_model(self) -> tuple[float, float]:
         """The current margin per unit of logit ``c`` and margin noise variance ``r``."""
@@ -321,51 +299,11 @@ class MarginStrength(CopyOnWriteRows):
         r = max((mom[3] + k * self.margin_var) / (mom[0] + k), 0.01 * self.margin_var)
         return float(c), float(r)
 
-    # -- state helpers ------------------------------------------------------------
-    def _fit_capacity(self) -> None:
-        n = len(self.entities_)
-        if n > len(self.mu_):
-            size = max(n, 2 * len(self.mu_))
-            fills = (("mu_", 0.0), ("var_", self.prior_var), ("last_day_", np.nan), ("age_", 0.0))
-            for name, fill in fills:
-                old = getattr(self, name)
-                grown = np.full(size, fill)
-                grown[: len(old)] = old
-                setattr(self, name, grown)
-
-    def _period_of(self, event: Matchup) -> str | None:
-        if self.period_field is None or self.period_field not in event.context:
-            return None
-        return str(event.context[self.period_field])
-
-    def _enter_period(self, period: str | None) -> None:
-        if period is None:
-            return
-        if self.period_ is not None and period != self.period_:
-            n = len(self.entities_)
-            self.before_write(None)
-            self.mu_[:n] *= 1.0 - self.period_pull
-            self.var_[:n] = np.minimum(self.var_[:n] + self.period_var, self.prior_var)
-        self.period_ = period
-
     # -- the online API -----------------------------------------------------------
     def predict(self, matchup: Matchup) -> Prediction:
-        m, big_v = float(self.shared_[0]), float(self.shared_[1])
-        xb = 0.0
-        for side, sign in ((matchup.first, 1.0), (matchup.second, -1.0)):
-            x = sign / len(side)
-            for e in side:
-                r = self.entities_.get(e)
-                m += x * (0.0 if r < 0 else float(self.mu_[r]))
-                big_v += x * x * (self.prior_var if r < 0 else float(self.var_[r]))
-                if self.newcomer_matches and (r < 0 or self.age_[r] < self.newcomer_matches):
-                    xb += x
-        m += xb * float(self.shared_[2])
-        big_v += xb * xb * float(self.shared_[3])
-        return Prediction(1.0 / (1.0 + math.exp(-m / math.sqrt(1.0 + PROBIT * big_v))))
-
-    def learn(self, event: MatchEvent) -> Prediction:
-        return self.learn_many([event]).one(0)
+        sh = self.shared_
+        shared = (float(sh[0]), float(sh[1]), float(sh[2]), float(sh[3]))
+        return Prediction(self._forecast(matchup, shared))
 
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
         """The sequential path; there is no separate mini-batch update
@@ -376,15 +314,7 @@ class MarginStrength(CopyOnWriteRows):
         margins = np.array([math.nan if ev.margin is None else ev.margin for ev in events])
         self._fit_capacity()
         self.before_batch(batch)
-        out = np.empty(len(events))
-        periods = [self._period_of(ev) for ev in events]
-        start = 0
-        for i in range(1, len(events) + 1):  # runs of one period go through together
-            if i < len(events) and periods[i] == periods[i - 1]:
-                continue
-            self._enter_period(periods[start])
-            out[start:i] = self._run(batch.take(slice(start, i)), margins[start:i])
-            start = i
+        out = self._by_period(events, lambda part: self._run(batch.take(part), margins[part]))
         count_matches(batch, self.entities_)
         return Predictions(out, np.zeros_like(out))
 
@@ -418,26 +348,17 @@ class MarginStrength(CopyOnWriteRows):
         arrays = entity_arrays(self.entities_, **(self._entity_rows() if rows else {}))
         arrays["shared"] = self.shared_.copy()
         arrays["moments"] = self.moments_.copy()
-        arrays["period"] = np.frombuffer((self.period_ or "").encode(), dtype=np.uint8).copy()
-        arrays["has_period"] = np.array([self.period_ is not None])
+        arrays.update(self._period_arrays())
         return arrays
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
-        names = ("mu", "var", "last_day", "age")
-        table, (mu, var, last, age) = load_entity_arrays(self.kind, arrays, names)
+        table, rows = load_entity_arrays(self.kind, arrays, ROW_NAMES)
         shared = np.asarray(arrays["shared"], dtype=np.float64)
         moments = np.asarray(arrays["moments"], dtype=np.float64)
         if shared.shape != (5,) or not np.all(np.isfinite(shared[:4])):
             raise StateError("margin_strength: array 'shared' must hold five numbers")
         if moments.shape != (4,) or not np.all(np.isfinite(moments)):
             raise StateError("margin_strength: array 'moments' must hold four finite numbers")
-        self.entities_ = table
-        size = max(16, 2 * len(table))
-        self.mu_, self.var_ = np.zeros(size), np.full(size, self.prior_var)
-        self.last_day_, self.age_ = np.full(size, np.nan), np.zeros(size)
-        n = len(table)
-        self.mu_[:n], self.var_[:n], self.last_day_[:n], self.age_[:n] = mu, var, last, age
+        self._load_rows(table, rows)
         self.shared_, self.moments_ = shared.copy(), moments.copy()
-        has = bool(np.asarray(arrays["has_period"]).reshape(-1)[0])
-        text = np.asarray(arrays["period"], dtype=np.uint8).tobytes().decode()
-        self.period_ = text if has else None
+        self._load_period(arrays)

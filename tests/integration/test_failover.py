@@ -181,7 +181,9 @@ def test_a_writer_woken_after_losing_its_lease_stops_writing_and_follows_as_a_st
     rows = [parse_entry(sid, f) for sid, f in r.xrange(APPLIED)]
     at = next(e for e in rows if e.id == ck.log_id)
     assert at.epoch >= new_epoch
-    first_new = next(i for i, e in enumerate(rows) if e.epoch == new_epoch)
-    assert all(e.epoch >= new_epoch for e in rows[first_new:])
+    # Epochs never go back along the log (the new writer's entries may be trimmed
+    # by now, once the old one took the space back and checkpointed past them).
+    epochs = [e.epoch for e in rows]
+    assert epochs == sorted(epochs)
     assert ck.applied == len(events)
     assert_same_state(ck, reference(events))
