@@ -132,3 +132,17 @@ def serve(cfg: Path, log: Path, role: str) -> subprocess.Popen[bytes]:
             stdout=fh,
             stderr=subprocess.STDOUT,
         )
+
+
+def render_toml(tables: dict[str, dict[str, object]], spaces: list[dict[str, object]]) -> str:
+    """A settings file: ``tables`` first, then each space with the shared ``MODEL_SETTINGS``."""
+    lines = []
+    for table, values in tables.items():
+        lines.append(f"[{table}]")
+        lines += [f"{k} = {json.dumps(v)}" for k, v in values.items()]
+    for space in spaces:
+        lines.append("[[spaces]]")
+        lines += [f"{k} = {json.dumps(v)}" for k, v in space.items()]
+        lines.append("[spaces.model_settings]")
+        lines += [f"{k} = {json.dumps(v)}" for k, v in MODEL_SETTINGS.items()]
+    return "\n".join(lines) + "\n"

@@ -12,7 +12,6 @@ equals an uninterrupted run of its events: nothing lost, nothing applied twice.
 from __future__ import annotations
 
 import collections
-import json
 import os
 import signal
 import subprocess
@@ -28,10 +27,10 @@ from streamrate.client import send_events
 from .conftest import SecureRedisServer
 from .helpers import (
     MODEL,
-    MODEL_SETTINGS,
     READY_WAIT_S,
     assert_same_state,
     reference,
+    render_toml,
     wait_for,
     world_lines,
 )
@@ -54,12 +53,8 @@ def _config(path: Path, server: SecureRedisServer, tmp: Path) -> None:
         "lease": {"lease_ms": LEASE_MS, "renew_every_ms": 300, "poll_every_ms": 100},
         "pool": {"heartbeat_ms": 300, "member_ttl_ms": LEASE_MS},
     }
-    lines = []
-    for table, values in tables.items():
-        lines.append(f"[{table}]")
-        lines += [f"{k} = {json.dumps(v)}" for k, v in values.items()]
-    for name in SPACES:
-        space: dict[str, object] = {
+    spaces: list[dict[str, object]] = [
+        {
             "name": name,
             "model": MODEL,
             "batch_count": 50,
@@ -69,11 +64,9 @@ def _config(path: Path, server: SecureRedisServer, tmp: Path) -> None:
             "dedupe_window_s": 1e9,
             "claim_idle_ms": 1000,
         }
-        lines.append("[[spaces]]")
-        lines += [f"{k} = {json.dumps(v)}" for k, v in space.items()]
-        lines.append("[spaces.model_settings]")
-        lines += [f"{k} = {json.dumps(v)}" for k, v in MODEL_SETTINGS.items()]
-    path.write_text("\n".join(lines) + "\n")
+        for name in SPACES
+    ]
+    path.write_text(render_toml(tables, spaces))
 
 
 def _serve(cfg: Path, log: Path) -> subprocess.Popen[bytes]:

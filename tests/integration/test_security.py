@@ -30,22 +30,14 @@ from streamrate.service import Service, redis_factory
 from tests.integration.helpers import READY_WAIT_S
 
 from .conftest import SecureRedisServer
-from .helpers import MODEL, MODEL_SETTINGS, reference, wait_for, world_lines
+from .helpers import MODEL, MODEL_SETTINGS, reference, render_toml, wait_for, world_lines
 
 pytestmark = pytest.mark.integration
 EVENTS_KEY, CKPT_KEY, DEAD_KEY = "{sr:duel}:events", "{sr:duel}:ckpt", "{sr:duel}:dead"
 
 
 def _toml(path: Path, body: dict[str, dict[str, object]], space: dict[str, object]) -> Path:
-    lines = []
-    for table, values in body.items():
-        lines.append(f"[{table}]")
-        lines += [f"{k} = {json.dumps(v)}" for k, v in values.items()]
-    lines.append("[[spaces]]")
-    lines += [f"{k} = {json.dumps(v)}" for k, v in space.items()]
-    lines.append("[spaces.model_settings]")
-    lines += [f"{k} = {json.dumps(v)}" for k, v in MODEL_SETTINGS.items()]
-    path.write_text("\n".join(lines) + "\n")
+    path.write_text(render_toml(body, [space]))
     return path
 
 
