@@ -54,6 +54,7 @@ def write_config(path: Path, port: int, ckpt: Path) -> None:
         f'[redis]\nurl = "redis://127.0.0.1:{port}/0"\n'
         f'[checkpoint]\nstore = "redis"\ndir = "{ckpt}"\n'
         "[queries]\ncpu_share = 1.0\n"
+        "[metrics]\nenabled = false\n"  # several processes: no shared metrics port
         '[[spaces]]\nname = "duel"\nmodel = "blade_chest"\nbatch_count = 200\nblock_ms = 20\n'
         "[spaces.model_settings]\ndims = 16\n"
         '[[spaces]]\nname = "rating"\nmodel = "elo"\nbatch_count = 200\nblock_ms = 20\n'
