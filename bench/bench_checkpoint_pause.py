@@ -53,6 +53,7 @@ from streamrate.models._snapshot import RowSnapshot
 from streamrate.models.base import Model, ModelState, warm_up
 from streamrate.models.matchup import BladeChest
 from streamrate.models.registry import build_model, model_from_state
+from streamrate.service import freeze_loaded, tune_gc
 from streamrate.stream.apply import LiveModel
 from streamrate.stream.checkpoints import Checkpointer
 
@@ -269,15 +270,26 @@ def main() -> None:
     ap.add_argument("--dims", type=int, default=16)
     ap.add_argument("--events", type=int, default=60_000, help="events applied per mode")
     ap.add_argument("--every", type=int, default=15_000, help="events between checkpoints")
+    ap.add_argument(
+        "--gc",
+        choices=("default", "tuned"),
+        default="default",
+        help="tuned: the collector as `streamrate serve` sets it (tune_gc, then freeze_loaded "
+        "once the model is built, as after loading a checkpoint)",
+    )
     args = ap.parse_args()
+    if args.gc == "tuned":
+        tune_gc()
     t0 = time.perf_counter()
     model = build(args.entities, args.dims, args.model)
     name = f"blade_chest d={args.dims}" if args.model == "blade_chest" else "the default model"
     print(
-        f"{name} ({model.kind}), {len(model.entities_):,} entities "
+        f"{name} ({model.kind}), {len(model.entities_):,} entities, collector {args.gc} "
         f"(built in {time.perf_counter() - t0:.0f} s); {args.events:,} events per mode, "
         f"a checkpoint every {args.every:,}"
     )
+    if args.gc == "tuned":
+        freeze_loaded()
     live = LiveModel(model, lock=TimedLock())  # type: ignore[arg-type]
     chunk = SpaceSettings().lock_chunk
     got = {}
