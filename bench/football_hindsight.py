@@ -35,8 +35,8 @@ from scipy.optimize import minimize
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from streamrate.calibration import log_loss
-from streamrate.events import MatchEvent
 from streamrate.evaluate import numbered_events
+from streamrate.events import MatchEvent
 from streamrate.models.registry import build_model
 
 
@@ -96,9 +96,7 @@ def elo_forecasts(
     return out
 
 
-def tune_elo(
-    data: tuple[np.ndarray, ...], burn: int, evals: int
-) -> tuple[float, dict[str, float]]:
+def tune_elo(data: tuple[np.ndarray, ...], burn: int, evals: int) -> tuple[float, dict[str, float]]:
     home, away, new_season, y, n = data
     names = ("k", "bonus", "pull", "scale", "start")
 

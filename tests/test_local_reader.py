@@ -164,6 +164,7 @@ CONTEXTS: list[dict[str, Any]] = [
     kind=st.sampled_from(["bradley_terry", "blade_chest", "blade_chest_dist"]),
     dims=st.integers(1, 16),
     uncertainty=st.booleans(),
+    vector_uncertainty=st.booleans(),
     draws=st.booleans(),
     context=st.sampled_from(["none", "stacked", "gated"]),
     context_width=st.sampled_from([0, 8]),
@@ -185,6 +186,7 @@ def test_matchup_fast_path_equals_predict(
     kind: str,
     dims: int,
     uncertainty: bool,
+    vector_uncertainty: bool,
     draws: bool,
     context: str,
     context_width: int,
@@ -205,6 +207,7 @@ def test_matchup_fast_path_equals_predict(
     }
     if kind != "bradley_terry":
         opts["dims"] = dims
+        opts["vector_uncertainty"] = vector_uncertainty
     model: Model = build_model(kind, **opts)
     world = DRAW_WORLD if draws else WORLD
     model.learn_many(world[:trained])

@@ -81,6 +81,23 @@ CONFIGS = [
     (BladeChest, RICH),
     (BladeChestDistance, {**RICH, "context": "gated", "prior_map": "identity"}),
     (BladeChest, {"dims": 3, "context": "gated", "context_width": 8, "strength": False}),
+    (BladeChest, {**RICH, "vector_uncertainty": True}),
+    (
+        BladeChestDistance,
+        {**RICH, "context": "gated", "prior_map": "identity", "vector_uncertainty": True},
+    ),
+    (
+        BladeChest,
+        {
+            "dims": 3,
+            "context": "gated",
+            "context_width": 8,
+            "strength": False,
+            "uncertainty": False,
+            "vector_uncertainty": True,
+            "vector_noise_per_day": 0.5,
+        },
+    ),
 ]
 
 

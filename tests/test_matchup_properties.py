@@ -38,6 +38,8 @@ def models(draw: st.DrawFn) -> MatchupModel:
     }
     if kind is not BradleyTerry:
         settings_["dims"] = draw(st.integers(1, 4))
+        settings_["vector_uncertainty"] = draw(st.booleans())
+        settings_["vector_prior_var"] = draw(st.sampled_from([1e-3, 0.1, 10.0]))
     m = kind(**settings_)
     n = draw(st.integers(0, 25))
     evs = []

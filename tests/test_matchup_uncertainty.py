@@ -120,3 +120,120 @@ def test_a_version_2_state_loads_with_uncertainty_off() -> None:
     assert back.predict(q) == old.predict(q)
     fresh = model_from_state(BladeChest(dims=2).to_state())
     assert isinstance(fresh, BladeChest) and fresh.uncertainty
+
+
+# -- vector uncertainty: one variance per blade and per chest --------------------------
+
+
+def _known_pair(backend: str, v: float, dims: int = 3) -> tuple[BladeChest, int, int]:
+    """A model where kelvash and morvenn have rows and random vectors, all variances 0."""
+    m = BladeChest(dims=dims, strength=False, uncertainty=False, vector_uncertainty=True,
+                   vector_noise_per_day=0.0, advantage=False, l2=0.0, context="none",
+                   init_scale=0.8, backend=backend, vector_prior_var=v)  # fmt: skip
+    m.learn(_ev(0, ("kelvash",), ("morvenn",), 1.0))
+    ra, rb = m.entities_.get("kelvash"), m.entities_.get("morvenn")
+    m.acc_[[ra, rb], 0] = 0.0
+    m.acc_[[ra, rb], dims] = 0.0
+    return m, ra, rb
+
+
+@pytest.mark.parametrize("backend", ["numba", "numpy"])
+@pytest.mark.parametrize("score", [1.0, 0.0, 0.5])
+def test_one_uncertain_blade_is_the_laplace_update_of_a_linear_gaussian_model(
+    backend: str, score: float
+) -> None:
+    # With every other vector known for sure, the logit a_A . c_B - a_B . c_A is linear in
+    # the first side's blade a_A, so the model is a logistic regression with Gaussian prior
+    # N(m, v I) on a_A. Reference (common practice: Laplace approximation of one logistic
+    # observation, expanded at the prior mean, with the probit-widened likelihood): the
+    # precision P = I / v + w c_B c_B', w = kappa^2 p (1 - p), kappa = 1/sqrt(1 + pi v|c_B|^2/8);
+    # the mean m + P^-1 g with g = kappa (y - p) c_B, solved here with numpy. The model keeps
+    # one variance for the blade: its precision is the average of P's diagonal, d / tr(P).
+    d, v = 3, 0.75  # exact in the float32 state
+    m, ra, rb = _known_pair(backend, v, d)
+    m.acc_[ra, 0] = v  # only the first side's blade is uncertain
+    own = m.own_.astype(np.float64)
+    a_a, c_a, a_b, c_b = own[ra, :d], own[ra, d:], own[rb, :d], own[rb, d:]
+    theta = float(a_a @ c_b - a_b @ c_a)
+    kappa = 1.0 / math.sqrt(1.0 + math.pi * v * float(c_b @ c_b) / 8.0)
+    p = _sigmoid(kappa * theta)
+    got_p = m.learn(_ev(1, ("kelvash",), ("morvenn",), score)).p_win
+    assert got_p == pytest.approx(p, rel=1e-12)
+    w = kappa**2 * p * (1 - p)
+    prec = np.eye(d) / v + w * np.outer(c_b, c_b)
+    mean = a_a + np.linalg.solve(prec, kappa * (score - p) * c_b)
+    after = m.own_.astype(np.float64)
+    np.testing.assert_allclose(after[ra, :d], mean, rtol=1e-6, atol=1e-7)
+    assert m.vector_variances("kelvash") == pytest.approx((d / np.trace(prec), 0.0), rel=1e-6)
+    # everything known for sure stays where it was
+    np.testing.assert_array_equal(after[ra, d:], own[ra, d:])
+    np.testing.assert_array_equal(after[rb], own[rb])
+    assert m.vector_variances("morvenn") == (0.0, 0.0)
+
+
+@pytest.mark.parametrize("backend", ["numba", "numpy"])
+def test_the_forecast_variance_is_the_exact_variance_of_the_inner_product(backend: str) -> None:
+    # With the first side's blade (variance u) and the second side's chest (variance r)
+    # uncertain and independent, a_A . c_B has variance |c_B|^2 u + |a_A|^2 r + d u r
+    # ('On the Exact Variance of Products', JASA 1960, summed over d independent terms).
+    # The model's p_win = sigmoid(theta / sqrt(1 + pi V / 8)) is inverted for V.
+    d, u, r = 4, 0.375, 0.875  # exact in the float32 state
+    m, ra, rb = _known_pair(backend, 1.0, d)
+    m.acc_[ra, 0], m.acc_[rb, d] = u, r
+    own = m.own_.astype(np.float64)
+    a_a, c_a, a_b, c_b = own[ra, :d], own[ra, d:], own[rb, :d], own[rb, d:]
+    theta = float(a_a @ c_b - a_b @ c_a)
+    want_v = float(c_b @ c_b) * u + float(a_a @ a_a) * r + d * u * r
+    p = m.predict(Matchup(first=("kelvash",), second=("morvenn",))).p_win
+    kappa = math.log(p / (1 - p)) / theta
+    got_v = (1.0 / kappa**2 - 1.0) * 8.0 / math.pi
+    assert got_v == pytest.approx(want_v, rel=1e-8)
+
+
+@pytest.mark.parametrize("backend", ["numba", "numpy"])
+def test_an_idle_entity_drifts_toward_even_odds_through_its_vectors(backend: str) -> None:
+    def p_after_idle(days: float, noise: float) -> float:
+        m = BladeChest(dims=2, strength=False, uncertainty=False, vector_uncertainty=True,
+                       vector_noise_per_day=noise, vector_prior_var=1.0, advantage=False,
+                       context="none", backend=backend)  # fmt: skip
+        for k in range(30):
+            m.learn(_ev(k, ("kelvash",), ("morvenn",), 1.0))
+        m.learn(_ev(99, ("bravik",), ("tuvrenn",), 1.0, days=days))  # the clock moves on
+        return m.predict(Matchup(first=("kelvash",), second=("morvenn",))).p_win
+
+    ps = [p_after_idle(d, 1e-3) for d in (0.0, 10.0, 50.0, 200.0)]  # under the cap
+    assert all(a > b > 0.5 for a, b in itertools.pairwise(ps))
+    # without process noise the idle time changes nothing (so the test can fail)
+    flat = [p_after_idle(d, 0.0) for d in (0.0, 200.0)]
+    assert flat[0] == flat[1]
+
+
+def test_vector_variances_shrink_with_evidence_and_start_at_the_prior() -> None:
+    m = BladeChest(dims=3, vector_uncertainty=True, vector_prior_var=0.5, init_scale=0.5)
+    m.learn(_ev(0, ("kelvash",), ("morvenn",), 1.0))
+    first = m.vector_variances("kelvash")
+    assert first is not None and all(0.0 < x < 0.5 for x in first)
+    for k in range(1, 40):
+        m.learn(_ev(k, ("kelvash",), ("morvenn",), float(k % 3 != 0)))
+    later = m.vector_variances("kelvash")
+    assert later is not None and all(b < a for a, b in zip(first, later, strict=True))
+    assert m.vector_variances("stranger") is None
+    assert BladeChest(dims=3).vector_variances("kelvash") is None
+
+
+def test_a_version_3_state_loads_with_vector_uncertainty_off() -> None:
+    old = BladeChest(dims=2)
+    for k in range(20):
+        old.learn(_ev(k, ("kelvash",), ("morvenn",), float(k % 3 != 0), days=k))
+    st = old.to_state()
+    params = {k: v for k, v in st.params.items() if not k.startswith("vector_")}
+    back = model_from_state(ModelState(st.kind, 3, params, st.arrays))
+    assert isinstance(back, BladeChest) and not back.vector_uncertainty and back.uncertainty
+    q = Matchup(first=("kelvash",), second=("morvenn",))
+    assert back.predict(q) == old.predict(q)
+    on = BladeChest(dims=2, vector_uncertainty=True, vector_prior_var=0.2)
+    on.learn(_ev(0, ("kelvash",), ("morvenn",), 1.0))
+    again = model_from_state(on.to_state())
+    assert isinstance(again, BladeChest) and again.vector_uncertainty
+    assert again.vector_variances("kelvash") == on.vector_variances("kelvash")
+    assert again.predict(q) == on.predict(q)

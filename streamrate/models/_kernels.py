@@ -10,9 +10,13 @@ maps entity features (and the context when stacked) into a prior added to the
 own offsets; ``G`` (2 * dims, C) makes the context gate ``1 + G z``; ``H`` (1, C)
 is the context part of the first-side advantage; ``sc = [h0, eta]`` holds the
 always-on advantage and the log draw weight. ``cfg`` packs the integer settings:
-``[dims, so, form (0 inner / 1 distance), tanh, draws, stacked, gated, n_feat]``
-and ``hyp`` the float ones: ``[lr, lr_shared, l2, l2_shared, forget_per_day,
-clock_s, advantage, lr_strength]``. Strengths, the advantage (``H``, ``h0``) and
+``[dims, so, form (0 inner / 1 distance), tanh, draws, stacked, gated, n_feat,
+uncertainty, vector_uncertainty]`` and ``hyp`` the float ones: ``[lr, lr_shared,
+l2, l2_shared, forget_per_day, clock_s, advantage, lr_strength, prior_var,
+noise_per_day, vector_prior_var, vector_noise_per_day]``. With uncertainty on,
+``acc[r, 0]`` holds the strength's variance; with vector uncertainty on,
+``acc[r, so]`` the blade's and ``acc[r, so + dims]`` the chest's (the other
+blade/chest columns of ``acc`` are then unused). Strengths, the advantage (``H``, ``h0``) and
 the draw weight step at ``lr_strength``; blade/chest at ``lr``; ``W``, ``G`` at
 ``lr_shared``.
 """
@@ -299,12 +303,15 @@ def _apply_shared(W, AW, G, AG, H, AH, sc, asc, gW, gG, gH, gsc, markW, listW, n
 
 
 @leaf
-def _store_member(r, now, od, g, own, acc, last_t, lr, lr_s, so):
-    """AdaGrad step of one entity's own offsets from ``od`` (decayed) by gradient ``g``.
+def _store_member(r, now, od, g, own, acc, last_t, lr, lr_s, so, upto):
+    """AdaGrad step of columns ``0..upto`` of one entity's own offsets from ``od``
+    (decayed) by gradient ``g``; columns from ``upto`` on are copied from ``od``.
 
     The strength (column 0 when ``so == 1``) has its own step size ``lr_s``.
     """
-    for t in range(own.shape[1]):
+    for t in range(upto, own.shape[1]):
+        own[r, t] = od[t]
+    for t in range(upto):
         acc[r, t] = acc[r, t] + g[t] * g[t]
         step = lr_s if t < so else lr
         # float64 square root of the stored float32 sum (math.sqrt of a float32 is float32)
@@ -330,35 +337,104 @@ def _store_features(r, e, m, fs_idx, fs_val, feat_idx, feat_val):
 
 
 @leaf
-def _v_eff(r, now, acc, last_t, hyp):
-    """Strength variance of row ``r`` at time ``now``: stored, plus noise for idle days.
+def _v_eff(r, col, now, acc, last_t, prior, noise):
+    """Variance kept in ``acc[r, col]`` at time ``now``: stored, plus noise for idle days.
 
-    ``acc[r, 0]`` holds the variance when uncertainty is on; an unknown row has
-    the prior variance ``hyp[8]``; growth is ``hyp[9]`` per idle day, capped at it.
+    An unknown row has the prior variance ``prior``; growth is ``noise`` per idle
+    day, capped at the prior (or at the stored value if that is larger).
     """
     if r < 0:
-        return hyp[8]
-    v = np.float64(acc[r, 0])
+        return prior
+    v = np.float64(acc[r, col])
     if last_t.shape[0] > 0 and not math.isnan(now):
         lt = last_t[r]
         if not math.isnan(lt) and now > lt:
-            v = min(v + hyp[9] * (now - lt) / 86400.0, max(v, hyp[8]))
+            v = min(v + noise * (now - lt) / 86400.0, max(v, prior))
     return v
 
 
 @leaf
-def _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out):
-    """Integrate the logit ``out[3]`` over the strengths' uncertainty (probit approximation)."""
+def _jac_norms(EA, EB, gate, cfg, out):
+    """Squared norms of the logit's gradient in each side's mean blade and chest.
+
+    ``out[6:10]`` = (blade A, chest A, blade B, chest B), gradients taken through
+    the gate (with respect to the sides' ungated means); ``out[10:13]`` = the gate
+    sums ``sum ga^2 gc^2``, ``sum ga^4``, ``sum gc^4`` of the second-order terms.
+    """
+    d, so, form = cfg[0], cfg[1], cfg[2]
+    qaA, qcA, qaB, qcB = 0.0, 0.0, 0.0, 0.0
+    g22, g4a, g4c = 0.0, 0.0, 0.0
+    for j in range(d):
+        ia, ic = so + j, so + d + j
+        ga, gc = gate[j], gate[d + j]
+        if form == 0:
+            jaA, jcA = EB[ic] * ga, -EB[ia] * gc
+            jaB, jcB = -EA[ic] * ga, EA[ia] * gc
+        else:
+            d1 = EB[ia] - EA[ic]
+            d2 = EA[ia] - EB[ic]
+            jaA, jcA = -2.0 * d2 * ga, -2.0 * d1 * gc
+            jaB, jcB = 2.0 * d1 * ga, 2.0 * d2 * gc
+        qaA += jaA * jaA
+        qcA += jcA * jcA
+        qaB += jaB * jaB
+        qcB += jcB * jcB
+        g22 += ga * ga * gc * gc
+        g4a += ga * ga * ga * ga
+        g4c += gc * gc * gc * gc
+    out[6], out[7], out[8], out[9] = qaA, qcA, qaB, qcB
+    out[10], out[11], out[12] = g22, g4a, g4c
+
+
+@leaf
+def _second_order(SaA, ScA, SaB, ScB, form, out):
+    """Variance of the logit's bilinear (inner) or quadratic (distance) part beyond
+    its linearisation, for sides whose mean blade and chest have per-dimension
+    variances ``Sa*``/``Sc*`` (independent Gaussians; gate sums from ``out``)."""
+    g22, g4a, g4c = out[10], out[11], out[12]
+    if form == 0:
+        return g22 * (SaA * ScB + SaB * ScA)
+    u = SaB * SaB * g4a + 2.0 * SaB * ScA * g22 + ScA * ScA * g4c
+    u += SaA * SaA * g4a + 2.0 * SaA * ScB * g22 + ScB * ScB * g4c
+    return 2.0 * u
+
+
+@leaf
+def _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out, EA, EB, gate):
+    """Integrate the logit ``out[3]`` over the entities' uncertainty (probit approximation).
+
+    ``V`` sums each member's strength variance times ``x_j^2`` (``cfg[8]``) and its
+    blade and chest variances times the squared gradient norms (``cfg[9]``).
+    """
+    d, so = cfg[0], cfg[1]
     now = time_s[e]
     if math.isnan(now):
         now = hyp[5]
+    if cfg[9]:
+        _jac_norms(EA, EB, gate, cfg, out)
     V = 0.0
+    SaA, ScA, SaB, ScB = 0.0, 0.0, 0.0, 0.0
     for side in range(2):
         rows = first if side == 0 else second
         n = n1[e] if side == 0 else n2[e]
         inv = 1.0 / n
+        qa, qc = out[6 + 2 * side], out[7 + 2 * side]
         for j in range(n):
-            V += _v_eff(rows[e, j], now, acc, last_t, hyp) * inv * inv
+            r = rows[e, j]
+            if cfg[8]:
+                V += _v_eff(r, 0, now, acc, last_t, hyp[8], hyp[9]) * inv * inv
+            if cfg[9]:
+                va = _v_eff(r, so, now, acc, last_t, hyp[10], hyp[11]) * inv * inv
+                vc = _v_eff(r, so + d, now, acc, last_t, hyp[10], hyp[11]) * inv * inv
+                V += va * qa + vc * qc
+                if side == 0:
+                    SaA += va
+                    ScA += vc
+                else:
+                    SaB += va
+                    ScB += vc
+    if cfg[9]:
+        V += _second_order(SaA, ScA, SaB, ScB, cfg[2], out)
     k = 1.0 / math.sqrt(1.0 + math.pi * V / 8.0)
     out[4], out[5] = k, V
     _probs(k * out[3], sc[1], cfg[4], out)
@@ -388,6 +464,29 @@ def _u_store(r, now, mu0, v, gsum, info, own, acc, last_t):
         last_t[r] = now
 
 
+@leaf
+def _vec_terms(inv, v, q, h, V):
+    """(gradient scale, information along the gradient) of one member's vector group
+    with variance ``v`` whose logit gradient has squared norm ``q`` per unit weight."""
+    qm = q * inv * inv
+    den = 1.0 + h * (V - v * qm)
+    return 1.0 / den, h * qm / den
+
+
+@leaf
+def _vec_store(r, row, g, gscale, v, info, lo, d, own, acc):
+    """Gaussian update of one vector group (columns ``lo..lo + d``) of row ``r``.
+
+    Mean: ``row - v / (1 + v info) * g * gscale`` (the exact step along the
+    gradient); variance: ``v / (1 + v info / d)`` (the precision averaged over the
+    group's ``d`` directions).
+    """
+    vm = v / (1.0 + v * info)
+    for t in range(lo, lo + d):
+        own[r, t] = row[t] - vm * (g[t] * gscale)
+    acc[r, lo] = v / (1.0 + v * info / d)
+
+
 # The public kernels below allocate scratch space and hand it to loops compiled
 # with ``_nrt=False``: without that, every helper call in the per-event loop pays
 # atomic reference counting on ~30 arrays, which costs more than the arithmetic.
@@ -412,7 +511,7 @@ def _scratch(first, second, ctx_idx, feat_idx, fs_idx, W, G, H, cfg):
         np.zeros(K, dtype=np.int32),  # ncols
         np.zeros((6, D)),  # VA, VB, EA, EB, dEA, dEB
         np.zeros((2, max(2 * d, 1))),  # gate, gg
-        np.zeros(6),  # out: p_win, p_draw, p_loss, logit, widening, its variance
+        np.zeros(13),  # out: p_win, p_draw, p_loss, logit, widening, its variance, 7 sums
         np.zeros(W.shape),  # gW
         np.zeros(G.shape),  # gG
         np.zeros(H.shape),  # gH
@@ -431,17 +530,19 @@ def _learn_seq_loop(
     od, base, q, gm, cols, vals, ncols, V6, gate2, out, gW, gG, gH, gsc,
     markW, listW, markC, listC,
 ):  # fmt: skip
-    so = cfg[1]
+    d, so = cfg[0], cfg[1]
     VA, VB, EA, EB, dEA, dEB = V6[0], V6[1], V6[2], V6[3], V6[4], V6[5]
     gate, gg = gate2[0], gate2[1]
     lr = hyp[0]
     k1 = first.shape[1]
+    upto = so if cfg[9] else own.shape[1]  # columns with AdaGrad steps
     for e in range(first.shape[0]):
         _event(e, first, second, n1, n2, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
                own, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp,
                od, base, q, cols, vals, ncols, VA, VB, EA, EB, gate, out)  # fmt: skip
-        if cfg[8]:
-            _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out)
+        if cfg[8] or cfg[9]:
+            _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out, EA, EB,
+                   gate)  # fmt: skip
         p_out[e, 0] = out[0]
         p_out[e, 1] = out[1]
         nW, nC = _grads(e, first, second, n1, n2, ctx_idx, ctx_val, score, cfg, hyp,
@@ -455,22 +556,32 @@ def _learn_seq_loop(
             rows = first if side == 0 else second
             n = n1[e] if side == 0 else n2[e]
             off = 0 if side == 0 else k1
+            inv = 1.0 / n
             for j in range(n):
                 r = rows[e, j]
-                if r >= 0 and cfg[8]:
-                    v = _v_eff(r, nowr, acc, last_t, hyp)
-                    gs, info = _u_terms(1.0 / n, v, h, out[5])
-                    mu0, g0 = od[off + j, 0], gm[off + j, 0]
-                    _store_member(
-                        r, now, od[off + j], gm[off + j], own, acc, last_t, lr, hyp[7], so
-                    )
+                if r < 0:
+                    continue
+                v, va, vc = 0.0, 0.0, 0.0
+                if cfg[8]:
+                    v = _v_eff(r, 0, nowr, acc, last_t, hyp[8], hyp[9])
+                if cfg[9]:
+                    va = _v_eff(r, so, nowr, acc, last_t, hyp[10], hyp[11])
+                    vc = _v_eff(r, so + d, nowr, acc, last_t, hyp[10], hyp[11])
+                mu0, g0 = od[off + j, 0], gm[off + j, 0]
+                _store_member(
+                    r, now, od[off + j], gm[off + j], own, acc, last_t, lr, hyp[7], so, upto
+                )
+                if cfg[8]:
+                    gs, info = _u_terms(inv, v, h, out[5])
                     _u_store(r, nowr, mu0, v, g0 * gs, info, own, acc, last_t)
-                elif r >= 0:
-                    _store_member(
-                        r, now, od[off + j], gm[off + j], own, acc, last_t, lr, hyp[7], so
-                    )
-                if r >= 0:
-                    _store_features(r, e, off + j, fs_idx, fs_val, feat_idx, feat_val)
+                if cfg[9]:
+                    gs, info = _vec_terms(inv, va, out[6 + 2 * side], h, out[5])
+                    _vec_store(r, od[off + j], gm[off + j], gs, va, info, so, d, own, acc)
+                    gs, info = _vec_terms(inv, vc, out[7 + 2 * side], h, out[5])
+                    _vec_store(r, od[off + j], gm[off + j], gs, vc, info, so + d, d, own, acc)
+                    if not math.isnan(nowr):
+                        last_t[r] = nowr
+                _store_features(r, e, off + j, fs_idx, fs_val, feat_idx, feat_val)
         _apply_shared(W, AW, G, AG, H, AH, sc, asc, gW, gG, gH, gsc, markW, listW, nW,
                       markC, listC, nC, cfg, hyp)  # fmt: skip
         if not math.isnan(now) and (math.isnan(hyp[5]) or now > hyp[5]):
@@ -504,8 +615,9 @@ def _predict_loop(
         _event(e, first, second, n1, n2, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
                own, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp,
                od, base, q, cols, vals, ncols, VA, VB, EA, EB, gate, out)  # fmt: skip
-        if cfg[8]:
-            _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out)
+        if cfg[8] or cfg[9]:
+            _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out, EA, EB,
+                   gate)  # fmt: skip
         p_out[e, 0] = out[0]
         p_out[e, 1] = out[1]
 
@@ -532,19 +644,21 @@ def _minibatch_loop(
     od, base, q, gm, cols, vals, ncols, V6, gate2, out, gW, gG, gH, gsc,
     markW, listW, markC, listC,
 ):  # fmt: skip
-    so = cfg[1]
+    d, so = cfg[0], cfg[1]
     D = own.shape[1]
     VA, VB, EA, EB, dEA, dEB = V6[0], V6[1], V6[2], V6[3], V6[4], V6[5]
     gate, gg = gate2[0], gate2[1]
     nW, nC = 0, 0
+    upto = so if cfg[9] else D  # columns with AdaGrad steps
     k1 = first.shape[1]
     has_ef = feat_idx.shape[0] > 0 and feat_idx.shape[2] > 0
     for e in range(first.shape[0]):
         _event(e, first, second, n1, n2, ctx_idx, ctx_val, time_s, feat_idx, feat_val,
                own, last_t, fs_idx, fs_val, W, G, H, sc, cfg, hyp,
                od, base, q, cols, vals, ncols, VA, VB, EA, EB, gate, out)  # fmt: skip
-        if cfg[8]:
-            _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out)
+        if cfg[8] or cfg[9]:
+            _widen(e, first, second, n1, n2, time_s, acc, last_t, sc, cfg, hyp, out, EA, EB,
+                   gate)  # fmt: skip
         p_out[e, 0] = out[0]
         p_out[e, 1] = out[1]
         nW, nC = _grads(e, first, second, n1, n2, ctx_idx, ctx_val, score, cfg, hyp,
@@ -563,13 +677,21 @@ def _minibatch_loop(
                 u = locs[e, j]
                 if u < 0:
                     continue
-                for t in range(D):
+                for t in range(upto):
                     gown[u, t] += gm[off + j, t]
                 if cfg[8]:
-                    v = _v_eff(rows[e, j], nowr, acc, last_t, hyp)
+                    v = _v_eff(rows[e, j], 0, nowr, acc, last_t, hyp[8], hyp[9])
                     gs, info = _u_terms(1.0 / n, v, h, out[5])
                     uinfo[u, 0] += gm[off + j, 0] * gs
                     uinfo[u, 1] += info
+                if cfg[9]:
+                    for grp in range(2):
+                        lo = so + grp * d
+                        v = _v_eff(rows[e, j], lo, nowr, acc, last_t, hyp[10], hyp[11])
+                        gs, info = _vec_terms(1.0 / n, v, out[6 + 2 * side + grp], h, out[5])
+                        for t in range(lo, lo + d):
+                            gown[u, t] += gm[off + j, t] * gs
+                        uinfo[u, 2 + grp] += info
                 if not math.isnan(now) and (math.isnan(tmax[u]) or now > tmax[u]):
                     tmax[u] = now
                 if has_ef and feat_idx[e, off + j, 0] >= 0:
@@ -587,13 +709,21 @@ def _minibatch_loop(
                 dec = math.exp(-forget * (now - lt) / 86400.0)
         for t in range(D):
             row[t] = own[r, t] * dec
+        nowr = hyp[5] if math.isnan(now) else now
+        v, va, vc = 0.0, 0.0, 0.0
         if cfg[8]:
-            nowr = hyp[5] if math.isnan(now) else now
-            v = _v_eff(r, nowr, acc, last_t, hyp)
-            _store_member(r, now, row, gown[u], own, acc, last_t, lr, hyp[7], so)
+            v = _v_eff(r, 0, nowr, acc, last_t, hyp[8], hyp[9])
+        if cfg[9]:
+            va = _v_eff(r, so, nowr, acc, last_t, hyp[10], hyp[11])
+            vc = _v_eff(r, so + d, nowr, acc, last_t, hyp[10], hyp[11])
+        _store_member(r, now, row, gown[u], own, acc, last_t, lr, hyp[7], so, upto)
+        if cfg[8]:
             _u_store(r, nowr, row[0], v, uinfo[u, 0], uinfo[u, 1], own, acc, last_t)
-        else:
-            _store_member(r, now, row, gown[u], own, acc, last_t, lr, hyp[7], so)
+        if cfg[9]:
+            _vec_store(r, row, gown[u], 1.0, va, uinfo[u, 2], so, d, own, acc)
+            _vec_store(r, row, gown[u], 1.0, vc, uinfo[u, 3], so + d, d, own, acc)
+            if not math.isnan(nowr):
+                last_t[r] = nowr
         if last_e[u] >= 0:
             _store_features(r, last_e[u], last_m[u], fs_idx, fs_val, feat_idx, feat_val)
     _apply_shared(W, AW, G, AG, H, AH, sc, asc, gW, gG, gH, gsc, markW, listW, nW,
@@ -623,7 +753,7 @@ def learn_minibatch(
         own, acc, last_t, fs_idx, fs_val, W, AW, G, AG, H, AH, sc, asc, cfg, hyp, p_out,
         uniq, loc1, loc2, np.zeros((U, D)), np.full(U, np.nan),
         np.full(U, -1, dtype=np.int64), np.full(U, -1, dtype=np.int64), np.zeros(D),
-        np.zeros((U, 2)),
+        np.zeros((U, 4)),
         sc_[0], sc_[1], sc_[2], sc_[3], sc_[4], sc_[5], sc_[6], sc_[7], sc_[8], sc_[9],
         sc_[10], sc_[11], sc_[12], sc_[13], sc_[14], sc_[15], sc_[16], sc_[17],
     )  # fmt: skip

@@ -98,10 +98,39 @@ def _forward(e: int, a: dict[str, Any]) -> dict[str, Any]:
         else:
             theta += float(((aB - cA) ** 2 - (aA - cB) ** 2).sum())
     theta = min(max(theta, -THETA_CLIP), THETA_CLIP)
-    kappa, var = _widening(e, a, now) if cfg[8] else (1.0, 0.0)
+    norms = _jac_norms(EA, EB, gate, cfg) if cfg[9] else (0.0,) * 7
+    kappa, var = _widening(e, a, now, norms) if cfg[8] or cfg[9] else (1.0, 0.0)
     p = _probs(kappa * theta, float(a["sc"][1]), draws)
     return {"sides": sides, "gate": gate, "EA": EA, "EB": EB, "p": p, "now": now,
-            "ci": ci, "cv": cv, "kappa": kappa, "V": var}  # fmt: skip
+            "ci": ci, "cv": cv, "kappa": kappa, "V": var, "q": norms}  # fmt: skip
+
+
+def _jac_norms(EA: Arr, EB: Arr, gate: Arr, cfg: Arr) -> tuple[float, ...]:
+    """Squared norms of the logit's gradient in (blade A, chest A, blade B, chest B),
+    then the gate sums (ga^2 gc^2, ga^4, gc^4) of the second-order terms."""
+    d, so, form = int(cfg[0]), int(cfg[1]), int(cfg[2])
+    aA, cA = EA[so : so + d], EA[so + d : so + 2 * d]
+    aB, cB = EB[so : so + d], EB[so + d : so + 2 * d]
+    ga, gc = gate[:d], gate[d:]
+    if form == 0:
+        jac = (cB * ga, -aB * gc, -cA * ga, aA * gc)
+    else:
+        d1, d2 = aB - cA, aA - cB
+        jac = (-2.0 * d2 * ga, -2.0 * d1 * gc, 2.0 * d1 * ga, 2.0 * d2 * gc)
+    norms = tuple(float(np.sum(j * j)) for j in jac)
+    sums = (float(np.sum(ga**2 * gc**2)), float(np.sum(ga**4)), float(np.sum(gc**4)))
+    return norms + sums
+
+
+def _second_order(S: list[float], form: int, q: tuple[float, ...]) -> float:
+    """See ``_kernels._second_order``; ``S`` = (blade A, chest A, blade B, chest B)."""
+    s_aa, s_ca, s_ab, s_cb = S
+    g22, g4a, g4c = q[4], q[5], q[6]
+    if form == 0:
+        return g22 * (s_aa * s_cb + s_ab * s_ca)
+    u = s_ab * s_ab * g4a + 2.0 * s_ab * s_ca * g22 + s_ca * s_ca * g4c
+    u += s_aa * s_aa * g4a + 2.0 * s_aa * s_cb * g22 + s_cb * s_cb * g4c
+    return 2.0 * u
 
 
 def _probs(theta: float, eta: float, draws: int) -> tuple[float, float, float]:
@@ -116,25 +145,49 @@ def _probs(theta: float, eta: float, draws: int) -> tuple[float, float, float]:
     return (pw, 0.0, 1.0 - pw)
 
 
-def _v_eff(r: int, now: float, a: dict[str, Any]) -> float:
-    """Strength variance of row ``r`` at ``now`` (see ``_kernels._v_eff``)."""
+def _v_eff(r: int, now: float, a: dict[str, Any], col: int | None = None) -> float:
+    """Variance at ``now`` (see ``_kernels._v_eff``): the strength's (``col`` None, kept
+    in column 0), else the vector group's kept in column ``col``."""
     hyp = a["hyp"]
+    if col is None:
+        col, prior, noise = 0, float(hyp[8]), float(hyp[9])
+    else:
+        prior, noise = float(hyp[10]), float(hyp[11])
     if r < 0:
-        return float(hyp[8])
-    v = float(a["acc"][r, 0])
+        return prior
+    v = float(a["acc"][r, col])
     last_t = a["last_t"]
     if last_t.shape[0] > 0 and not math.isnan(now):
         lt = float(last_t[r])
         if not math.isnan(lt) and now > lt:
-            v = min(v + hyp[9] * (now - lt) / 86400.0, max(v, hyp[8]))
+            v = min(v + noise * (now - lt) / 86400.0, max(v, prior))
     return v
 
 
-def _widening(e: int, a: dict[str, Any], now: float) -> tuple[float, float]:
+def _vec_cols(a: dict[str, Any]) -> tuple[int, int, int]:
+    """(blade column, chest column, dims) of the vector groups' variances."""
+    d, so = int(a["cfg"][0]), int(a["cfg"][1])
+    return so, so + d, d
+
+
+def _widening(e: int, a: dict[str, Any], now: float, q: tuple[float, ...]) -> tuple[float, float]:
+    cfg = a["cfg"]
+    ca, cc, _ = _vec_cols(a)
     V = 0.0
-    for rows, n in ((a["first"], a["n1"][e]), (a["second"], a["n2"][e])):
+    S = [0.0, 0.0, 0.0, 0.0]
+    for side, (rows, n) in enumerate(((a["first"], a["n1"][e]), (a["second"], a["n2"][e]))):
         for j in range(int(n)):
-            V += _v_eff(int(rows[e, j]), now, a) / (float(n) * float(n))
+            r = int(rows[e, j])
+            if cfg[8]:
+                V += _v_eff(r, now, a) / (float(n) * float(n))
+            if cfg[9]:
+                w = 1.0 / float(n)
+                va, vc = _v_eff(r, now, a, ca) * w * w, _v_eff(r, now, a, cc) * w * w
+                V += va * q[2 * side] + vc * q[2 * side + 1]
+                S[2 * side] += va
+                S[2 * side + 1] += vc
+    if cfg[9]:
+        V += _second_order(S, int(cfg[2]), q)
     return 1.0 / math.sqrt(1.0 + math.pi * V / 8.0), V
 
 
@@ -148,6 +201,19 @@ def _u_terms(n: int, v: float, h: float, V: float) -> tuple[float, float]:
     w = 1.0 / (float(n) * float(n))
     den = 1.0 + h * (V - v * w)
     return 1.0 / den, h * w / den
+
+
+def _vec_terms(n: int, v: float, q: float, h: float, V: float) -> tuple[float, float]:
+    qm = q / (float(n) * float(n))
+    den = 1.0 + h * (V - v * qm)
+    return 1.0 / den, h * qm / den
+
+
+def _vec_store(a: dict[str, Any], r: int, row: Arr, g: Arr, gscale: float, v: float,
+               info: float, lo: int, d: int) -> None:  # fmt: skip
+    vm = v / (1.0 + v * info)
+    a["own"][r, lo : lo + d] = row[lo : lo + d] - vm * (g[lo : lo + d] * gscale)
+    a["acc"][r, lo] = v / (1.0 + v * info / d)
 
 
 def _u_store(a: dict[str, Any], r: int, now: float, mu0: float, v: float, gsum: float,
@@ -242,11 +308,14 @@ def _apply_shared(a: dict[str, Any], g: dict[str, Any]) -> None:
 
 
 def _store_member(a: dict[str, Any], r: int, now: float, od: Arr, gm: Arr) -> None:
-    acc = a["acc"][r].astype(np.float64) + gm * gm
-    a["acc"][r] = acc
-    step = np.full(gm.shape[0], a["hyp"][0])
+    """AdaGrad step; with vector uncertainty only of the strength (vectors copied)."""
+    k = int(a["cfg"][1]) if a["cfg"][9] else gm.shape[0]
+    a["own"][r, k:] = od[k:]
+    acc = a["acc"][r, :k].astype(np.float64) + gm[:k] * gm[:k]
+    a["acc"][r, :k] = acc
+    step = np.full(k, a["hyp"][0])
     step[: int(a["cfg"][1])] = a["hyp"][7]
-    a["own"][r] = od - step * gm / np.sqrt(a["acc"][r].astype(np.float64))
+    a["own"][r, :k] = od[:k] - step * gm[:k] / np.sqrt(a["acc"][r, :k].astype(np.float64))
     if a["last_t"].shape[0] > 0 and not math.isnan(now):
         a["last_t"][r] = now
 
@@ -272,7 +341,7 @@ def learn_seq(*args: Arr) -> None:
     a = dict(zip(_NAMES, args[:-1], strict=True))
     p_out = args[-1]
     hyp = a["hyp"]
-    uncertain = bool(a["cfg"][8])
+    uncertain, vec = bool(a["cfg"][8]), bool(a["cfg"][9])
     for e in range(a["first"].shape[0]):
         f = _forward(e, a)
         p_out[e, 0], p_out[e, 1] = f["p"][0], f["p"][1]
@@ -280,16 +349,27 @@ def learn_seq(*args: Arr) -> None:
         now = float(a["time_s"][e])
         nowr = float(hyp[5]) if math.isnan(now) else now
         h = _curv(f, int(a["cfg"][4]))
+        k1 = a["first"].shape[1]
+        ca, cc, d = _vec_cols(a)
         for r, m, od, gm, n in _backward(e, a, f, g):
-            if r >= 0:
-                if uncertain:
-                    v = _v_eff(r, nowr, a)
-                    gs, info = _u_terms(n, v, h, f["V"])
-                    _store_member(a, r, now, od, gm)
-                    _u_store(a, r, nowr, float(od[0]), v, float(gm[0]) * gs, info)
-                else:
-                    _store_member(a, r, now, od, gm)
-                _store_features(a, r, e, m)
+            if r < 0:
+                continue
+            v = _v_eff(r, nowr, a) if uncertain else 0.0
+            va = _v_eff(r, nowr, a, ca) if vec else 0.0
+            vc = _v_eff(r, nowr, a, cc) if vec else 0.0
+            _store_member(a, r, now, od, gm)
+            if uncertain:
+                gs, info = _u_terms(n, v, h, f["V"])
+                _u_store(a, r, nowr, float(od[0]), v, float(gm[0]) * gs, info)
+            if vec:
+                side = 0 if m < k1 else 1
+                gs, info = _vec_terms(n, va, f["q"][2 * side], h, f["V"])
+                _vec_store(a, r, od, gm, gs, va, info, ca, d)
+                gs, info = _vec_terms(n, vc, f["q"][2 * side + 1], h, f["V"])
+                _vec_store(a, r, od, gm, gs, vc, info, cc, d)
+                if not math.isnan(nowr):
+                    a["last_t"][r] = nowr
+            _store_features(a, r, e, m)
         _apply_shared(a, g)
         now = float(a["time_s"][e])
         if not math.isnan(now) and (math.isnan(hyp[5]) or now > hyp[5]):
@@ -323,8 +403,10 @@ def learn_minibatch(*args: Arr) -> None:
     g = _grad_buffers(a)
     k1 = a["first"].shape[1]
     fi = a["feat_idx"]
-    uncertain = bool(a["cfg"][8])
-    uinfo = np.zeros((U, 2))
+    uncertain, vec = bool(a["cfg"][8]), bool(a["cfg"][9])
+    ca, cc, d = _vec_cols(a)
+    upto = ca if vec else D
+    uinfo = np.zeros((U, 4))
     for e in range(a["first"].shape[0]):
         f = _forward(e, a)
         p_out[e, 0], p_out[e, 1] = f["p"][0], f["p"][1]
@@ -335,11 +417,18 @@ def learn_minibatch(*args: Arr) -> None:
             if r < 0:
                 continue
             u = int(loc1[e, m] if m < k1 else loc2[e, m - k1])
-            gown[u] += gm
+            gown[u, :upto] += gm[:upto]
             if uncertain:
                 gs, info = _u_terms(n, _v_eff(r, nowr, a), h, f["V"])
                 uinfo[u, 0] += float(gm[0]) * gs
                 uinfo[u, 1] += info
+            if vec:
+                side = 0 if m < k1 else 1
+                for grp, lo in enumerate((ca, cc)):
+                    v = _v_eff(r, nowr, a, lo)
+                    gs, info = _vec_terms(n, v, f["q"][2 * side + grp], h, f["V"])
+                    gown[u, lo : lo + d] += gm[lo : lo + d] * gs
+                    uinfo[u, 2 + grp] += info
             if not math.isnan(now) and (math.isnan(tmax[u]) or now > tmax[u]):
                 tmax[u] = now
             if fi.shape[0] > 0 and fi.shape[2] > 0 and fi[e, m, 0] >= 0:
@@ -353,13 +442,18 @@ def learn_minibatch(*args: Arr) -> None:
             if not math.isnan(lt) and now > lt:
                 dec = math.exp(-hyp[4] * (now - lt) / 86400.0)
         row = a["own"][r].astype(np.float64) * dec
+        nowr = float(hyp[5]) if math.isnan(now) else now
+        v = _v_eff(r, nowr, a) if uncertain else 0.0
+        va = _v_eff(r, nowr, a, ca) if vec else 0.0
+        vc = _v_eff(r, nowr, a, cc) if vec else 0.0
+        _store_member(a, r, now, row, gown[u])
         if uncertain:
-            nowr = float(hyp[5]) if math.isnan(now) else now
-            v = _v_eff(r, nowr, a)
-            _store_member(a, r, now, row, gown[u])
             _u_store(a, r, nowr, float(row[0]), v, float(uinfo[u, 0]), float(uinfo[u, 1]))
-        else:
-            _store_member(a, r, now, row, gown[u])
+        if vec:
+            _vec_store(a, r, row, gown[u], 1.0, va, float(uinfo[u, 2]), ca, d)
+            _vec_store(a, r, row, gown[u], 1.0, vc, float(uinfo[u, 3]), cc, d)
+            if not math.isnan(nowr):
+                a["last_t"][r] = nowr
         if u in last_em:
             _store_features(a, r, *last_em[u])
     _apply_shared(a, g)

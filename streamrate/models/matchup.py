@@ -49,10 +49,56 @@ quadratic is Gaussian with, along ``x`` (rank one, Sherman-Morrison),
 (equal to the rank-one formulas; in this information form a mini-batch sums
 ``a_j`` and ``x_j g / (1 + w R_j)`` over its events, so a batch of one is the
 sequential step). ``v_j`` thus sets the entity's step size in place of AdaGrad's.
-Blade and chest vectors keep AdaGrad steps; their gradients carry the factor
-``kappa``. Defaults ``prior_var = 0.3`` and ``noise_per_day = 1e-4`` were chosen
-on the first 80% of the football results only (they also do well on the
-simulated worlds).
+Without vector uncertainty, blade and chest vectors keep AdaGrad steps; their
+gradients carry the factor ``kappa``. Defaults ``prior_var = 0.3`` and
+``noise_per_day = 1e-4`` were chosen on the first 80% of the football results
+only (they also do well on the simulated worlds).
+
+**Vector uncertainty** (``vector_uncertainty=True``, off by default; ``dims > 0``).
+Each entity's blade and chest offsets are Gaussian with one variance per group,
+``a_i ~ N(m_i, u_i I)``, ``c_i ~ N(n_i, r_i I)`` (diagonal per parameter group),
+kept in ``acc[i, so]`` and ``acc[i, so + dims]`` (the AdaGrad sums of those
+columns are then unused). They grow like the strength's, by
+``vector_noise_per_day`` per idle day up to ``vector_prior_var``, the newcomer's.
+*Forecast.* Linearise ``M`` around the means: the logit moves by
+``J_a . da_j + J_c . dc_j`` for member ``j``'s offsets, with ``J_a = |x_j|
+dtheta/da_A`` and ``J_c = |x_j| dtheta/dc_A`` for a first-side member (likewise
+with ``a_B``, ``c_B`` on the second side); inner form ``dtheta/da_A = c_B``,
+``dtheta/dc_A = -a_B``, ``dtheta/da_B = -c_A``, ``dtheta/dc_B = a_A``; distance form
+``dtheta/da_A = -2 (a_A - c_B)``, ``dtheta/dc_A = -2 (a_B - c_A)``, ``dtheta/da_B =
+2 (a_B - c_A)``, ``dtheta/dc_B = 2 (a_A - c_B)``; with the gate, dimension ``k`` of
+a blade (chest) gradient is multiplied by its gate ``ga_k`` (``gc_k``). ``V`` adds
+``u_j |J_a|^2 + r_j |J_c|^2`` per member. The logit is bilinear (inner) or
+quadratic (distance) in the vectors, so the linearisation misses the product of
+two variances; for independent Gaussians that part is known exactly and is added
+too (the distance form's shift of the mean under noise is left out): with
+``S_aA = sum_j x_j^2 u_j`` the side's blade variance per dimension (likewise
+``S_cA``, ``S_aB``, ``S_cB``), inner
+form ``sum_k ga_k^2 gc_k^2 (S_aA S_cB + S_aB S_cA)`` (the variance of a product of
+independent normals, 'On the Exact Variance of Products', JASA 1960), distance
+form ``2 sum_k s_k^2`` over both squared distances with ``s_k`` the per-dimension
+variance of ``a_B - c_A`` (resp. ``a_A - c_B``). The probit widening then uses
+this ``V`` as above. *Update.* The same second-order expansion at the means,
+group by group, the other groups and members being noise of variance
+``R = V - u q`` (``q = |J_a|^2``): the group's likelihood term is
+``w/(1 + w R) (J . da)^2 / 2`` plus its gradient. With the prior ``N(m, u I)`` the
+exact Gaussian posterior has precision ``I/u + beta J J' / q`` with
+``beta = w q / (1 + w R)``: its mean (Sherman-Morrison along ``J``)::
+
+    m' = m - u / (1 + u beta) * g_a / (1 + w R),   g_a = kappa (p - y) J_a (+ L2 pull)
+
+and, tied back to one variance per group, the precision averaged over the
+group's ``d`` directions (``1/u' = trace(precision) / d``; the mean-field
+projection, exact for ``d = 1`` where it is the strength's formula)::
+
+    u' = u / (1 + u beta / d)
+
+A mini-batch sums ``beta`` and ``g_a / (1 + w R)`` over its events (information
+form), so a batch of one is the sequential step. This variance, not AdaGrad,
+sets the vectors' step size. Memory per entity is unchanged (the two variances
+reuse AdaGrad slots; the last match time is kept as for the strength). Measured
+(README): it helps a little where there are no cycles and loses on the cyclic
+worlds, where AdaGrad's per-coordinate steps escape the small random start faster.
 
 Learning is SGD on the negative log likelihood with AdaGrad step sizes (float32
 sums per entity parameter), optional forgetting (own offsets shrink by
@@ -150,7 +196,10 @@ class MatchupModel(CopyOnWriteRows):
     field (:class:`~streamrate.encode.RunningScale`, kept in the state), so that
     their units do not matter; ``uncertainty`` a Gaussian strength per entity
     (module docstring) with newcomer variance ``prior_var`` and growth
-    ``noise_per_day`` per idle day (ignored with ``strength=False``).
+    ``noise_per_day`` per idle day (ignored with ``strength=False``);
+    ``vector_uncertainty`` a Gaussian blade and chest per entity with one
+    variance per group, newcomer variance ``vector_prior_var`` and growth
+    ``vector_noise_per_day`` (module docstring; ignored with ``dims == 0``).
 
     Defaults were picked on synthetic worlds (tests and bench): with 60 entities
     and 3000-4000 matches, blade-chest d=8..16 reaches prequential log loss near
@@ -163,7 +212,9 @@ class MatchupModel(CopyOnWriteRows):
     # a version 1 state still loads, with numbers read raw as it was trained.
     # Version 3 added the strengths' uncertainty (``acc[:, 0]`` then holds their
     # variances); older states load with it off, as they were trained.
-    state_version: ClassVar[int] = 3
+    # Version 4 added the blade and chest variances (``vector_uncertainty``);
+    # version 3 states load with it off.
+    state_version: ClassVar[int] = 4
     form: ClassVar[int] = 0  # 0: inner, 1: distance
 
     def __init__(
@@ -191,6 +242,9 @@ class MatchupModel(CopyOnWriteRows):
         uncertainty: bool = True,
         prior_var: float = 0.3,
         noise_per_day: float = 1e-4,
+        vector_uncertainty: bool = False,
+        vector_prior_var: float = 0.1,
+        vector_noise_per_day: float = 1e-4,
     ) -> None:
         if dims < 0 or (dims == 0 and not strength):
             raise ConfigError("dims must be >= 0, and dims == 0 needs strength=True")
@@ -207,6 +261,8 @@ class MatchupModel(CopyOnWriteRows):
             raise ConfigError("step sizes and accum_init must be > 0; l2s and forgetting >= 0")
         if prior_var <= 0 or noise_per_day < 0:
             raise ConfigError("prior_var must be > 0 and noise_per_day >= 0")
+        if vector_prior_var <= 0 or vector_noise_per_day < 0:
+            raise ConfigError("vector_prior_var must be > 0 and vector_noise_per_day >= 0")
         if context_width < 0 or feature_width < 0 or feature_slots < 1:
             raise ConfigError("widths must be >= 0 and feature_slots >= 1")
         if context != "none" and context_width == 0:
@@ -224,6 +280,9 @@ class MatchupModel(CopyOnWriteRows):
         self.scale_numbers = bool(scale_numbers)
         self.uncertainty = bool(uncertainty) and self.strength  # it is the strength's
         self.prior_var, self.noise_per_day = float(prior_var), float(noise_per_day)
+        self.vector_uncertainty = bool(vector_uncertainty) and self.dims > 0
+        self.vector_prior_var = float(vector_prior_var)
+        self.vector_noise_per_day = float(vector_noise_per_day)
         self.has_draws = self.draws  # type: ignore[misc]
         self._k = _kernels(backend)
         self._ctx = FeatureHasher(context_width) if context_width else None
@@ -258,6 +317,9 @@ class MatchupModel(CopyOnWriteRows):
             "uncertainty": self.uncertainty,
             "prior_var": self.prior_var,
             "noise_per_day": self.noise_per_day,
+            "vector_uncertainty": self.vector_uncertainty,
+            "vector_prior_var": self.vector_prior_var,
+            "vector_noise_per_day": self.vector_noise_per_day,
         }
 
     @classmethod
@@ -265,13 +327,16 @@ class MatchupModel(CopyOnWriteRows):
         state = numbers_read_raw(cls, state)
         if state.kind == cls.kind and state.version == 2:
             params = {**state.params, "uncertainty": False}
-            return ModelState(state.kind, 3, params, state.arrays)
+            state = ModelState(state.kind, 3, params, state.arrays)
+        if state.kind == cls.kind and state.version == 3:
+            params = {**state.params, "vector_uncertainty": False}
+            state = ModelState(state.kind, 4, params, state.arrays)
         return state
 
     @property
     def _timed(self) -> bool:
         """Whether each entity's last match time is kept (forgetting, uncertainty)."""
-        return self.forget_per_day > 0 or self.uncertainty
+        return self.forget_per_day > 0 or self.uncertainty or self.vector_uncertainty
 
     @property
     def width(self) -> int:
@@ -290,6 +355,7 @@ class MatchupModel(CopyOnWriteRows):
                 int(self.context == "gated"),
                 self.feature_width,
                 int(self.uncertainty),
+                int(self.vector_uncertainty),
             ],
             dtype=np.int64,
         )
@@ -307,6 +373,8 @@ class MatchupModel(CopyOnWriteRows):
                 self.lr_strength,
                 self.prior_var,
                 self.noise_per_day,
+                self.vector_prior_var,
+                self.vector_noise_per_day,
             ]
         )
 
@@ -352,6 +420,9 @@ class MatchupModel(CopyOnWriteRows):
         self.acc_[ready:hi] = self.accum_init
         if self.uncertainty:
             self.acc_[ready:hi, 0] = self.prior_var  # the strength's variance, not a sum
+        if self.vector_uncertainty:  # the blade's and the chest's variances
+            self.acc_[ready:hi, so] = self.vector_prior_var
+            self.acc_[ready:hi, so + self.dims] = self.vector_prior_var
         for lo in range(ready, hi, GROW_ROWS) if self.dims else ():
             top = min(lo + GROW_ROWS, hi)  # float64 temporaries of one step at most
             block = hashed_uniform(self.seed, lo, top, 2 * self.dims)
@@ -453,6 +524,7 @@ class MatchupModel(CopyOnWriteRows):
             and self.context == "none"
             and self.feature_width == 0
             and not self.uncertainty
+            and not self.vector_uncertainty
             and len(b) > 0
             and min(int(b.first.min()), int(b.second.min())) >= 0
         )
@@ -508,6 +580,16 @@ class MatchupModel(CopyOnWriteRows):
         uncertainty is off); it grows by ``noise_per_day`` per idle day from there."""
         r = self.entities_.get(entity_id)
         return None if r < 0 or not self.uncertainty else float(self.acc_[r, 0])
+
+    def vector_variances(self, entity_id: str) -> tuple[float, float] | None:
+        """The (blade, chest) variances of the entity after its last match (None if
+        unknown or vector uncertainty is off); each grows by ``vector_noise_per_day``
+        per idle day from there."""
+        r = self.entities_.get(entity_id)
+        if r < 0 or not self.vector_uncertainty:
+            return None
+        so = int(self.strength)
+        return float(self.acc_[r, so]), float(self.acc_[r, so + self.dims])
 
     # -- persistence -------------------------------------------------------------------
     def _entity_rows(self) -> dict[str, np.ndarray]:

@@ -91,7 +91,16 @@ def _matchup_single(m: MatchupModel, general: Single) -> Single:
     except ImportError:  # no compiler: the general path is all there is
         return general
     cfg = m._cfg()  # settings only: fixed for the model object
-    hyp = np.array([m.forget_per_day, float(m.advantage), m.prior_var, m.noise_per_day])
+    hyp = np.array(
+        [
+            m.forget_per_day,
+            float(m.advantage),
+            m.prior_var,
+            m.noise_per_day,
+            m.vector_prior_var,
+            m.vector_noise_per_day,
+        ]
+    )
     hasher = m._ctx
     contexts: dict[tuple[tuple[str, Any], ...], tuple[Any, Any]] = {}
 
