@@ -149,7 +149,7 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("events", nargs="?", default="football.jsonl")
     ap.add_argument("--burn-in", type=int, default=11215)
-    ap.add_argument("--evals", type=int, default=120, help="trials per model setting")
+    ap.add_argument("--evals", type=int, default=800, help="trials per search")
     args = ap.parse_args()
     events = _load(args.events)
     burn = args.burn_in
