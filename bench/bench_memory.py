@@ -2,11 +2,11 @@
 
 Run by hand:  python bench/bench_memory.py [--entities 1000000] [--dims 16] [--batch 1000]
               python bench/bench_memory.py --service [--entities 1000000] [--dims 16]
-                  [--env MALLOC_MMAP_THRESHOLD_=131072 ...]
+                  [--env MALLOC_MMAP_THRESHOLD_=131072 ...] [--pause-events 100000]
 
 ``--service`` measures the service itself: a ``streamrate serve`` subprocess
 (blade-chest, ``--dims``, default settings otherwise: background checkpoints
-to a file, retry record, quality windows; metrics off) against a
+to a file, retry record, quality windows; metrics on a free port) against a
 ``redis-server`` this script starts on a free loopback port in a temporary
 directory (no persistence) and stops by its PID. After a warm-up (1,000
 events among 100 entities, applied and acknowledged) it reads the service's
@@ -17,7 +17,12 @@ acknowledged (the group has no lag and nothing pending), and reads VmRSS and
 VmHWM again (sampled every 0.2 s meanwhile too). The state's own bytes are
 computed the same way as below, from the service's last checkpoint loaded in
 this process. Printed: RSS growth and peak growth per entity and as ratios to
-the state's own bytes (aims: at most 1.5 and 2).
+the state's own bytes (aims: at most 1.5 and 2). Then, at full size, it plays
+``--pause-events`` more events among the known entities at a steady pace while
+the service checkpoints (every 5,000 events or 5 s) and reads, from the
+service's own ``/metrics``, how long each checkpoint stopped the writer
+(``streamrate_checkpoint_pause_seconds``: the state copied under the model lock;
+the write itself runs in the background) against the aim of 50 ms.
 
 Without ``--service``:
 
@@ -41,6 +46,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import subprocess
 import sys
 from datetime import UTC, datetime, timedelta
@@ -183,7 +189,24 @@ def _own_bytes(model: Any) -> tuple[int, int]:
     return array_bytes, id_bytes
 
 
-def service(n_ent: int, dims: int, batch: int, env: list[str]) -> None:
+def _pauses(metrics_port: int) -> dict[str, int]:
+    """The writer's checkpoint pause histogram, scraped: cumulative count by ``le``."""
+    import urllib.request
+
+    from prometheus_client.parser import text_string_to_metric_families
+
+    with urllib.request.urlopen(f"http://127.0.0.1:{metrics_port}/metrics", timeout=10) as resp:
+        text = resp.read().decode()
+    out: dict[str, int] = {}
+    for fam in text_string_to_metric_families(text):
+        if fam.name == "streamrate_checkpoint_pause_seconds":
+            for sample in fam.samples:
+                if sample.name.endswith("_bucket"):
+                    out[sample.labels["le"]] = int(sample.value)
+    return out
+
+
+def service(n_ent: int, dims: int, batch: int, env: list[str], pause_events: int) -> None:
     import json as _json
     import os
     import shutil
@@ -232,9 +255,10 @@ def service(n_ent: int, dims: int, batch: int, env: list[str]) -> None:
                 except redis.ConnectionError:
                     time.sleep(0.02)
             cfg = tmp / "serve.toml"
+            mport = free_port()
             cfg.write_text(
                 f'[redis]\nurl = "redis://127.0.0.1:{port}/0"\n'
-                f'[checkpoint]\ndir = "{tmp / "ck"}"\n[metrics]\nenabled = false\n'
+                f'[checkpoint]\ndir = "{tmp / "ck"}"\n[metrics]\nport = {mport}\n'
                 '[[spaces]]\nname = "duel"\nmodel = "blade_chest"\n'
                 f"batch_count = {batch}\n[spaces.model_settings]\ndims = {dims}\n"
             )
@@ -293,8 +317,26 @@ def service(n_ent: int, dims: int, batch: int, env: list[str]) -> None:
             took = time.perf_counter() - t0
             time.sleep(1.0)
             rss1 = _proc_kb(svc.pid, "VmRSS")
-            hwm1 = _proc_kb(svc.pid, "VmHWM")
+            hwm1 = _proc_kb(svc.pid, "VmHWM")  # memory is read before the pause part
             top = max(top, top_wait)
+            # The checkpoint pause at full size: events among the entities now known,
+            # at a steady pace, while checkpoints are taken (every 5,000 events or 5 s).
+            before = _pauses(mport)
+
+            def among(k: int) -> tuple[str, str]:
+                a = (7919 * k) % n_ent
+                return f"quill-{a}", f"quill-{(a + 1 + k % 97) % n_ent}"
+
+            played = 0
+            t_p = time.perf_counter()
+            while played < pause_events:
+                lo = warm + pairs + played
+                fill(lo, lo + 10_000, among)
+                played += 10_000
+                time.sleep(0.25)
+            wait("events among one million entities")
+            took_p = time.perf_counter() - t_p
+            pauses = {le: n - before.get(le, 0) for le, n in _pauses(mport).items()}
             os.kill(svc.pid, signal.SIGTERM)
             svc.wait(300)
             svc = None
@@ -329,6 +371,16 @@ def service(n_ent: int, dims: int, batch: int, env: list[str]) -> None:
         f"  peak (VmHWM) growth:  {peak / n:8.1f} per entity = {peak / own:.2f} x own bytes "
         f"(peak {hwm1 / 1024:,.0f} MiB; aim <= 2); largest sampled RSS {top / 1024:,.0f} MiB"
     )
+    total = pauses.get("+Inf", 0)
+    under = pauses.get("0.05", 0)
+    slowest = min((float(le) for le, c in pauses.items() if c == total), default=math.inf)
+    shown = ", ".join(f"<= {le} s: {c}" for le, c in pauses.items() if 0 < c < total)
+    print(
+        f"  checkpoint pauses of the writer at {n:,} entities (streamrate_checkpoint_pause_seconds,"
+        f" {pause_events:,} events in {took_p:.0f} s): {total} checkpoints, {under} of them"
+        f" under 50 ms (aim: all); every one <= {slowest:g} s"
+        f"{'; ' + shown if shown else ''}"
+    )
 
 
 def main() -> None:
@@ -341,11 +393,18 @@ def main() -> None:
     ap.add_argument(
         "--env", action="append", default=[], help="KEY=VALUE for the service's environment"
     )
+    ap.add_argument(
+        "--pause-events",
+        type=int,
+        default=100_000,
+        help="with --service: events played among the entities once all are known, while"
+        " the writer's checkpoint pauses are counted",
+    )
     ap.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
     ap.add_argument("--former", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.service:
-        service(args.entities, args.dims, args.batch, args.env)
+        service(args.entities, args.dims, args.batch, args.env, args.pause_events)
         return
     if args.child:
         got = child(args.entities, args.dims, args.batch, args.context, args.former)

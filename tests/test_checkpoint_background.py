@@ -265,3 +265,37 @@ def test_entity_ids_saved_piecewise_equal_the_ids_joined_at_once(
         got = bytes(table.to_arrays()["entity_ids"])
         assert got == "\n".join(table.ids).encode("utf-8")
         assert EntityTable.from_arrays(table.to_arrays()).ids == table.ids
+
+
+def _sample(w: Writer, name: str) -> float:
+    got = w.metrics.registry.get_sample_value(name, {"space": SPACE.name})
+    assert got is not None, name
+    return got
+
+
+def test_the_pause_metric_counts_the_loops_stop_not_the_write() -> None:
+    r = fakeredis.FakeRedis()
+    store = GatedStore(r)
+    w = _writer(r, store)
+    w.recover()
+    _push(r, WORLD[:51])
+    while w.live.applied < 51:
+        w.step()  # the checkpoint due at 40 entries starts, in the background
+    assert store.started.wait(WAIT_S)
+    # Observed once, while the store is still held: the write is not in the pause.
+    assert _sample(w, "streamrate_checkpoint_pause_seconds_count") == 1
+    assert w.checkpoints.in_flight
+    assert _sample(w, "streamrate_checkpoint_write_seconds_count") == 0
+    store.gate.set()
+    _finish(w)
+    assert _sample(w, "streamrate_checkpoint_write_seconds_count") == 1
+    # An inline checkpoint (the final one) stops the loop for its whole write.
+    _push(r, WORLD[51:60])
+    _drain(w)
+    pause0 = _sample(w, "streamrate_checkpoint_pause_seconds_sum")
+    write0 = _sample(w, "streamrate_checkpoint_write_seconds_sum")
+    w.close()
+    assert _sample(w, "streamrate_checkpoint_pause_seconds_count") == 2
+    assert _sample(w, "streamrate_checkpoint_write_seconds_count") == 2
+    pause = _sample(w, "streamrate_checkpoint_pause_seconds_sum") - pause0
+    assert pause >= _sample(w, "streamrate_checkpoint_write_seconds_sum") - write0 > 0
