@@ -2,11 +2,11 @@
 
 Run by hand:  python bench/bench_memory.py [--entities 1000000] [--dims 16] [--batch 1000]
               python bench/bench_memory.py --service [--entities 1000000] [--dims 16]
-                  [--env MALLOC_MMAP_THRESHOLD_=131072 ...]
+                  [--env MALLOC_MMAP_THRESHOLD_=131072 ...] [--pause-events 100000]
 
 ``--service`` measures the service itself: a ``streamrate serve`` subprocess
 (blade-chest, ``--dims``, default settings otherwise: background checkpoints
-to a file, retry record, quality windows; metrics off) against a
+to a file, retry record, quality windows; metrics on a free port) against a
 ``redis-server`` this script starts on a free loopback port in a temporary
 directory (no persistence) and stops by its PID. After a warm-up (1,000
 events among 100 entities, applied and acknowledged) it reads the service's
@@ -17,7 +17,12 @@ acknowledged (the group has no lag and nothing pending), and reads VmRSS and
 VmHWM again (sampled every 0.2 s meanwhile too). The state's own bytes are
 computed the same way as below, from the service's last checkpoint loaded in
 this process. Printed: RSS growth and peak growth per entity and as ratios to
-the state's own bytes (aims: at most 1.5 and 2).
+the state's own bytes (aims: at most 1.5 and 2). Then, at full size, it plays
+``--pause-events`` more events among the known entities at a steady pace while
+the service checkpoints (every 5,000 events or 5 s) and reads, from the
+service's own ``/metrics``, how long each checkpoint stopped the writer
+(``streamrate_checkpoint_pause_seconds``: the state copied under the model lock;
+the write itself runs in the background) against the aim of 50 ms.
 
 Without ``--service``:
 
@@ -41,6 +46,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import subprocess
 import sys
 from datetime import UTC, datetime, timedelta
@@ -183,7 +189,35 @@ def _own_bytes(model: Any) -> tuple[int, int]:
     return array_bytes, id_bytes
 
 
-def service(n_ent: int, dims: int, batch: int, env: list[str]) -> None:
+def _scrape(metrics_port: int) -> list[Any]:
+    import urllib.request
+
+    from prometheus_client.parser import text_string_to_metric_families
+
+    with urllib.request.urlopen(f"http://127.0.0.1:{metrics_port}/metrics", timeout=10) as resp:
+        return list(text_string_to_metric_families(resp.read().decode()))
+
+
+def _counter_sum(metrics_port: int, name: str) -> float:
+    """The sum of a counter's series (all labels), scraped."""
+    fams = [f for f in _scrape(metrics_port) if f.name == name.removesuffix("_total")]
+    return sum(x.value for f in fams for x in f.samples if x.name == name)
+
+
+def _buckets(metrics_port: int, name: str) -> dict[str, int]:
+    """A histogram of the service's (one space), scraped: cumulative count by ``le``."""
+    out: dict[str, int] = {}
+    for fam in _scrape(metrics_port):
+        if fam.name == name:
+            for sample in fam.samples:
+                if sample.name.endswith("_bucket"):
+                    out[sample.labels["le"]] = int(sample.value)
+    return out
+
+
+def service(
+    n_ent: int, dims: int, batch: int, env: list[str], pause_events: int, every: tuple[int, float]
+) -> None:
     import json as _json
     import os
     import shutil
@@ -232,11 +266,13 @@ def service(n_ent: int, dims: int, batch: int, env: list[str]) -> None:
                 except redis.ConnectionError:
                     time.sleep(0.02)
             cfg = tmp / "serve.toml"
+            mport = free_port()
             cfg.write_text(
                 f'[redis]\nurl = "redis://127.0.0.1:{port}/0"\n'
-                f'[checkpoint]\ndir = "{tmp / "ck"}"\n[metrics]\nenabled = false\n'
+                f'[checkpoint]\ndir = "{tmp / "ck"}"\n[metrics]\nport = {mport}\n'
                 '[[spaces]]\nname = "duel"\nmodel = "blade_chest"\n'
-                f"batch_count = {batch}\n[spaces.model_settings]\ndims = {dims}\n"
+                f"batch_count = {batch}\ncheckpoint_every_events = {every[0]}\n"
+                f"checkpoint_every_s = {every[1]}\n[spaces.model_settings]\ndims = {dims}\n"
             )
             log = tmp / "serve.log"
 
@@ -249,9 +285,19 @@ def service(n_ent: int, dims: int, batch: int, env: list[str]) -> None:
                         pipe.execute()
                 pipe.execute()
 
+            checkpointing = every[0] < 10**8 or every[1] < 10**5
+
             def settled() -> bool:
+                """Every entry handled (the service's own count) and, when it
+                checkpoints, acknowledged."""
+                try:
+                    handled = _counter_sum(mport, "streamrate_consumer_events_total")
+                except OSError:
+                    return False  # not serving metrics yet
+                if handled < r.xlen(stream):
+                    return False
                 groups = r.xinfo_groups(stream)
-                return bool(groups) and all(g["lag"] == 0 and g["pending"] == 0 for g in groups)
+                return not checkpointing or all(g["pending"] == 0 for g in groups)
 
             def wait(what: str, timeout_s: float = 1800.0) -> tuple[int, int]:
                 deadline = time.monotonic() + timeout_s
@@ -293,8 +339,31 @@ def service(n_ent: int, dims: int, batch: int, env: list[str]) -> None:
             took = time.perf_counter() - t0
             time.sleep(1.0)
             rss1 = _proc_kb(svc.pid, "VmRSS")
-            hwm1 = _proc_kb(svc.pid, "VmHWM")
+            hwm1 = _proc_kb(svc.pid, "VmHWM")  # memory is read before the pause part
             top = max(top, top_wait)
+            # The checkpoint pause at full size: events among the entities now known,
+            # at a steady pace, while checkpoints are taken (by default every 5,000
+            # events or 5 s, as the service does).
+            pause_name = "streamrate_checkpoint_pause_seconds"
+            batch_name = "streamrate_consumer_batch_processing_seconds"
+            before = _buckets(mport, pause_name)
+            before_b = _buckets(mport, batch_name)
+
+            def among(k: int) -> tuple[str, str]:
+                a = (7919 * k) % n_ent
+                return f"quill-{a}", f"quill-{(a + 1 + k % 97) % n_ent}"
+
+            played = 0
+            t_p = time.perf_counter()
+            while played < pause_events:
+                lo = warm + pairs + played
+                fill(lo, lo + 10_000, among)
+                played += 10_000
+                time.sleep(0.25)
+            wait("events among one million entities")
+            took_p = time.perf_counter() - t_p
+            pauses = {le: n - before.get(le, 0) for le, n in _buckets(mport, pause_name).items()}
+            batches = {le: n - before_b.get(le, 0) for le, n in _buckets(mport, batch_name).items()}
             os.kill(svc.pid, signal.SIGTERM)
             svc.wait(300)
             svc = None
@@ -329,6 +398,20 @@ def service(n_ent: int, dims: int, batch: int, env: list[str]) -> None:
         f"  peak (VmHWM) growth:  {peak / n:8.1f} per entity = {peak / own:.2f} x own bytes "
         f"(peak {hwm1 / 1024:,.0f} MiB; aim <= 2); largest sampled RSS {top / 1024:,.0f} MiB"
     )
+    for label, got in (("checkpoint pauses", pauses), ("batches handled", batches)):
+        total = got.get("+Inf", 0)
+        if not total:
+            print(f"  {label}: none")
+            continue
+        slowest = min((float(le) for le, c in got.items() if c == total), default=math.inf)
+        shown = ", ".join(f"<= {le} s: {c}" for le, c in got.items() if 0 < c < total)
+        print(f"  {label}: {total}, every one <= {slowest:g} s{'; ' + shown if shown else ''}")
+    print(
+        f"  (at {n:,} entities, {pause_events:,} events in {took_p:.0f} s; checkpoint pause:"
+        " streamrate_checkpoint_pause_seconds, the writer stopped to start a checkpoint,"
+        " aim < 50 ms; batches: streamrate_consumer_batch_processing_seconds, a batch's"
+        " validation and update, slowed if the saving thread holds the interpreter)"
+    )
 
 
 def main() -> None:
@@ -341,11 +424,27 @@ def main() -> None:
     ap.add_argument(
         "--env", action="append", default=[], help="KEY=VALUE for the service's environment"
     )
+    ap.add_argument(
+        "--pause-events",
+        type=int,
+        default=100_000,
+        help="with --service: events played among the entities once all are known, while"
+        " the writer's checkpoint pauses are counted",
+    )
+    ap.add_argument(
+        "--checkpoint-every-events",
+        type=int,
+        default=5000,
+        help="with --service: the space's checkpoint cadence (the service's default);"
+        " a huge value and --checkpoint-every-s 1e6 give the same run without checkpoints",
+    )
+    ap.add_argument("--checkpoint-every-s", type=float, default=5.0)
     ap.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
     ap.add_argument("--former", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.service:
-        service(args.entities, args.dims, args.batch, args.env)
+        every = (args.checkpoint_every_events, args.checkpoint_every_s)
+        service(args.entities, args.dims, args.batch, args.env, args.pause_events, every)
         return
     if args.child:
         got = child(args.entities, args.dims, args.batch, args.context, args.former)

@@ -41,6 +41,7 @@ CONSUMER_STATES = ("loading", "ready", "stalled")
 answering; ``stalled``: the consumer cannot apply events (loop errors, Redis
 unreachable). Queries get a "not ready" error reply unless ``ready``."""
 _BATCH_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5)
+_PAUSE_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.02, 0.03, 0.04, 0.05, 0.075, 0.1, 0.25, 0.5, 1.0, 2.5)
 _QUERY_BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1)
 
 
@@ -117,6 +118,14 @@ class ServiceMetrics:
             "Time to encode and durably store one checkpoint.",
             ["space"],
             buckets=_BATCH_BUCKETS,
+            registry=r,
+        )
+        self.checkpoint_pause = Histogram(
+            "streamrate_checkpoint_pause_seconds",
+            "Time the writer stops applying events to start one checkpoint (the state"
+            " copied under the model lock; with inline checkpoints, the whole write).",
+            ["space"],
+            buckets=_PAUSE_BUCKETS,
             registry=r,
         )
         self.checkpoint_time = Gauge(
@@ -250,6 +259,7 @@ class ServiceMetrics:
                 self.state.labels(space=s, state=st).set(1 if st == "loading" else 0)
             self.batch_seconds.labels(space=s)
             self.checkpoint_seconds.labels(space=s)
+            self.checkpoint_pause.labels(space=s)
             for k in QUERY_KINDS:
                 self.query_seconds.labels(space=s, kind=k)
                 for o in QUERY_OUTCOMES:

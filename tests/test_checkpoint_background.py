@@ -115,7 +115,8 @@ def _reference(events: list[MatchEvent]) -> dict[str, np.ndarray]:
     return m.to_state().arrays
 
 
-def test_acks_wait_until_the_checkpoint_is_durable() -> None:
+def _saving_at_40() -> tuple[Any, GatedStore, Writer]:
+    """A writer that applied 51 events, its checkpoint due at 40 held in the store."""
     r = fakeredis.FakeRedis()
     store = GatedStore(r)
     w = _writer(r, store)
@@ -124,6 +125,11 @@ def test_acks_wait_until_the_checkpoint_is_durable() -> None:
     while w.live.applied < 51:
         w.step()  # the checkpoint due at 40 entries starts, in the background
     assert store.started.wait(WAIT_S)
+    return r, store, w
+
+
+def test_acks_wait_until_the_checkpoint_is_durable() -> None:
+    r, store, w = _saving_at_40()
     assert w.checkpoints.in_flight
     covered = w.checkpoints.ckpt_id
     _push(r, WORLD[51:80])
@@ -265,3 +271,30 @@ def test_entity_ids_saved_piecewise_equal_the_ids_joined_at_once(
         got = bytes(table.to_arrays()["entity_ids"])
         assert got == "\n".join(table.ids).encode("utf-8")
         assert EntityTable.from_arrays(table.to_arrays()).ids == table.ids
+
+
+def _sample(w: Writer, name: str) -> float:
+    got = w.metrics.registry.get_sample_value(name, {"space": SPACE.name})
+    assert got is not None, name
+    return got
+
+
+def test_the_pause_metric_counts_the_loops_stop_not_the_write() -> None:
+    r, store, w = _saving_at_40()
+    # Observed once, while the store is still held: the write is not in the pause.
+    assert _sample(w, "streamrate_checkpoint_pause_seconds_count") == 1
+    assert w.checkpoints.in_flight
+    assert _sample(w, "streamrate_checkpoint_write_seconds_count") == 0
+    store.gate.set()
+    _finish(w)
+    assert _sample(w, "streamrate_checkpoint_write_seconds_count") == 1
+    # An inline checkpoint (the final one) stops the loop for its whole write.
+    _push(r, WORLD[51:60])
+    _drain(w)
+    pause0 = _sample(w, "streamrate_checkpoint_pause_seconds_sum")
+    write0 = _sample(w, "streamrate_checkpoint_write_seconds_sum")
+    w.close()
+    assert _sample(w, "streamrate_checkpoint_pause_seconds_count") == 2
+    assert _sample(w, "streamrate_checkpoint_write_seconds_count") == 2
+    pause = _sample(w, "streamrate_checkpoint_pause_seconds_sum") - pause0
+    assert pause >= _sample(w, "streamrate_checkpoint_write_seconds_sum") - write0 > 0

@@ -18,10 +18,12 @@ from streamrate.events import (
     SCHEMA_ID_PATTERN,
     MatchEvent,
     event_digest,
+    event_digests,
     event_to_json,
     parse_event,
     parse_matchup,
 )
+from tests.decide_reference import reference_digest
 
 ID_CATEGORIES = ("L", "M", "N", "P", "S")
 ids = st.text(alphabet=st.characters(categories=ID_CATEGORIES), min_size=1, max_size=12)
@@ -267,3 +269,39 @@ def test_the_published_schema_pattern_is_looser_than_the_service_and_refuses_the
     for ch in NAMED_REFUSED:
         if unicodedata.category(ch) != "Cn":
             assert not re.match(SCHEMA_ID_PATTERN, text + ch)
+
+
+categories = st.from_regex(r"[a-z][a-z0-9\-]{0,6}", fullmatch=True)
+
+
+@st.composite
+def digest_batches(draw: st.DrawFn) -> list[MatchEvent]:
+    """Batches mostly of the usual shape (contexts of categories, no features, no
+    margin), sometimes mixed with events of another shape."""
+    out = []
+    for k in range(draw(st.integers(1, 8))):
+        data = draw(valid_events())
+        data["match_id"] = f"{data['match_id']}-{k}"
+        shape = draw(st.sampled_from(["usual", "usual", "usual", "bare", "any", "margin"]))
+        if shape in ("usual", "bare", "margin"):
+            data["features"] = {}
+            data["context"] = (
+                {} if shape == "bare" else draw(st.dictionaries(names, categories, max_size=3))
+            )
+        if shape == "margin":
+            data["margin"] = {1: 2.0, 0: -1.5, 0.5: 0.0}[data["score"]]
+        out.append(parse_event(json.dumps(data)))
+    return out
+
+
+@given(digest_batches())
+def test_batch_digests_are_the_digests_of_each_event(batch: list[MatchEvent]) -> None:
+    # The digests of a batch (event_digests, with its cache of contexts cold, then
+    # warm) against the canonical text as first written, one event at a time
+    # (tests/decide_reference.py; margins are pinned in tests/test_events.py).
+    times = [ev.finished_at.timestamp() for ev in batch]
+    first, again = event_digests(batch, times), event_digests(batch, times)
+    assert first == again == [event_digest(ev) for ev in batch]
+    for ev, got in zip(batch, first, strict=True):
+        if ev.margin is None:
+            assert got == reference_digest(ev)

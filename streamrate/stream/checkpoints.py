@@ -322,6 +322,8 @@ class Checkpointer:
         if self._job is not None:
             if not inline:
                 return
+        paused_at = time.perf_counter()  # the loop applies nothing until this returns
+        if self._job is not None:
             self._wait()
         t0 = time.perf_counter()
         live = self.live
@@ -365,9 +367,13 @@ class Checkpointer:
             self.to_ack, self.since = [], 0
             self.last_at = self.clock()
             self._job = job
+            pause = self.metrics.checkpoint_pause.labels(**self._lbl)
             if inline:
-                job.run(self.store)
-                self._complete(raise_error=True)
+                try:
+                    job.run(self.store)
+                    self._complete(raise_error=True)
+                finally:
+                    pause.observe(time.perf_counter() - paused_at)
             else:
                 self._thread = threading.Thread(
                     target=job.run,
@@ -375,6 +381,7 @@ class Checkpointer:
                     name=f"checkpoint-{self.space.name}",
                 )
                 self._thread.start()
+                pause.observe(time.perf_counter() - paused_at)
                 return
         else:
             self.last_at = self.clock()
