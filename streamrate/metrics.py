@@ -41,7 +41,9 @@ CONSUMER_STATES = ("loading", "ready", "stalled")
 answering; ``stalled``: the consumer cannot apply events (loop errors, Redis
 unreachable). Queries get a "not ready" error reply unless ``ready``."""
 _BATCH_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5)
-_PAUSE_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.02, 0.03, 0.04, 0.05, 0.075, 0.1, 0.25, 0.5, 1.0, 2.5)
+_PAUSE_BUCKETS = (
+    0.001, 0.0025, 0.005, 0.01, 0.02, 0.03, 0.04, 0.05, 0.075, 0.1, 0.25, 0.5, 1.0, 2.5
+)  # fmt: skip
 _QUERY_BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1)
 
 

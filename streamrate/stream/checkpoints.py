@@ -319,9 +319,8 @@ class Checkpointer:
         in a thread and :meth:`poll` completes it. Otherwise the save in flight
         (if any) is waited for and this one runs inline; its error is raised."""
         inline = wait or not self.background
-        if self._job is not None:
-            if not inline:
-                return
+        if self._job is not None and not inline:
+            return
         paused_at = time.perf_counter()  # the loop applies nothing until this returns
         if self._job is not None:
             self._wait()
