@@ -14,9 +14,11 @@ Families:
   a starting rating for newcomers (promoted sides) and a forecast scale
   (``p = sigmoid(scale * (r_home - r_away + home))``, the update uses the unscaled
   logit), tuned by Nelder-Mead from a grid of starts;
-- ``bradley_terry`` and ``blade_chest`` of this project, their step sizes and
-  uncertainty settings tuned the same way through the model API (each trial replays
-  the whole file with ``learn_many``).
+- ``bayes_strength`` (the family of the served default's members: season pull,
+  drifting first-side advantage, newcomer offset), ``bradley_terry`` and
+  ``blade_chest`` of this project, their step sizes and uncertainty settings tuned
+  the same way through the model API (each trial replays the whole file with
+  ``learn_many``).
 """
 
 from __future__ import annotations
@@ -37,6 +39,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 from streamrate.calibration import log_loss
 from streamrate.evaluate import numbered_events
 from streamrate.events import MatchEvent
+from streamrate.models.mixture import DEFAULT_MEMBERS
 from streamrate.models.registry import build_model
 
 
@@ -116,25 +119,69 @@ def tune_elo(data: tuple[np.ndarray, ...], burn: int, evals: int) -> tuple[float
     return best[0], dict(zip(names, (float(v) for v in best[1]), strict=True))
 
 
-def model_loss(kind: str, events: list[MatchEvent], burn: int, settings: dict[str, Any]) -> float:
+def model_forecasts(kind: str, events: list[MatchEvent], settings: dict[str, Any]) -> np.ndarray:
     model = build_model(kind, **settings)
-    p = np.asarray(model.learn_many(events).expected_score, dtype=np.float64)
+    return np.asarray(model.learn_many(events).expected_score, dtype=np.float64)
+
+
+def model_loss(kind: str, events: list[MatchEvent], burn: int, settings: dict[str, Any]) -> float:
+    p = model_forecasts(kind, events, settings)
     y = np.array([ev.score for ev in events])
     return log_loss(p[burn:], y[burn:])
+
+
+def best_pool(forecasts: list[np.ndarray], y: np.ndarray) -> tuple[float, float]:
+    """Log loss of the best fixed pools of tuned forecasts, weights also chosen in
+    hindsight: (linear pool, logit pool with a scale)."""
+    f = np.clip(np.stack(forecasts), 1e-9, 1 - 1e-9)
+    logits = np.log(f) - np.log1p(-f)
+
+    def weights(x: np.ndarray) -> np.ndarray:
+        w = np.exp(x - x.max())
+        return w / w.sum()
+
+    def linear(x: np.ndarray) -> float:
+        return log_loss(weights(x) @ f, y)
+
+    def logit(x: np.ndarray) -> float:
+        z = math.exp(x[0]) * (weights(x[1:]) @ logits)
+        return log_loss(1.0 / (1.0 + np.exp(-z)), y)
+
+    k = len(forecasts)
+    opts = {"maxfev": 4000, "xatol": 1e-5, "fatol": 1e-7}
+    lin = minimize(linear, np.zeros(k), method="Nelder-Mead", options=opts)
+    lgt = minimize(logit, np.zeros(k + 1), method="Nelder-Mead", options=opts)
+    return float(lin.fun), float(lgt.fun)
 
 
 def tune_model(
     kind: str, events: list[MatchEvent], burn: int, fixed: dict[str, Any], evals: int
 ) -> tuple[float, dict[str, Any]]:
-    """Nelder-Mead over the log of the positive settings, from the preset's values."""
+    """Nelder-Mead over the log of the positive settings (the logit of a fraction),
+    from the preset's values."""
     base = build_model(kind, **fixed).get_params()  # type: ignore[attr-defined]
-    names = ["lr_strength", "prior_var", "noise_per_day", "l2", "forget_per_day", "accum_init"]
-    if base["dims"] > 0:
-        names += ["lr", "init_scale"]
-    x0 = np.log([max(base[k], 1e-5) for k in names])  # forgetting starts at 1e-5 a day
+    if kind == "bayes_strength":
+        names = ["prior_var", "noise_per_day", "advantage_var", "period_var", "newcomer_var"]
+        names += ["shared_noise_per_day", "period_pull"]
+    else:
+        names = ["lr_strength", "prior_var", "noise_per_day", "l2", "forget_per_day"]
+        names += ["accum_init"] + (["lr", "init_scale"] if base["dims"] > 0 else [])
+    fractions = {"period_pull"}
+    # zero settings start small: forgetting, noise and pulls at about 1e-5 (a pull at 0.1)
+    x0 = np.array(
+        [
+            math.log(min(max(base[k], 0.1), 0.9) / (1 - min(max(base[k], 0.1), 0.9)))
+            if k in fractions
+            else math.log(max(base[k], 1e-5))
+            for k in names
+        ]
+    )
+
+    def value(k: str, v: float) -> float:
+        return 1.0 / (1.0 + math.exp(-v)) if k in fractions else math.exp(v)
 
     def settings(x: np.ndarray) -> dict[str, Any]:
-        return {**fixed, **{k: float(math.exp(v)) for k, v in zip(names, x, strict=True)}}
+        return {**fixed, **{k: value(k, float(v)) for k, v in zip(names, x, strict=True)}}
 
     def loss(x: np.ndarray) -> float:
         if np.any(np.abs(x) > 25):
@@ -150,32 +197,54 @@ def main() -> None:
     ap.add_argument("events", nargs="?", default="football.jsonl")
     ap.add_argument("--burn-in", type=int, default=11215)
     ap.add_argument("--evals", type=int, default=800, help="trials per search")
+    ap.add_argument("--only", help="families to search, comma-separated (elo, bayes_strength, ...)")
     args = ap.parse_args()
+    only = set(args.only.split(",")) if args.only else None
     events = _load(args.events)
     burn = args.burn_in
     print(f"{len(events)} events, scored {len(events) - burn} (tuned on them: a hindsight bound)")
     t0 = time.perf_counter()
-    ll, best = tune_elo(_arrays(events), burn, args.evals)
-    shown = ", ".join(f"{k}={v:.4g}" for k, v in best.items())
-    print(f"elo (home bonus, season pull, newcomer start, scale): {ll:.4f}  {shown}")
-    print(f"  [{time.perf_counter() - t0:.0f} s]")
+    y = np.array([ev.score for ev in events])
+    tuned: list[np.ndarray] = []  # each family's forecasts with its hindsight settings
+    if only is None or "elo" in only:
+        data = _arrays(events)
+        ll, best = tune_elo(data, burn, args.evals)
+        tuned.append(elo_forecasts(*data[:4], int(data[4][0]), **best)[burn:])
+        shown = ", ".join(f"{k}={v:.4g}" for k, v in best.items())
+        print(f"elo (home bonus, season pull, newcomer start, scale): {ll:.4f}  {shown}")
+        print(f"  [{time.perf_counter() - t0:.0f} s]")
+    seasonal = {"period_field": "season", "newcomer_matches": 15}
+    member = next(m for m in DEFAULT_MEMBERS if m["label"] == "seasonal")["settings"]
     trials: list[tuple[str, dict[str, Any]]] = [
+        # the family of the served default's members: from its own defaults, and from
+        # the settings of the member "seasonal" of the served default's mixture
+        ("bayes_strength", seasonal),
+        ("bayes_strength", {**member, **seasonal}),
         ("bradley_terry", {"backend": "numba"}),
         ("blade_chest", {"backend": "numba"}),
         ("blade_chest", {"backend": "numba", "dims": 2}),
         ("blade_chest", {"backend": "numba", "context": "none"}),
     ]
     for kind, fixed in trials:
+        if only is not None and kind not in only:
+            continue
         t0 = time.perf_counter()
         default = model_loss(kind, events, burn, fixed)
         ll, best = tune_model(kind, events, burn, fixed, args.evals)
+        tuned.append(model_forecasts(kind, events, best)[burn:])
         shown = ", ".join(
             f"{k}={v:.4g}" if isinstance(v, float) else f"{k}={v}"
             for k, v in best.items()
-            if k != "backend"
+            if k not in ("backend", "compiled", *seasonal)
         )
         print(f"{kind}: default {default:.4f}, hindsight {ll:.4f}  {shown}")
         print(f"  [{time.perf_counter() - t0:.0f} s]")
+    if len(tuned) > 1:
+        lin, lgt = best_pool(tuned, y[burn:])
+        print(
+            f"the {len(tuned)} tuned forecasts pooled, weights also in hindsight: "
+            f"linear pool {lin:.4f}, logit pool {lgt:.4f}"
+        )
 
 
 if __name__ == "__main__":
