@@ -13,9 +13,9 @@ from __future__ import annotations
 
 import threading
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import Any, Literal
+from typing import Any, Literal, Protocol, runtime_checkable
 
 from streamrate.events import MatchEvent
 from streamrate.models.base import Model, Prediction, Predictions
@@ -25,6 +25,21 @@ from streamrate.serve.livefeed import WatchRegistry, live_messages
 Observer = Callable[[MatchEvent, Prediction, str], None]
 """Called after each applied event with (event, prediction made before learning, model kind);
 for a challenger set also once per member with that member's prediction and label."""
+
+
+@runtime_checkable
+class ChunkObserver(Protocol):
+    """An observer that also takes a whole chunk at once: ``observe_chunk(events,
+    scores)`` with each model's expected scores (model name -> one per event,
+    P(win) + P(draw) / 2), equal to being called event by event, each event for
+    every model in the mapping's order."""
+
+    def __call__(self, event: MatchEvent, prediction: Prediction, kind: str) -> None: ...
+
+    def observe_chunk(
+        self, events: Sequence[MatchEvent], scores: Mapping[str, Sequence[float]]
+    ) -> None: ...
+
 
 Status = Literal["loading", "ready", "stalled"]
 
@@ -99,12 +114,23 @@ class Applier:
         return ChunkResult(preds, members, len(messages), promoted)
 
     def notify(self, part: Sequence[tuple[str, MatchEvent]], got: ChunkResult) -> None:
-        """Call the observers with each event and its predictions."""
+        """Call the observers with each event and its predictions: the served model's
+        and those of the models inside it, in that order. An observer with an
+        ``observe_chunk`` method (:class:`ChunkObserver`) takes the chunk in one call."""
         if not self.observers:
             return
         kind = self.live.model.kind
-        for i, ((_, ev), p) in enumerate(zip(part, got.preds, strict=True)):
-            for obs in self.observers:
+        events = [ev for _, ev in part]
+        scores: dict[str, list[float]] | None = None
+        for obs in self.observers:
+            if isinstance(obs, ChunkObserver):
+                if scores is None:  # expected scores, as Prediction.expected_score
+                    scores = {kind: [pw + 0.5 * pd for pw, pd in got.preds]}
+                    for label, mp in got.members.items():
+                        scores[label] = mp.expected_score.tolist()
+                obs.observe_chunk(events, scores)
+                continue
+            for i, (ev, p) in enumerate(zip(events, got.preds, strict=True)):
                 obs(ev, Prediction(p[0], p[1]), kind)
                 for label, mp in got.members.items():
                     obs(ev, Prediction(float(mp.p_win[i]), float(mp.p_draw[i])), label)

@@ -26,6 +26,7 @@ import math
 from collections import Counter, deque
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from itertools import chain, islice, repeat
 from typing import Literal
 
 import numpy as np
@@ -175,6 +176,30 @@ class PageHinkley:
             return True
         return False
 
+    def update_many(self, xs: Sequence[float]) -> list[int]:
+        """:meth:`update` with each value in order (the same arithmetic); returns the
+        positions in ``xs`` at which the test fired."""
+        fired: list[int] = []
+        sign, delta, threshold, min_events = self._sign, self.delta, self.threshold, self.min_events
+        n, mean, cum, low = self.n_, self.mean_, self.cum_, self.min_cum_
+        total = self.total_events_
+        for i, raw in enumerate(xs):
+            x = sign * float(raw)
+            total += 1
+            n += 1
+            mean += (x - mean) / n
+            cum += x - mean - delta
+            if cum < low:  # min(low, cum)
+                low = cum
+            if n >= min_events and cum - low > threshold:
+                self.alarms_.append(ChangeAlarm(total, cum - low))
+                del self.alarms_[:-100]
+                n, mean, cum, low = 0, 0.0, 0.0, 0.0  # as reset()
+                fired.append(i)
+        self.n_, self.mean_, self.cum_, self.min_cum_ = n, mean, cum, low
+        self.total_events_ = total
+        return fired
+
 
 class _Window:
     """The last ``n`` values of one feature (numbers or category strings)."""
@@ -191,6 +216,18 @@ class _Window:
         if isinstance(v, str):
             self.n_text += 1
         self.values.append(v)
+        return out
+
+    def push_many(self, vs: Sequence[float | str]) -> list[float | str]:
+        """:meth:`push` of each value in order; returns the values that fell out, oldest
+        first (values of ``vs`` itself among them when it is longer than the window)."""
+        held = self.values
+        gone = max(len(held) + len(vs) - (held.maxlen or 0), 0)
+        out = list(islice(chain(held, vs), gone))
+        self.n_text += sum(map(isinstance, vs, repeat(str))) - sum(
+            map(isinstance, out, repeat(str))
+        )
+        held.extend(vs)
         return out
 
 
@@ -227,6 +264,16 @@ class FeatureDrift:
             out = self.recent_[f].push(v)
             if out is not None:
                 self.reference_[f].push(out)
+
+    def add_many(self, ps: Sequence[float], contexts: Sequence[Mapping[str, float | str]]) -> None:
+        """:meth:`add` of each event in order."""
+        columns: dict[str, Sequence[float | str]] = {PREDICTION_FEATURE: list(map(float, ps))}
+        for f in self.fields:
+            columns[f] = [ctx.get(f, "(missing)") for ctx in contexts]
+        for f, vs in columns.items():
+            out = self.recent_[f].push_many(vs)
+            if out:
+                self.reference_[f].push_many(out)
 
     def psi(self) -> dict[str, float]:
         """PSI per feature; NaN until both windows hold events."""

@@ -120,6 +120,32 @@ class RollingQuality:
         self.head_ = (h + 1) % self.window_n
         return out
 
+    def add_many(self, p: Sequence[float], y: Sequence[float]) -> tuple[list[float], list[float]]:
+        """:meth:`add` of each event in order, written a slice at a time; returns the
+        ``(p, y)`` pushed out, oldest first. On a value outside [0, 1] the events
+        before it are added, then the error of :meth:`add` is raised."""
+        ps, ys = list(map(float, p)), list(map(float, y))
+        bad = _first_outside_unit(ps, ys)
+        if bad is not None:
+            self.add_many(ps[:bad], ys[:bad])
+            self.add(ps[bad], ys[bad])  # raises
+        out_p: list[float] = []
+        out_y: list[float] = []
+        n, i = self.window_n, 0
+        while i < len(ps):
+            h = self.head_
+            k = min(len(ps) - i, n - h)  # up to the end of the ring
+            if self.size_ == n:  # full: the slots written hold the oldest events
+                out_p += self.p_[h : h + k]
+                out_y += self.y_[h : h + k]
+            else:  # not full yet: events fill the ring from slot 0, so h == size_
+                self.size_ += k
+            self.p_[h : h + k] = ps[i : i + k]
+            self.y_[h : h + k] = ys[i : i + k]
+            self.head_ = (h + k) % n
+            i += k
+        return out_p, out_y
+
     def values(self) -> tuple[Array, Array]:
         """The window's probabilities and outcomes, oldest first (copies)."""
         if self.size_ < self.window_n:
@@ -175,10 +201,33 @@ class RollingQuality:
         )
 
 
+def _first_outside_unit(ps: list[float], ys: list[float]) -> int | None:
+    """The position of the first event whose probability or outcome is outside [0, 1]
+    (NaN included), or None. C-level passes over the lists; the loop only on a hit."""
+    if not ps or (
+        min(ps) >= 0.0
+        and max(ps) <= 1.0
+        and min(ys) >= 0.0
+        and max(ys) <= 1.0
+        and not any(map(math.isnan, ps))
+        and not any(map(math.isnan, ys))
+    ):
+        return None
+    pairs = enumerate(zip(ps, ys, strict=True))
+    return next(i for i, (p, y) in pairs if not (0 <= p <= 1 and 0 <= y <= 1))
+
+
 def event_log_loss(p: float, y: float) -> float:
     """One event's log loss in nats (clipped like :func:`streamrate.calibration.log_loss`)."""
     pc = min(max(p, P_CLIP), 1.0 - P_CLIP)
     return -(y * math.log(pc) + (1.0 - y) * math.log1p(-pc))
+
+
+def event_log_losses(p: Sequence[float], y: Sequence[float]) -> list[float]:
+    """:func:`event_log_loss` of each event (the same arithmetic, in one comprehension)."""
+    lo, hi, log, log1p = P_CLIP, 1.0 - P_CLIP, math.log, math.log1p
+    clipped = [hi if hi < c else c for c in (lo if lo > v else v for v in p)]
+    return [-(yy * log(c) + (1.0 - yy) * log1p(-c)) for c, yy in zip(clipped, y, strict=True)]
 
 
 class WindowPair:
@@ -197,6 +246,12 @@ class WindowPair:
         out = self.recent.add(p, y)
         if out is not None:
             self.reference.add(*out)
+
+    def add_many(self, p: Sequence[float], y: Sequence[float]) -> None:
+        """:meth:`add` of each event in order."""
+        out_p, out_y = self.recent.add_many(p, y)
+        if out_p:
+            self.reference.add_many(out_p, out_y)
 
 
 ALL_GROUP = "all"
@@ -310,6 +365,31 @@ class ModelQuality:
         self.drift_.add(p, context)
         return tuple(d for d, ph in self.change_.items() if ph.update(loss))
 
+    def add_many(
+        self,
+        p: Sequence[float],
+        y: Sequence[float],
+        contexts: Sequence[Mapping[str, float | str]],
+        groups: Sequence[str | None] | None,
+    ) -> list[tuple[int, Direction]]:
+        """:meth:`add` of each event in order (``groups``: each event's label, or None
+        for no grouping); returns (position, direction) of every firing, in the
+        order :meth:`add` would report them."""
+        if _first_outside_unit(list(map(float, p)), list(map(float, y))) is not None:
+            for i, (pi, yi, ctx) in enumerate(zip(p, y, contexts, strict=True)):
+                self.add(pi, yi, ctx, None if groups is None else groups[i])  # raises at it
+        self.events_ += len(p)
+        self._window(ALL_GROUP).add_many(p, y)
+        if groups is not None:
+            for label in dict.fromkeys(g for g in groups if g is not None):
+                at = [i for i, g in enumerate(groups) if g == label]
+                self._window(label).add_many([p[i] for i in at], [y[i] for i in at])
+        self.drift_.add_many(p, contexts)
+        losses = event_log_losses(p, y)
+        fired = [(i, d) for d, ph in self.change_.items() for i in ph.update_many(losses)]
+        fired.sort(key=lambda f: (f[0], CHANGE_DIRECTIONS.index(f[1])))
+        return fired
+
 
 class QualityMonitor:
     """Rolling quality, drift and change detection per model, fed one event at a time.
@@ -344,3 +424,38 @@ class QualityMonitor:
         if mq is None:
             mq = self.models_[model] = ModelQuality(self.settings)
         return mq.add(p, y, ctx, group)
+
+    def add_chunk(
+        self,
+        contexts: Sequence[Mapping[str, float | str]],
+        y: Sequence[float],
+        predictions: Mapping[str, Sequence[float]],
+    ) -> list[tuple[int, str, Direction]]:
+        """Score a chunk of events for several models at once: the same state as
+        :meth:`add` called event by event, each event for every model of
+        ``predictions`` in its order. Returns (position, model, direction) of every
+        firing, in the order those calls would have reported them."""
+        if not contexts:
+            return []
+        models = list(predictions)
+        labels: dict[str, list[str | None]] | None = None
+        field = self.settings.group_field
+        if field is not None:
+            values = [ctx.get(field) for ctx in contexts]
+            if self.groups_.chosen_ is not None:  # frozen: a label is a function of its value
+                once = list(map(self.groups_.label, values))
+                labels = dict.fromkeys(models, once)
+            else:  # warming up: one count per event and model, in the order of add()
+                labels = {m: [] for m in models}
+                for v in values:
+                    for m in models:
+                        labels[m].append(self.groups_.label(v))
+        fired: list[tuple[int, str, Direction]] = []
+        for m in models:
+            mq = self.models_.get(m)
+            if mq is None:
+                mq = self.models_[m] = ModelQuality(self.settings)
+            got = mq.add_many(predictions[m], y, contexts, None if labels is None else labels[m])
+            fired += [(i, m, d) for i, d in got]
+        fired.sort(key=lambda f: (f[0], models.index(f[1]), CHANGE_DIRECTIONS.index(f[2])))
+        return fired

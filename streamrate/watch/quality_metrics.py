@@ -37,7 +37,7 @@ from __future__ import annotations
 import logging
 import math
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 
 from prometheus_client import CollectorRegistry, Counter, Gauge
 
@@ -288,6 +288,24 @@ class QualityObserver:
             if self.on_change is not None:
                 self.on_change(model_name, direction)
         self._unpublished += 1
+        self.tick()
+
+    def observe_chunk(
+        self, events: Sequence[MatchEvent], scores: Mapping[str, Sequence[float]]
+    ) -> None:
+        """The hook for a chunk of applied events at once: each model's expected
+        scores (``scores``, model name -> one per event). The same as calling
+        the observer event by event, each event for every model in that order
+        (:meth:`QualityMonitor.add_chunk`), with the gauges published at most once."""
+        fired = self.monitor.add_chunk(
+            [ev.context for ev in events], [ev.score for ev in events], scores
+        )
+        for _, model_name, direction in fired:
+            if self.exporting:
+                self.metrics.change_fired(self.space, model_name, direction)
+            if self.on_change is not None:
+                self.on_change(model_name, direction)
+        self._unpublished += len(events) * len(scores)
         self.tick()
 
     def tick(self) -> None:
