@@ -54,7 +54,7 @@ from bench_service import empty_consumer, event_lines, fill, make_writer
 import streamrate.stream.decide as decide_mod
 from streamrate.dedupe import SeenIds
 
-PARTS = ("validation", "encoding", "dedupe", "update")
+PARTS = ("validation", "encoding", "dedupe", "update", "observers")
 BOOKKEEPING = ("read", "applied log", "checkpoint")
 """Parts of the bookkeeping shown on their own lines (they are inside it)."""
 
@@ -129,6 +129,7 @@ def hook(t: Timers, writer: Any) -> None:
     model = writer.live.model
     t.wrap(model, "encode", "encoding")
     t.wrap(model, "learn_encoded", "update")
+    t.wrap(writer.applier, "notify", "observers")
     t.wrap(writer.reader, "read", "read")
     t.wrap(writer.log, "flush", "applied log")
     t.wrap(writer.checkpoints, "save", "checkpoint")
@@ -166,7 +167,15 @@ def main() -> None:
     ap.add_argument("--repeat", type=int, default=3)
     ap.add_argument("--checkpoint", choices=("background", "inline"))
     ap.add_argument("--gc", choices=("tuned", "default"), default="tuned")
+    ap.add_argument(
+        "--quality",
+        choices=("off", "chunks", "events"),
+        default="off",
+        help="the service's quality observers: off (the aim's setting), as serve runs"
+        " them (chunks), or called event by event (events)",
+    )
     args = ap.parse_args()
+    bench_service.QUALITY = args.quality
     if args.checkpoint:
         bench_service.BACKGROUND = args.checkpoint == "background"
     batches = args.batch or [100, 1000]
@@ -187,14 +196,14 @@ def main() -> None:
             print(
                 f"{args.events} events among {args.entities} entities; blade-chest d=16; "
                 f"checkpoints {'in the background' if bench_service.BACKGROUND else 'inline'}; "
-                f"garbage collector {args.gc}; "
+                f"garbage collector {args.gc}; quality observers {args.quality}; "
                 f"microseconds per applied event, median of {args.repeat} runs (min-max)"
             )
-            cols = ("validation", "encoding", "dedupe", "update", "bookkeeping", "total")
+            cols = ("validation", "encoding", "dedupe", "update", "observers", "bookkeeping")
             for batch in batches:
                 runs = [run(r, batch, args.events, str(tmp / "ck"), k) for k in range(args.repeat)]
                 print(f"batch {batch}:")
-                for c in (*cols[:5], *BOOKKEEPING, *cols[5:], "timers", "empty"):
+                for c in (*cols, *BOOKKEEPING, "total", "timers", "empty"):
                     xs = np.array([x[c] for x in runs])
                     label = {
                         "timers": "(timers' own cost, taken out)",

@@ -32,6 +32,7 @@ import threading
 import time
 import uuid
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import redis
@@ -39,12 +40,19 @@ from _common import fill_stream, run_to_end, start_redis
 from prometheus_client import CollectorRegistry
 
 from streamrate.checkpoint import FileCheckpointStore
-from streamrate.config import CheckpointSettings, LeaseSettings, Settings, SpaceSettings
+from streamrate.config import (
+    CheckpointSettings,
+    LeaseSettings,
+    QualitySettings,
+    Settings,
+    SpaceSettings,
+)
 from streamrate.consumer import Consumer, LiveModel
 from streamrate.metrics import ServiceMetrics
 from streamrate.models.registry import build_model
 from streamrate.queries import Answerer, LobbyRequest
 from streamrate.stream.lease import Lease
+from streamrate.watch.quality_metrics import QualityMetrics, quality_observers
 
 MODEL_SETTINGS = {"dims": 16}
 STREAM = "{sr:duel}:events"
@@ -95,6 +103,29 @@ BACKGROUND = CheckpointSettings().background
 unless ``--checkpoint inline`` is given."""
 
 
+QUALITY = "off"
+"""The service's quality observers on the writer: ``off`` (the figures of the issue's
+aim), ``chunks`` (as ``serve`` runs them: a chunk per call) or ``events`` (the same
+observers called event by event, as before chunks)."""
+
+
+class _EventByEvent:
+    """An observer seen without its ``observe_chunk``: called event by event."""
+
+    def __init__(self, inner: Any) -> None:
+        self.inner = inner
+
+    def __call__(self, event: Any, prediction: Any, kind: str) -> None:
+        self.inner(event, prediction, kind)
+
+
+def _observers() -> list[Any]:
+    if QUALITY == "off":
+        return []
+    got = quality_observers("duel", QualitySettings(), QualityMetrics(CollectorRegistry()))
+    return got if QUALITY == "chunks" else [_EventByEvent(o) for o in got]
+
+
 def make_writer(r: redis.Redis, group: str, batch: int, ckpt_dir: str) -> Consumer:
     """The service's writer for one space, its settings as a service would have them
     (default validation, retry record and checkpoint cadence; checkpoints to a file,
@@ -113,7 +144,7 @@ def make_writer(r: redis.Redis, group: str, batch: int, ckpt_dir: str) -> Consum
         r, space, keys, FileCheckpointStore(ckpt_dir, group, lease),
         ServiceMetrics(CollectorRegistry(), ["duel"]),
         lambda: build_model("blade_chest", **MODEL_SETTINGS), background=BACKGROUND,
-        lease=lease,
+        lease=lease, observers=_observers(),
     )  # fmt: skip
 
 
