@@ -15,6 +15,8 @@ from __future__ import annotations
 import math
 from abc import abstractmethod
 from collections.abc import Callable, Sequence
+from itertools import groupby
+from operator import attrgetter, methodcaller
 from typing import Any, ClassVar
 
 import numpy as np
@@ -25,6 +27,7 @@ from streamrate.events import MatchEvent, Matchup
 from streamrate.models._snapshot import CopyOnWriteRows
 from streamrate.models.base import Model, Prediction
 
+_CONTEXT = attrgetter("context")
 PROBIT = math.pi / 8.0
 """The probit approximation's factor: ``sigmoid(m / sqrt(1 + PROBIT V))``."""
 DAY_S = 86_400.0
@@ -168,14 +171,18 @@ class GaussianRows(Model):
         """Runs of one period go through ``run`` together; a change of period
         between two runs pulls and widens first. The forecasts, in order."""
         out = np.empty(len(events))
-        periods = [self._period_of(ev) for ev in events]
+        periods: list[str | None]
+        if self.period_field is None:
+            periods = [None] * len(events)
+        else:  # C-level passes; a value is never None, so None means the field is missing
+            raw = list(map(methodcaller("get", self.period_field), map(_CONTEXT, events)))
+            periods = list(map(str, raw)) if None not in raw else list(map(self._period_of, events))
         start = 0
-        for i in range(1, len(events) + 1):
-            if i < len(events) and periods[i] == periods[i - 1]:
-                continue
-            self._enter_period(periods[start])
-            out[start:i] = run(slice(start, i))
-            start = i
+        for period, same in groupby(periods):
+            stop = start + len(list(same))
+            self._enter_period(period)
+            out[start:stop] = run(slice(start, stop))
+            start = stop
         return out
 
     def _period_arrays(self) -> dict[str, np.ndarray]:
