@@ -176,7 +176,12 @@ class GaussianRows(Model):
             periods = [None] * len(events)
         else:  # C-level passes; a value is never None, so None means the field is missing
             raw = list(map(methodcaller("get", self.period_field), map(_CONTEXT, events)))
-            periods = list(map(str, raw)) if None not in raw else list(map(self._period_of, events))
+            if None not in raw:
+                periods = list(map(str, raw))
+            elif raw.count(None) == len(raw):  # no event names a period
+                periods = raw
+            else:
+                periods = list(map(self._period_of, events))
         start = 0
         for period, same in groupby(periods):
             stop = start + len(list(same))

@@ -129,6 +129,10 @@ class RollingQuality:
         if bad is not None:
             self.add_many(ps[:bad], ys[:bad])
             self.add(ps[bad], ys[bad])  # raises
+        return self._write(ps, ys)
+
+    def _write(self, ps: list[float], ys: list[float]) -> tuple[list[float], list[float]]:
+        """:meth:`add_many` of values already checked (floats in [0, 1])."""
         out_p: list[float] = []
         out_y: list[float] = []
         n, i = self.window_n, 0
@@ -251,7 +255,13 @@ class WindowPair:
         """:meth:`add` of each event in order."""
         out_p, out_y = self.recent.add_many(p, y)
         if out_p:
-            self.reference.add_many(out_p, out_y)
+            self.reference._write(out_p, out_y)
+
+    def _write(self, ps: list[float], ys: list[float]) -> None:
+        """:meth:`add_many` of values already checked (floats in [0, 1])."""
+        out_p, out_y = self.recent._write(ps, ys)
+        if out_p:
+            self.reference._write(out_p, out_y)
 
 
 ALL_GROUP = "all"
@@ -375,15 +385,16 @@ class ModelQuality:
         """:meth:`add` of each event in order (``groups``: each event's label, or None
         for no grouping); returns (position, direction) of every firing, in the
         order :meth:`add` would report them."""
-        if _first_outside_unit(list(map(float, p)), list(map(float, y))) is not None:
+        ps, ys = list(map(float, p)), list(map(float, y))
+        if _first_outside_unit(ps, ys) is not None:
             for i, (pi, yi, ctx) in enumerate(zip(p, y, contexts, strict=True)):
                 self.add(pi, yi, ctx, None if groups is None else groups[i])  # raises at it
-        self.events_ += len(p)
-        self._window(ALL_GROUP).add_many(p, y)
+        self.events_ += len(ps)
+        self._window(ALL_GROUP)._write(ps, ys)
         if groups is not None:
             for label in dict.fromkeys(g for g in groups if g is not None):
                 at = [i for i, g in enumerate(groups) if g == label]
-                self._window(label).add_many([p[i] for i in at], [y[i] for i in at])
+                self._window(label)._write([ps[i] for i in at], [ys[i] for i in at])
         self.drift_.add_many(p, contexts)
         losses = event_log_losses(p, y)
         fired = [(i, d) for d, ph in self.change_.items() for i in ph.update_many(losses)]
