@@ -127,8 +127,11 @@ def hook(t: Timers, writer: Any) -> None:
     for name in ("known", "add_many", "to_arrays"):
         t.wrap(SeenIds, name, "dedupe")
     model = writer.live.model
-    t.wrap(model, "encode", "encoding")
-    t.wrap(model, "learn_encoded", "update")
+    if hasattr(model, "learn_encoded"):
+        t.wrap(model, "encode", "encoding")
+        t.wrap(model, "learn_encoded", "update")
+    else:  # a model made of models (the served default): encoding is inside its update
+        t.wrap(model, "learn_scored", "update")
     t.wrap(writer.applier, "notify", "observers")
     t.wrap(writer.reader, "read", "read")
     t.wrap(writer.log, "flush", "applied log")
@@ -174,8 +177,16 @@ def main() -> None:
         help="the service's quality observers: off (the aim's setting), as serve runs"
         " them (chunks), or called event by event (events)",
     )
+    ap.add_argument(
+        "--model",
+        choices=("blade_chest", "default"),
+        default="blade_chest",
+        help="blade-chest d=16 (the aim's setting) or the served default (recalibrated mixture)",
+    )
     args = ap.parse_args()
     bench_service.QUALITY = args.quality
+    if args.model == "default":
+        bench_service.WRITER_MODEL = ("recalibrated", {})
     if args.checkpoint:
         bench_service.BACKGROUND = args.checkpoint == "background"
     batches = args.batch or [100, 1000]
@@ -194,7 +205,8 @@ def main() -> None:
 
                 tune_gc()  # as the service does once it has started
             print(
-                f"{args.events} events among {args.entities} entities; blade-chest d=16; "
+                f"{args.events} events among {args.entities} entities; "
+                f"{'blade-chest d=16' if args.model == 'blade_chest' else 'the served default'}; "
                 f"checkpoints {'in the background' if bench_service.BACKGROUND else 'inline'}; "
                 f"garbage collector {args.gc}; quality observers {args.quality}; "
                 f"microseconds per applied event, median of {args.repeat} runs (min-max)"

@@ -126,13 +126,18 @@ def _observers() -> list[Any]:
     return got if QUALITY == "chunks" else [_EventByEvent(o) for o in got]
 
 
+WRITER_MODEL: tuple[str, dict[str, Any]] = ("blade_chest", MODEL_SETTINGS)
+"""The model of :func:`make_writer`: blade-chest d=16 (the aim's setting) unless a
+bench sets another (``bench_breakdown.py --model default``: the served default)."""
+
+
 def make_writer(r: redis.Redis, group: str, batch: int, ckpt_dir: str) -> Consumer:
     """The service's writer for one space, its settings as a service would have them
     (default validation, retry record and checkpoint cadence; checkpoints to a file,
     in the background as the service does by default: see :data:`BACKGROUND`; the
     writer lease fencing the applied log, the checkpoint and the acks)."""
     space = SpaceSettings(
-        name="duel", model="blade_chest", model_settings=MODEL_SETTINGS, group=group,
+        name="duel", model=WRITER_MODEL[0], model_settings=WRITER_MODEL[1], group=group,
         batch_count=batch, block_ms=1, checkpoint_every_events=10_000, checkpoint_every_s=5.0,
     )  # fmt: skip
     keys = Settings(spaces=(space,)).keys(space)
@@ -143,7 +148,7 @@ def make_writer(r: redis.Redis, group: str, batch: int, ckpt_dir: str) -> Consum
     return Consumer(
         r, space, keys, FileCheckpointStore(ckpt_dir, group, lease),
         ServiceMetrics(CollectorRegistry(), ["duel"]),
-        lambda: build_model("blade_chest", **MODEL_SETTINGS), background=BACKGROUND,
+        lambda: build_model(WRITER_MODEL[0], **WRITER_MODEL[1]), background=BACKGROUND,
         lease=lease, observers=_observers(),
     )  # fmt: skip
 
