@@ -45,6 +45,7 @@ MODELS: list[tuple[str, dict[str, Any]]] = [
     ("glicko2", {}),
     ("glicko2", {"period_s": 3600.0}),
     ("trueskill", {}),
+    ("trueskill", {"advantage_sigma": 0.0, "first_advantage": 0.0}),
     ("head_to_head", {}),
     ("logistic_batch", {"refit_every": 7}),
 ]
@@ -64,6 +65,7 @@ SYMMETRIC = [
     )  # learn an edge
     and not s.get("first_advantage")
     and (k != "elo" or s.get("advantage_k") == 0.0)  # Elo learns a first-side edge by default
+    and (k != "trueskill" or s.get("advantage_sigma") == 0.0)  # so does TrueSkill
 ]
 
 
@@ -221,6 +223,10 @@ def test_unknown_entities_get_the_prior(kind: str, settings_: dict[str, Any]) ->
         # Two unknowns differ only by the (learned) first-side advantage.
         prior = build_model(kind, **{**settings_, "first_advantage": float(m.advantage_[0])})
         assert m.predict(q) == prior.predict(q)
+    elif kind == "trueskill":
+        # Two unknowns differ only by the learned advantage (its mean and variance).
+        fresh.advantage_[:] = m.advantage_  # type: ignore[attr-defined]
+        assert m.predict(q) == fresh.predict(q)
     else:
         assert m.predict(q) == fresh.predict(q)
 
