@@ -37,29 +37,29 @@ performance difference stays Gaussian with
     d = mu_first + mu_h - mu_second,   c**2 = n * beta**2 + sum of sigma**2 + sigma_h**2,
 
 and prediction is the formula above with these. The outcome is a truncation of
-that one Gaussian, and the exact posterior of any Gaussian summand ``x`` of it
-(prior ``N(m, s**2)``) is ``m += s**2 / c * v`` and ``s**2 *= 1 - s**2 / c**2 * w``,
-whether or not ``x`` carries noise of its own (the noise only widens ``c``).
-So ``h`` is updated by the member formulas, on the first side's sign. Before
-each match its variance grows by ``advantage_tau**2`` (the edge may drift, as a
-skill does by ``tau``).
+that one Gaussian, and the exact posterior moments of any Gaussian summand ``x``
+of it (prior ``N(m, s**2)``) give ``m += s**2 / c * v`` and
+``s**2 *= 1 - s**2 / c**2 * w``, whether or not ``x`` carries noise of its own
+(the noise only widens ``c``). So ``h`` is updated by the member formulas, on the
+first side's sign. Before each match its variance grows by ``advantage_tau**2``
+(the edge may drift, as a skill does by ``tau``).
 
-Settings: ``first_advantage`` is ``mu_h`` at the start (skill units);
-``advantage_sigma = 0`` turns learning off (``h`` fixed at ``first_advantage``
-and no variance, the model without the advantage, to the last bit; a state of
-version 1, saved before the advantage, loads that way). The default
-``advantage_sigma = sigma / 4 = beta / 2`` is argued on the model's scale: an
-edge of ``beta`` (two prior deviations) would already make a known player's
-performance beat a known equal's 76% of the time (``Phi(1 / sqrt 2)``), far
-beyond a common first-side edge, and with it a first match moves ``mu_h`` by a
-fraction of a skill unit. It matters little: on the football results' first
-80%, half or twice the value scored within 0.0001 nats of it. ``advantage_tau = 0.005``
-was chosen on those first 80% (scoring their second half) and on simulated
-worlds (seeds 8001-8004), from 0, 0.002, 0.005, 0.01, 0.02, 0.05: it follows a
-slowly changing edge (in steady state the advantage's deviation is about
-``sqrt(advantage_tau * c / sqrt(w))``, some 0.2 skill units, and its memory
-some ``c / (advantage_tau * sqrt(w))``, about 1,500 matches) and costs at most
-0.0002 nats where the edge is fixed or absent.
+Settings: ``first_advantage`` is ``mu_h`` at the start (skill units).
+``advantage_sigma = 0`` turns learning off: ``h`` stays at ``first_advantage``
+with no variance (``advantage_tau`` unused), which is the model without the
+advantage to the last bit; a state of version 1, saved before the advantage,
+loads that way. The default ``advantage_sigma = sigma / 4 = beta / 2`` is argued
+on the model's scale: an edge of ``beta`` (two prior deviations) would make a
+known player's performance beat a known equal's 76% of the time
+(``Phi(1 / sqrt 2)``), a larger edge than we expect, while a first match moves
+``mu_h`` by a fraction of a skill unit. It matters little: on the football
+results' first 80%, half or twice the value scored within 0.0001 nats of it.
+``advantage_tau = 0.005`` was chosen on those first 80% (scoring their second
+half) and on simulated worlds (seeds 8001-8004), from 0, 0.002, 0.005, 0.01,
+0.02, 0.05: it follows a slowly changing edge (in steady state the advantage's
+deviation is about ``sqrt(advantage_tau * c / sqrt(w))``, some 0.2 skill units,
+and its memory some ``c / (advantage_tau * sqrt(w))``, about 1,500 matches) and
+cost at most 0.0003 nats there where the edge was absent.
 
 Mini-batches: each event of a batch gives a Gaussian update from the batch-start
 beliefs (the advantage's among them, its ``advantage_tau`` added once per batch
