@@ -47,6 +47,7 @@ MODELS: list[tuple[str, dict[str, Any]]] = [
     ("trueskill", {}),
     ("trueskill", {"advantage_sigma": 0.0, "first_advantage": 0.0}),
     ("head_to_head", {}),
+    ("head_to_head", {"advantage": False}),
     ("logistic_batch", {"refit_every": 7}),
 ]
 IDS = [f"{k}-{i}" for i, (k, _) in enumerate(MODELS)]
@@ -66,6 +67,7 @@ SYMMETRIC = [
     and not s.get("first_advantage")
     and (k != "elo" or s.get("advantage_k") == 0.0)  # Elo learns a first-side edge by default
     and (k != "trueskill" or s.get("advantage_sigma") == 0.0)  # so does TrueSkill
+    and (k != "head_to_head" or s.get("advantage") is False)  # so does head-to-head's prior
 ]
 
 
@@ -227,6 +229,10 @@ def test_unknown_entities_get_the_prior(kind: str, settings_: dict[str, Any]) ->
         # Two unknowns differ only by the learned advantage (its mean and variance).
         fresh.advantage_[:] = m.advantage_  # type: ignore[attr-defined]
         assert m.predict(q) == fresh.predict(q)
+    elif kind == "head_to_head" and settings_.get("advantage", True):
+        # Two unknowns get the first side's smoothed rate over the stream so far.
+        scores = [ev.score for ev in stream(3, 30)]
+        assert m.predict(q).p_win == pytest.approx((sum(scores) + 1) / (len(scores) + 2))
     else:
         assert m.predict(q) == fresh.predict(q)
 
