@@ -44,6 +44,7 @@ MODELS: list[tuple[str, dict[str, Any]]] = [
     ("recalibrated", {}),  # the served default: the default mixture, recalibrated
     ("glicko2", {}),
     ("glicko2", {"period_s": 3600.0}),
+    ("glicko2", {"advantage_k": 0.0}),
     ("trueskill", {}),
     ("head_to_head", {}),
     ("logistic_batch", {"refit_every": 7}),
@@ -63,7 +64,8 @@ SYMMETRIC = [
         "recalibrated",
     )  # learn an edge
     and not s.get("first_advantage")
-    and (k != "elo" or s.get("advantage_k") == 0.0)  # Elo learns a first-side edge by default
+    # Elo and Glicko-2 learn a first-side edge by default
+    and (k not in ("elo", "glicko2") or s.get("advantage_k") == 0.0)
 ]
 
 
@@ -220,6 +222,11 @@ def test_unknown_entities_get_the_prior(kind: str, settings_: dict[str, Any]) ->
     elif kind == "elo":
         # Two unknowns differ only by the (learned) first-side advantage.
         prior = build_model(kind, **{**settings_, "first_advantage": float(m.advantage_[0])})
+        assert m.predict(q) == prior.predict(q)
+    elif kind == "glicko2":
+        # The same: the learned advantage (internal scale) set on a fresh model.
+        prior = build_model(kind, **settings_)
+        prior.advantage_[:] = m.advantage_
         assert m.predict(q) == prior.predict(q)
     else:
         assert m.predict(q) == fresh.predict(q)
