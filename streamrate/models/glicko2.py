@@ -33,13 +33,16 @@ internal scale, everywhere: the prediction uses ``mu_a + h`` against ``mu_b``,
 and in the update the first side's members face an opponent of mean
 ``mu_b - h`` while the second side's members face ``mu_a + h``. After a match
 ``h`` moves by ``advantage_k / 173.7178 * (score - E)``, with ``E`` the first
-side's expected score in that update (a stochastic gradient step on the log
-loss, in rating points per unit of surprise, as in Elo). It starts at
-``first_advantage`` (rating points); ``advantage_k = 0`` keeps it fixed.
+side's expected score in that update (Elo's rule: a stochastic gradient step on
+the log loss up to the factor ``g``, in rating points per unit of surprise). It
+starts at ``first_advantage`` (rating points; ``advantage_`` holds ``h``, the
+``advantage`` method gives points); ``advantage_k = 0`` keeps it fixed.
 ``advantage_k`` defaults to 2.0, Elo's default: the displayed Glicko scale
 (173.7178 points per unit of the internal scale, that is 400 / ln 10) is Elo's
 rating-point scale, so the same number of points per unit of surprise is the
-same step; it was not tuned on scored data. ``learn_batch`` keeps ``h`` fixed
+same step. It was not tuned on scored data (checked afterwards on the first 80%
+of the football results: 1, 2 and 4 score within 0.0004 nats of each other, 8 is
+0.0012 worse, 0 is 0.044 worse). ``learn_batch`` keeps ``h`` fixed
 for the whole batch (one rating period from the batch-start state) and then adds
 the summed steps of its matches, so a batch of one is again ``learn``.
 States of version 1 (before the advantage) load with advantage 0 and
