@@ -248,6 +248,36 @@ def test_without_learning_the_advantage_nothing_changes() -> None:
     np.testing.assert_allclose(got, want, rtol=1e-9, atol=1e-9)
 
 
+# Printed by the model before the advantage existed (commit 24208f4) for the stream
+# below: P(first wins) of matches 99 and 299 learned one by one, of the last match
+# in mini-batches of 10, and (rating, RD, volatility) of 'kelvash' after learn_many.
+BEFORE = {
+    0.0: (
+        ["0x1.361d8ba1f004ap-1", "0x1.9fe4a09213a49p-2", "0x1.ab694716132f7p-2"],
+        ["0x1.83d0461c354e3p+10", "0x1.e5d9ce40263a4p+5", "0x1.eaeb161371b38p-5"],
+    ),
+    3600.0: (
+        ["0x1.35c0c6bb3df35p-1", "0x1.9cdc6f3e16fe0p-2", "0x1.a0cd7ab9e1334p-2"],
+        ["0x1.845cc43891574p+10", "0x1.05cb7f2b5a9f7p+6", "0x1.eaecae8f4825fp-5"],
+    ),
+}
+
+
+@pytest.mark.parametrize("compiled", [True, False])
+@pytest.mark.parametrize("period_s", [0.0, 3600.0])
+def test_with_the_advantage_off_the_numbers_are_the_former_ones_to_the_bit(
+    period_s: float, compiled: bool
+) -> None:
+    evs = [match(*pair, s, 7 * i) for i, (pair, s) in enumerate(_pairs(7, 300))]
+    m = Glicko2(period_s=period_s, advantage_k=0.0, compiled=compiled)
+    p = m.learn_many(evs).p_win
+    b = Glicko2(period_s=period_s, advantage_k=0.0, compiled=compiled)
+    last = [b.learn_batch(evs[k : k + 10]).p_win[-1] for k in range(0, 300, 10)][-1]
+    probs, rating = BEFORE[period_s]
+    assert [float(p[99]).hex(), float(p[299]).hex(), float(last).hex()] == probs
+    assert [x.hex() for x in m.rating("kelvash")] == rating
+
+
 def _pairs(seed: int, n: int) -> list[tuple[tuple[str, str], float]]:
     rng = random.Random(seed)
     names = ["kelvash", "morvenn", "tuvrenn", "oskuvar", "bravik", "vantor"]

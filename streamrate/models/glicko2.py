@@ -42,7 +42,7 @@ starts at ``first_advantage`` (rating points; ``advantage_`` holds ``h``, the
 rating-point scale, so the same number of points per unit of surprise is the
 same step. It was not tuned on scored data (checked afterwards on the first 80%
 of the football results: 1, 2 and 4 score within 0.0004 nats of each other, 8 is
-0.0012 worse, 0 is 0.044 worse). ``learn_batch`` keeps ``h`` fixed
+0.0013 worse, 0 is 0.044 worse). ``learn_batch`` keeps ``h`` fixed
 for the whole batch (one rating period from the batch-start state) and then adds
 the summed steps of its matches, so a batch of one is again ``learn``.
 States of version 1 (before the advantage) load with advantage 0 and
