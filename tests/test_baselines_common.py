@@ -46,7 +46,9 @@ MODELS: list[tuple[str, dict[str, Any]]] = [
     ("glicko2", {"period_s": 3600.0}),
     ("glicko2", {"advantage_k": 0.0}),
     ("trueskill", {}),
+    ("trueskill", {"advantage_sigma": 0.0, "first_advantage": 0.0}),
     ("head_to_head", {}),
+    ("head_to_head", {"advantage": False}),
     ("logistic_batch", {"refit_every": 7}),
 ]
 IDS = [f"{k}-{i}" for i, (k, _) in enumerate(MODELS)]
@@ -64,8 +66,10 @@ SYMMETRIC = [
         "recalibrated",
     )  # learn an edge
     and not s.get("first_advantage")
-    # Elo and Glicko-2 learn a first-side edge by default
-    and (k not in ("elo", "glicko2") or s.get("advantage_k") == 0.0)
+    and (k != "elo" or s.get("advantage_k") == 0.0)  # Elo learns a first-side edge by default
+    and (k != "glicko2" or s.get("advantage_k") == 0.0)  # so does Glicko-2
+    and (k != "trueskill" or s.get("advantage_sigma") == 0.0)  # so does TrueSkill
+    and (k != "head_to_head" or s.get("advantage") is False)  # so does head-to-head's prior
 ]
 
 
@@ -225,9 +229,16 @@ def test_unknown_entities_get_the_prior(kind: str, settings_: dict[str, Any]) ->
         assert m.predict(q) == prior.predict(q)
     elif kind == "glicko2":
         # The same: the learned advantage (internal scale) set on a fresh model.
-        prior = build_model(kind, **settings_)
-        prior.advantage_[:] = m.advantage_
-        assert m.predict(q) == prior.predict(q)
+        fresh.advantage_[:] = m.advantage_  # type: ignore[attr-defined]
+        assert m.predict(q) == fresh.predict(q)
+    elif kind == "trueskill":
+        # Two unknowns differ only by the learned advantage (its mean and variance).
+        fresh.advantage_[:] = m.advantage_  # type: ignore[attr-defined]
+        assert m.predict(q) == fresh.predict(q)
+    elif kind == "head_to_head" and settings_.get("advantage", True):
+        # Two unknowns get the first side's smoothed rate over the stream so far.
+        scores = [ev.score for ev in stream(3, 30)]
+        assert m.predict(q).p_win == pytest.approx((sum(scores) + 1) / (len(scores) + 2))
     else:
         assert m.predict(q) == fresh.predict(q)
 

@@ -13,8 +13,14 @@ the asymptotic series ``log Phi(x) = -x^2/2 - log(-x) - log(2 pi)/2 +
 log(1 - 1/x^2 + 3/x^4 - 15/x^6 + ...)`` (the Mills ratio expansion; common
 practice), summed until its terms stop mattering.
 
-``prm`` holds the settings ``[mu0, sigma0**2, beta, tau]``; ``eps_n[n]`` is the
-draw margin of a match of ``n`` players (computed by the caller).
+``prm`` holds the settings ``[mu0, sigma0**2, beta, tau, advantage_tau, learn]``
+(``learn`` 1.0 when the first-side advantage is learned, else 0.0); ``eps_n[n]``
+is the draw margin of a match of ``n`` players (computed by the caller); ``adv``
+is the advantage's belief ``[mean, variance]``, updated in place. The advantage
+is part of the first side's performance sum without performance noise: it adds
+its mean to the difference and its variance to ``c**2``, and is updated by the
+member formulas (see :mod:`.trueskill`). With ``adv = [0, 0]`` and ``learn`` 0
+every number is the one computed without it, to the last bit (adding 0.0).
 """
 
 from __future__ import annotations
@@ -115,50 +121,66 @@ def _side(rows, e, n, mu, var, prm, extra):
 
 
 @register_jitable
-def _predict_one(e, first, n1, second, n2, mu, var, prm, eps_n):
+def _predict_one(e, first, n1, second, n2, mu, var, prm, eps_n, adv):
     n = n1[e] + n2[e]
     beta = prm[2]
     mu_a, var_a = _side(first, e, n1[e], mu, var, prm, 0.0)
     mu_b, var_b = _side(second, e, n2[e], mu, var, prm, 0.0)
-    c = math.sqrt(n * beta * beta + var_a + var_b)
+    c = math.sqrt(n * beta * beta + var_a + var_b + adv[1])
     eps = eps_n[n]
-    d = mu_a - mu_b
+    d = mu_a + adv[0] - mu_b
     p_win = ndtr((d - eps) / c)
     p_loss = ndtr((-d - eps) / c)
     return p_win, max(0.0, 1.0 - p_win - p_loss)
 
 
 @register_jitable
-def _corrections(e, first, n1, second, n2, score, mu, var, prm, eps_n):
-    """(c, c**2, v, w) of event ``e`` from the current beliefs (tau added)."""
+def _corrections(e, first, n1, second, n2, score, mu, var, prm, eps_n, adv_mu, adv_var):
+    """(c, c**2, v, w) of event ``e`` from the current beliefs (tau added); the
+    advantage enters with mean ``adv_mu`` and variance ``adv_var`` (its tau added
+    by the caller)."""
     beta, tau = prm[2], prm[3]
     tau2 = tau * tau
     n = n1[e] + n2[e]
     mu_a, var_a = _side(first, e, n1[e], mu, var, prm, tau2)
     mu_b, var_b = _side(second, e, n2[e], mu, var, prm, tau2)
-    c2 = n * beta * beta + var_a + var_b
+    c2 = n * beta * beta + var_a + var_b + adv_var
     c = math.sqrt(c2)
     eps = eps_n[n] / c
+    d = mu_a + adv_mu - mu_b
     if score[e] == 0.5:
-        t = (mu_a - mu_b) / c
+        t = d / c
         v, w = draw_terms(abs(t), eps)
         if t < 0:
             v = -v
     else:
         sign = 1.0 if score[e] == 1.0 else -1.0
-        t = sign * (mu_a - mu_b) / c
+        t = sign * d / c
         v, w = v_win(t, eps), w_win(t, eps)
         if sign < 0:
             v = -v
     return c, c2, v, w
 
 
-def learn_seq(first, n1, second, n2, score, mu, var, counts, prm, eps_n, p_out):
+@register_jitable
+def _advantage_prior(adv, prm):
+    """The advantage's variance before a match (or a batch): its tau added when learned."""
+    if prm[5] > 0.0:
+        return adv[1] + prm[4] * prm[4]
+    return adv[1]
+
+
+def learn_seq(first, n1, second, n2, score, mu, var, counts, prm, eps_n, adv, p_out):
     """Predict, then update, one match after another; (P(win), P(draw)) into ``p_out``."""
     tau2 = prm[3] * prm[3]
     for e in range(first.shape[0]):
-        p_out[e, 0], p_out[e, 1] = _predict_one(e, first, n1, second, n2, mu, var, prm, eps_n)
-        c, c2, v, w = _corrections(e, first, n1, second, n2, score, mu, var, prm, eps_n)
+        p_out[e, 0], p_out[e, 1] = _predict_one(e, first, n1, second, n2, mu, var, prm, eps_n, adv)
+        hv = _advantage_prior(adv, prm)
+        c, c2, v, w = _corrections(e, first, n1, second, n2, score, mu, var, prm, eps_n, adv[0], hv)
+        # The advantage is a member of the first side without performance noise.
+        if prm[5] > 0.0 and hv > 0.0:
+            adv[0] = adv[0] + hv / c * v
+            adv[1] = hv * (1.0 - hv / c2 * w)
         # Members of a match are distinct, and each new belief needs only the
         # member's own prior and (c, v, w): updating in place is safe.
         for side in range(2):
@@ -173,10 +195,10 @@ def learn_seq(first, n1, second, n2, score, mu, var, counts, prm, eps_n, p_out):
 
 
 def learn_combined(
-    first, n1, second, n2, score, mu, var, counts, mark, prm, eps_n, p_out,
+    first, n1, second, n2, score, mu, var, counts, mark, prm, eps_n, adv, p_out,
 ):  # fmt: skip
     """Predict all from the batch-start beliefs; then add every match's change in
-    precision and precision-times-mean per entity."""
+    precision and precision-times-mean per entity, and for the advantage alike."""
     tau2 = prm[3] * prm[3]
     n, k1, k2 = first.shape[0], first.shape[1], second.shape[1]
     loc1 = np.zeros((n, k1), dtype=np.int64)
@@ -185,9 +207,18 @@ def learn_combined(
     k = places(first, n1, second, n2, 0, n, mark, uniq, loc1, loc2)
     d_prec = np.zeros(k)
     d_pm = np.zeros(k)
+    hv = _advantage_prior(adv, prm)
+    learn_h = prm[5] > 0.0 and hv > 0.0
+    h_prec = 0.0
+    h_pm = 0.0
     for e in range(first.shape[0]):
-        p_out[e, 0], p_out[e, 1] = _predict_one(e, first, n1, second, n2, mu, var, prm, eps_n)
-        c, c2, v, w = _corrections(e, first, n1, second, n2, score, mu, var, prm, eps_n)
+        p_out[e, 0], p_out[e, 1] = _predict_one(e, first, n1, second, n2, mu, var, prm, eps_n, adv)
+        c, c2, v, w = _corrections(e, first, n1, second, n2, score, mu, var, prm, eps_n, adv[0], hv)
+        if learn_h:
+            h_mu_new = adv[0] + hv / c * v
+            h_var_new = hv * (1.0 - hv / c2 * w)
+            h_prec = h_prec + 1.0 / h_var_new - 1.0 / hv
+            h_pm = h_pm + h_mu_new / h_var_new - adv[0] / hv
         for side in range(2):
             rows = first if side == 0 else second
             loc = loc1 if side == 0 else loc2
@@ -206,13 +237,17 @@ def learn_combined(
         prec = 1.0 / prior_var + d_prec[u]
         mu[r] = (mu[r] / prior_var + d_pm[u]) / prec
         var[r] = 1.0 / prec
+    if learn_h:
+        prec = 1.0 / hv + h_prec
+        adv[0] = (adv[0] / hv + h_pm) / prec
+        adv[1] = 1.0 / prec
     count(first, n1, second, n2, counts)
 
 
-def predict(first, n1, second, n2, mu, var, prm, eps_n, p_out):
+def predict(first, n1, second, n2, mu, var, prm, eps_n, adv, p_out):
     """(P(win), P(draw)) of every row from the current beliefs; changes nothing."""
     for e in range(first.shape[0]):
-        p_out[e, 0], p_out[e, 1] = _predict_one(e, first, n1, second, n2, mu, var, prm, eps_n)
+        p_out[e, 0], p_out[e, 1] = _predict_one(e, first, n1, second, n2, mu, var, prm, eps_n, adv)
 
 
 learn_seq_compiled = njit(cache=True)(learn_seq)

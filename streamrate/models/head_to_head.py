@@ -10,9 +10,21 @@ smoothed frequency
 so an unseen pairing gets 0.5 and swapping the sides gives exactly 1 - P. There
 is no draw model (``p_draw`` is 0; a draw counts half a win for each side).
 
+**First-side advantage** (``advantage=True``, the default). The add-one smoothing
+is a uniform prior: one win and one loss imagined for every pairing. With the
+advantage learned, those two imagined games are split by how the first side has
+fared in every match so far, ``m = (S + 1) / (N + 2)`` (``S`` the first side's
+score summed over all ``N`` matches, itself add-one smoothed):
+
+    P(first wins) = (w + d / 2 + 2 m) / (n + 2)
+
+so an unseen pairing gets the stream's first-side rate and a home team keeps its
+edge in a pairing met both ways. With no match yet, ``m = 1/2`` and the formula
+is the one above; ``advantage=False`` keeps ``m = 1/2`` for good.
+
 >>> from datetime import datetime, timezone
 >>> from streamrate.events import MatchEvent
->>> m = HeadToHead()
+>>> m = HeadToHead(advantage=False)
 >>> ev = MatchEvent(match_id="q-1", finished_at=datetime(2026, 3, 1, tzinfo=timezone.utc),
 ...                 first=("bravik",), second=("vantor",), score=1.0)
 >>> m.learn(ev).p_win, round(m.predict(ev).p_win, 4)
@@ -29,7 +41,7 @@ import numpy as np
 from streamrate.encode import EntityTable
 from streamrate.errors import StateError
 from streamrate.events import MatchEvent, Matchup
-from streamrate.models.base import Model, Prediction, Predictions
+from streamrate.models.base import Model, ModelState, Prediction, Predictions
 
 Key = tuple[tuple[int, ...], tuple[int, ...]]
 
@@ -38,8 +50,13 @@ class HeadToHead(Model):
     """Laplace-smoothed win frequency of each exact pairing of sides."""
 
     kind: ClassVar[str] = "head_to_head"
+    # Version 2 added the first side's running score (``advantage``); a version 1
+    # state loads with it off, as it was trained.
+    state_version: ClassVar[int] = 2
 
-    def __init__(self) -> None:
+    def __init__(self, advantage: bool = True) -> None:
+        self.advantage = bool(advantage)
+        self.first_ = np.zeros(2)  # the first side's summed score, matches (all pairings)
         self.entities_ = EntityTable()
         # pairing -> index into the tallies; the key's first side is the smaller tuple.
         self.pairs_: dict[Key, int] = {}
@@ -51,12 +68,18 @@ class HeadToHead(Model):
         a, b = tuple(sorted(first)), tuple(sorted(second))
         return ((a, b), True) if a <= b else ((b, a), False)
 
-    def _p(self, key: Key, forward: bool) -> float:
+    def _prior(self) -> float:
+        """The first side's smoothed rate over every match so far (1/2 without the advantage)."""
+        if not self.advantage:
+            return 0.5
+        return float((self.first_[0] + 1.0) / (self.first_[1] + 2.0))
+
+    def _p(self, key: Key, forward: bool, prior: float) -> float:
         i = self.pairs_.get(key)
         if i is None:
-            return 0.5
+            return prior
         w = self.wins_[i] if forward else self.games_[i] - self.wins_[i]
-        return (w + 1.0) / (self.games_[i] + 2.0)
+        return (w + 2.0 * prior) / (self.games_[i] + 2.0)
 
     # -- the online API -----------------------------------------------------------
     def predict(self, matchup: Matchup) -> Prediction:
@@ -64,8 +87,8 @@ class HeadToHead(Model):
         first = [get(e) for e in matchup.first]
         second = [get(e) for e in matchup.second]
         if min(first) < 0 or min(second) < 0:
-            return Prediction(0.5)
-        return Prediction(self._p(*self._key(first, second)))
+            return Prediction(self._prior())
+        return Prediction(self._p(*self._key(first, second), self._prior()))
 
     def learn(self, event: MatchEvent) -> Prediction:
         return self.learn_batch([event]).one(0)
@@ -74,12 +97,14 @@ class HeadToHead(Model):
         """Predict all events from the tallies at the batch start, then add the results."""
         keys = []
         p = np.empty(len(events))
+        prior = self._prior()
         for i, ev in enumerate(events):
             first = self.entities_.rows(ev.first)
             second = self.entities_.rows(ev.second)
             key, forward = self._key(first, second)
-            p[i] = self._p(key, forward)
+            p[i] = self._p(key, forward, prior)
             keys.append((key, forward, ev.score, first + second))
+        self.first_ += [sum(ev.score for ev in events), len(events)]
         for key, forward, score, rows in keys:
             slot = self.pairs_.get(key)
             if slot is None:
@@ -93,7 +118,14 @@ class HeadToHead(Model):
 
     # -- persistence --------------------------------------------------------------
     def get_params(self) -> dict[str, Any]:
-        return {}
+        return {"advantage": self.advantage}
+
+    @classmethod
+    def upgrade_state(cls, state: ModelState) -> ModelState:
+        if state.kind != cls.kind or state.version != 1:
+            return state
+        arrays = {**state.arrays, "first_score": np.zeros(2)}
+        return ModelState(state.kind, 2, {**state.params, "advantage": False}, arrays)
 
     def _state_arrays(self) -> dict[str, np.ndarray]:
         # Each pairing as its member rows, flattened: sizes say where each side ends.
@@ -105,6 +137,7 @@ class HeadToHead(Model):
         arrays["pair_rows"] = np.array(flat, dtype=np.int32)
         arrays["pair_wins"] = np.array(self.wins_, dtype=np.float64)
         arrays["pair_games"] = np.array(self.games_, dtype=np.int64)
+        arrays["first_score"] = self.first_.copy()
         return arrays
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
@@ -114,6 +147,9 @@ class HeadToHead(Model):
         rows = np.asarray(arrays["pair_rows"], dtype=np.int64).tolist()
         wins = np.asarray(arrays["pair_wins"], dtype=np.float64)
         games = np.asarray(arrays["pair_games"], dtype=np.int64)
+        first = np.asarray(arrays["first_score"], dtype=np.float64).reshape(-1)
+        if not (first.shape == (2,) and np.isfinite(first).all() and 0 <= first[0] <= first[1]):
+            raise StateError("head_to_head: the first side's score must be 0 <= sum <= matches")
         m = len(n1)
         if not (len(n2) == len(wins) == len(games) == m and len(rows) == int(n1.sum() + n2.sum())):
             raise StateError("head_to_head: pairing arrays have inconsistent lengths")
@@ -131,3 +167,4 @@ class HeadToHead(Model):
         self.pairs_ = pairs
         self.wins_ = wins.tolist()
         self.games_ = [int(x) for x in games]
+        self.first_ = first.copy()
