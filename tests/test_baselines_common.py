@@ -44,6 +44,7 @@ MODELS: list[tuple[str, dict[str, Any]]] = [
     ("recalibrated", {}),  # the served default: the default mixture, recalibrated
     ("glicko2", {}),
     ("glicko2", {"period_s": 3600.0}),
+    ("glicko2", {"advantage_k": 0.0}),
     ("trueskill", {}),
     ("trueskill", {"advantage_sigma": 0.0, "first_advantage": 0.0}),
     ("head_to_head", {}),
@@ -66,6 +67,7 @@ SYMMETRIC = [
     )  # learn an edge
     and not s.get("first_advantage")
     and (k != "elo" or s.get("advantage_k") == 0.0)  # Elo learns a first-side edge by default
+    and (k != "glicko2" or s.get("advantage_k") == 0.0)  # so does Glicko-2
     and (k != "trueskill" or s.get("advantage_sigma") == 0.0)  # so does TrueSkill
     and (k != "head_to_head" or s.get("advantage") is False)  # so does head-to-head's prior
 ]
@@ -225,6 +227,10 @@ def test_unknown_entities_get_the_prior(kind: str, settings_: dict[str, Any]) ->
         # Two unknowns differ only by the (learned) first-side advantage.
         prior = build_model(kind, **{**settings_, "first_advantage": float(m.advantage_[0])})
         assert m.predict(q) == prior.predict(q)
+    elif kind == "glicko2":
+        # The same: the learned advantage (internal scale) set on a fresh model.
+        fresh.advantage_[:] = m.advantage_  # type: ignore[attr-defined]
+        assert m.predict(q) == fresh.predict(q)
     elif kind == "trueskill":
         # Two unknowns differ only by the learned advantage (its mean and variance).
         fresh.advantage_[:] = m.advantage_  # type: ignore[attr-defined]

@@ -174,6 +174,14 @@ def test_non_finite_parameters_are_refused() -> None:
     assert decode_checkpoint(_with(inf_time, last_s=never), 100, 3600).state.kind == "glicko2"
 
 
+def test_a_non_finite_learned_advantage_is_refused() -> None:
+    # Glicko-2's learned first-side advantage is one number, checked as the rows are.
+    ck = _good("glicko2")
+    assert ck.state.arrays["advantage"].shape == (1,)
+    _refused(_with(ck, advantage=np.array([np.inf])), "'advantage' holds 1 non-finite")
+    _refused(_with(ck, advantage=np.array([np.nan])), "'advantage' holds 1 non-finite")
+
+
 def test_nan_or_infinity_in_settings_is_refused() -> None:
     blob = encode_checkpoint(_good())
     meta = _meta_of(blob)

@@ -10,7 +10,10 @@ Squares are written as products (``x * x``), never ``x ** 2``: Python turns a
 float power into a call of ``pow`` while numba multiplies, and the two paths
 must not differ in the last bit.
 
-``prm`` holds the settings: ``[mu0, phi0, tau, tolerance, period_s]``.
+``prm`` holds the settings: ``[mu0, phi0, tau, tolerance, period_s, adv_step]``
+(``adv_step``: the first-side advantage's step per unit of surprise, internal
+scale). ``adv`` holds the learned first-side advantage ``h`` (internal scale, one
+number): the first side is rated as if its mean ``mu`` were ``h`` higher.
 """
 
 from __future__ import annotations
@@ -117,11 +120,18 @@ def _p_win(mu_a: float, phi_a: float, mu_b: float, phi_b: float) -> float:
 @register_jitable
 def _period(
     lo, hi, first, n1, second, n2, score, time_s, loc1, loc2, uniq, n_uniq,
-    mu, phi, sigma, last_s, prm, p_out, inv_v, total, t_first, t_last,
+    mu, phi, sigma, last_s, prm, adv, p_out, inv_v, total, t_first, t_last,
 ):  # fmt: skip
     """Events ``lo..hi`` as one rating period; ``loc1``/``loc2`` give each member's
-    place in ``uniq`` (the period's distinct rows, ``n_uniq`` of them)."""
+    place in ``uniq`` (the period's distinct rows, ``n_uniq`` of them).
+
+    The first-side advantage ``h = adv[0]`` stays fixed during the period; after
+    it, ``h`` moves by ``adv_step`` times the summed surprise ``score - E`` of the
+    first sides (``E``: the first side's expected score in its update).
+    """
     mu0, phi0, tau, tol, period_s = prm[0], prm[1], prm[2], prm[3], prm[4]
+    h = adv[0]
+    surprise = 0.0
     for u in range(n_uniq):
         inv_v[u] = 0.0
         total[u] = 0.0
@@ -154,18 +164,21 @@ def _period(
     for e in range(lo, hi):
         ma, pa = _side(first, e, n1[e], mu, phi, mu0, phi0)
         mb, pb = _side(second, e, n2[e], mu, phi, mu0, phi0)
-        p_out[e] = _p_win(ma, pa, mb, pb)
+        p_out[e] = _p_win(ma + h, pa, mb, pb)
         s = score[e]
         for side in range(2):
             # The expectation is the side's, as in the prediction: every member
             # shares the result of the team (one entity a side: the published step 3).
+            # The first side plays as if ``h`` higher: its members face mu_b - h,
+            # the second side's members face mu_a + h.
             if side == 0:
                 gj = g(pb)
-                ex = logistic(gj * (ma - mb))
+                ex = logistic(gj * (ma + h - mb))
                 y, loc, n = s, loc1, n1[e]
+                surprise += s - ex
             else:
                 gj = g(pa)
-                ex = logistic(gj * (mb - ma))
+                ex = logistic(gj * (mb - (ma + h)))
                 y, loc, n = 1.0 - s, loc2, n2[e]
             for j in range(n):
                 u = loc[e, j]
@@ -177,6 +190,7 @@ def _period(
         t = t_last[u]
         if not math.isnan(t) and (math.isnan(last_s[r]) or t > last_s[r]):
             last_s[r] = t
+    adv[0] = h + prm[5] * surprise
 
 
 @register_jitable
@@ -217,7 +231,8 @@ def count(first, n1, second, n2, counts):  # fmt: skip
 
 
 def learn_seq(
-    first, n1, second, n2, score, time_s, mu, phi, sigma, last_s, counts, mark, prm, p_out,
+    first, n1, second, n2, score, time_s, mu, phi, sigma, last_s, counts, mark, prm, adv,
+    p_out,
 ):  # fmt: skip
     """Each event its own rating period, in order; P(first wins) before each into ``p_out``."""
     n, k1, k2 = first.shape[0], first.shape[1], second.shape[1]
@@ -227,13 +242,14 @@ def learn_seq(
     acc = np.zeros((4, k1 + k2))
     for e in range(n):
         m = places(first, n1, second, n2, e, e + 1, mark, uniq, loc1, loc2)
-        _period(e, e + 1, first, n1, second, n2, score, time_s, loc1, loc2, uniq, m,
-                mu, phi, sigma, last_s, prm, p_out, acc[0], acc[1], acc[2], acc[3])  # fmt: skip
+        _period(e, e + 1, first, n1, second, n2, score, time_s, loc1, loc2, uniq, m, mu,
+                phi, sigma, last_s, prm, adv, p_out, acc[0], acc[1], acc[2], acc[3])  # fmt: skip
     count(first, n1, second, n2, counts)
 
 
 def learn_period(
-    first, n1, second, n2, score, time_s, mu, phi, sigma, last_s, counts, mark, prm, p_out,
+    first, n1, second, n2, score, time_s, mu, phi, sigma, last_s, counts, mark, prm, adv,
+    p_out,
 ):  # fmt: skip
     """All events as one rating period (predictions from the period-start state)."""
     n, k1, k2 = first.shape[0], first.shape[1], second.shape[1]
@@ -243,16 +259,17 @@ def learn_period(
     m = places(first, n1, second, n2, 0, n, mark, uniq, loc1, loc2)
     acc = np.zeros((4, max(m, 1)))
     _period(0, n, first, n1, second, n2, score, time_s, loc1, loc2, uniq, m,
-            mu, phi, sigma, last_s, prm, p_out, acc[0], acc[1], acc[2], acc[3])  # fmt: skip
+            mu, phi, sigma, last_s, prm, adv, p_out, acc[0], acc[1], acc[2], acc[3])  # fmt: skip
     count(first, n1, second, n2, counts)
 
 
-def predict(first, n1, second, n2, mu, phi, prm, p_out):
+def predict(first, n1, second, n2, mu, phi, prm, adv, p_out):
     """P(first wins) of every row from the current state; changes nothing."""
+    h = adv[0]
     for e in range(first.shape[0]):
         ma, pa = _side(first, e, n1[e], mu, phi, prm[0], prm[1])
         mb, pb = _side(second, e, n2[e], mu, phi, prm[0], prm[1])
-        p_out[e] = _p_win(ma, pa, mb, pb)
+        p_out[e] = _p_win(ma + h, pa, mb, pb)
 
 
 learn_seq_compiled = njit(cache=True)(learn_seq)
