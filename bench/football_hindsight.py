@@ -14,7 +14,8 @@ Families:
   a starting rating for newcomers (promoted sides) and a forecast scale
   (``p = sigmoid(scale * (r_home - r_away + home))``, the update uses the unscaled
   logit), tuned by Nelder-Mead from a grid of starts;
-- ``bayes_strength`` (the family of the served default's members: season pull,
+- ``trueskill`` and ``glicko2`` (with their learned first-side advantage),
+  ``bayes_strength`` (the family of the served default's members: season pull,
   drifting first-side advantage, newcomer offset), ``bradley_terry`` and
   ``blade_chest`` of this project, their step sizes and uncertainty settings tuned
   the same way through the model API (each trial replays the whole file with
@@ -163,10 +164,15 @@ def tune_model(
     if kind == "bayes_strength":
         names = ["prior_var", "noise_per_day", "advantage_var", "period_var", "newcomer_var"]
         names += ["shared_noise_per_day", "period_pull"]
+    elif kind == "trueskill":
+        names = ["sigma", "beta", "tau", "advantage_sigma", "advantage_tau", "draw_probability"]
+    elif kind == "glicko2":
+        names = ["initial_deviation", "initial_volatility", "tau", "advantage_k"]
+        names = [k for k in names if k in base]
     else:
         names = ["lr_strength", "prior_var", "noise_per_day", "l2", "forget_per_day"]
         names += ["accum_init"] + (["lr", "init_scale"] if base["dims"] > 0 else [])
-    fractions = {"period_pull"}
+    fractions = {"period_pull", "draw_probability"}
     # zero settings start small: forgetting, noise and pulls at about 1e-5 (a pull at 0.1)
     x0 = np.array(
         [
@@ -220,6 +226,8 @@ def main() -> None:
         # the settings of the member "seasonal" of the served default's mixture
         ("bayes_strength", seasonal),
         ("bayes_strength", {**member, **seasonal}),
+        ("trueskill", {}),
+        ("glicko2", {}),
         ("bradley_terry", {"backend": "numba"}),
         ("blade_chest", {"backend": "numba"}),
         ("blade_chest", {"backend": "numba", "dims": 2}),

@@ -379,13 +379,18 @@ class Recalibrated(Model):
 
     def _load_arrays(self, arrays: dict[str, np.ndarray]) -> None:
         version = int(arrays["recal_base_version"][0])
-        if version != self.model_.state_version:
-            raise StateVersionError(
-                f"saved {self.base!r} state inside 'recalibrated' has version {version}; "
-                f"this code reads version {self.model_.state_version}"
-            )
         base = {k[len(_BASE_PREFIX) :]: v for k, v in arrays.items() if k.startswith(_BASE_PREFIX)}
-        self.model_._load_arrays(base)
+        if version == self.model_.state_version:
+            self.model_._load_arrays(base)
+        else:  # an older base state loads as it would alone: upgraded, as it was trained
+            state = ModelState(self.model_.kind, version, self.model_.get_params(), base)
+            try:
+                self.model_ = type(self.model_).from_state(state)
+            except StateVersionError as exc:
+                raise StateVersionError(
+                    f"saved {self.base!r} state inside 'recalibrated' has version {version}; "
+                    f"this code reads version {self.model_.state_version}"
+                ) from exc
         self.recalibrator_ = OnlineRecalibrator.from_dict(
             {
                 "method": self.method,

@@ -173,3 +173,37 @@ def test_recalibration_parameters_are_published_as_gauges() -> None:
     labels = {"space": "duel", "model": "elo"}
     assert reg.get_sample_value("streamrate_recalibration_slope", labels) == rc.slope
     assert reg.get_sample_value("streamrate_recalibration_intercept", labels) == rc.intercept
+
+
+# Bases whose saved state gained a version this round, with the settings that make
+# them the former model, and the arrays the former version did not have.
+OLDER_BASES = [
+    ("glicko2", 1, {"advantage_k": 0.0}, ("advantage",)),
+    ("trueskill", 1, {"advantage_sigma": 0.0}, ("advantage",)),
+    ("head_to_head", 1, {"advantage": False}, ("first_score",)),
+    ("blade_chest", 3, {"dims": 4}, ()),
+]
+
+
+@pytest.mark.parametrize(("base", "version", "former", "new_arrays"), OLDER_BASES)
+def test_an_older_base_state_inside_recalibrated_loads_as_it_was_trained(
+    base: str, version: int, former: dict[str, object], new_arrays: tuple[str, ...]
+) -> None:
+    # A checkpoint written before the base's state version went up: the base state
+    # is upgraded as it would be alone, and the model predicts exactly as before.
+    events = _world(300, seed=5)
+    old = build_model("recalibrated", base=base, base_settings=former)
+    old.learn_many(events[:200])
+    st = old.to_state()
+    kept = {k: v for k, v in st.arrays.items() if k.removeprefix("base.") not in new_arrays}
+    assert len(kept) == len(st.arrays) - len(new_arrays)  # the base's arrays are prefixed
+    kept["recal_base_version"] = np.array([version], dtype=np.int64)
+    settings = {k: v for k, v in former.items() if k == "dims"}  # what the former code saved
+    params = {**st.params, "base_settings": settings}
+    back = model_from_state(type(st)(st.kind, st.version, params, kept))
+    a, b = old.learn_many(events[200:]), back.learn_many(events[200:])
+    np.testing.assert_array_equal(a.p_win, b.p_win)
+    # A version this code does not know is still refused, with the base named.
+    kept["recal_base_version"] = np.array([99], dtype=np.int64)
+    with pytest.raises(StateError, match="inside 'recalibrated' has version 99"):
+        model_from_state(type(st)(st.kind, st.version, params, kept))
