@@ -159,3 +159,13 @@ def test_the_applier_hands_chunks_to_observers_that_take_them() -> None:
         applier.notify(part, got)
     _same_state(single.monitor, chunked.monitor)
     assert list(chunked.monitor.models_) == ["served", "raw"]
+
+
+def test_probabilities_and_outcomes_of_other_lengths_are_refused() -> None:
+    mon = QualityMonitor(MonitorSettings(recent_n=3, reference_n=3))
+    try:
+        mon.add_chunk([{}, {}], [1.0, 0.0], {"served": [0.5]})
+    except ValueError as exc:
+        assert "a chunk of 2 contexts needs as many outcomes and forecasts" in str(exc)
+    else:
+        raise AssertionError("a short list of probabilities was accepted")

@@ -208,6 +208,8 @@ class RollingQuality:
 def _first_outside_unit(ps: list[float], ys: list[float]) -> int | None:
     """The position of the first event whose probability or outcome is outside [0, 1]
     (NaN included), or None. C-level passes over the lists; the loop only on a hit."""
+    if len(ps) != len(ys):
+        raise ValueError(f"{len(ps)} probabilities for {len(ys)} outcomes")
     if not ps or (
         min(ps) >= 0.0
         and max(ps) <= 1.0
@@ -446,7 +448,10 @@ class QualityMonitor:
         :meth:`add` called event by event, each event for every model of
         ``predictions`` in its order. Returns (position, model, direction) of every
         firing, in the order those calls would have reported them."""
-        if not contexts:
+        n = len(contexts)
+        if len(y) != n or any(len(v) != n for v in predictions.values()):
+            raise ValueError(f"a chunk of {n} contexts needs as many outcomes and forecasts")
+        if not n:
             return []
         models = list(predictions)
         labels: dict[str, list[str | None]] | None = None
