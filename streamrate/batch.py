@@ -43,7 +43,7 @@ from operator import attrgetter, itemgetter
 import numpy as np
 
 from streamrate.encode import Encoded, EntityTable, FeatureHasher, RunningScale
-from streamrate.events import Matchup
+from streamrate.events import MatchEvent, Matchup
 
 _NAN = math.nan
 _FIRST, _SECOND = attrgetter("first"), attrgetter("second")
@@ -250,9 +250,14 @@ def encode_events(
             map(datetime.timestamp, map(_FINISHED, events)), dtype=np.float64, count=n
         )
     except AttributeError:
-        score = np.array([getattr(e, "score", _NAN) for e in events], dtype=np.float64)
-        times = [getattr(e, "finished_at", None) for e in events]
-        time_s = np.array([_NAN if t is None else t.timestamp() for t in times], dtype=np.float64)
+        if not any(isinstance(e, MatchEvent) for e in events):  # queries only (a lobby)
+            score, time_s = np.full(n, _NAN), np.full(n, _NAN)
+        else:
+            score = np.array([getattr(e, "score", _NAN) for e in events], dtype=np.float64)
+            times = [getattr(e, "finished_at", None) for e in events]
+            time_s = np.array(
+                [_NAN if t is None else t.timestamp() for t in times], dtype=np.float64
+            )
     if context is not None:
         ctx_idx, ctx_val = _sparse([e.context for e in events], context, context_scale, add)
     else:

@@ -315,6 +315,13 @@ class Recalibrated(Model):
     def predict(self, matchup: Matchup) -> Prediction:
         return self.recalibrator_.apply(self.model_.predict(matchup))
 
+    def predict_many(self, matchups: Sequence[Matchup]) -> Predictions:
+        """The base model's predictions of every pairing at once, each corrected."""
+        raw = self.model_.predict_many(matchups)
+        apply = self.recalibrator_.apply
+        pairs = zip(raw.p_win.tolist(), raw.p_draw.tolist(), strict=True)
+        return Predictions.from_list([apply(Prediction(pw, pd)) for pw, pd in pairs])
+
     def learn(self, event: MatchEvent) -> Prediction:
         got = self.learn_scored([event]).served
         return Prediction(float(got.p_win[0]), float(got.p_draw[0]))

@@ -285,3 +285,24 @@ def test_empty_batches_are_harmless(kind: str, settings_: dict[str, Any]) -> Non
     before = m._state_arrays()
     assert len(m.learn_batch([]).p_win) == 0 and len(m.learn_many([]).p_win) == 0
     assert arrays_equal(before, m._state_arrays())
+
+
+@pytest.mark.parametrize("model_id", IDS)
+@_FAST
+@given(qs=st.lists(matchups, min_size=0, max_size=12), solo=st.booleans())
+def test_many_pairings_at_once_are_each_pairing_alone(
+    model_id: str, qs: list[Matchup], solo: bool
+) -> None:
+    # predict_many (a lobby's matrix) against predict one pairing at a time; one
+    # against one takes the array paths. 1e-12: numpy's exp and sqrt may differ
+    # from math's in the last bit.
+    m = _TRAINED[model_id]
+    if solo:
+        ctx = {"map": "glasswood", "tier": 2.0}
+        qs = [Matchup(first=q.first[:1], second=q.second[:1], context=ctx) for q in qs]
+    before = {k: v.copy() for k, v in m._state_arrays().items()}
+    got = m.predict_many(qs)
+    one = [m.predict(q) for q in qs]
+    np.testing.assert_allclose(got.p_win, [p.p_win for p in one], rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(got.p_draw, [p.p_draw for p in one], rtol=1e-12, atol=1e-15)
+    assert arrays_equal(before, m._state_arrays())

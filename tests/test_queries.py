@@ -15,7 +15,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from streamrate.consumer import LiveModel
-from streamrate.models.base import Prediction
+from streamrate.events import Matchup
+from streamrate.models.base import Prediction, Predictions
 from streamrate.models.registry import build_model
 from streamrate.queries import (
     Answerer,
@@ -134,6 +135,9 @@ class _LoopOnly:
     def __init__(self, model: Any) -> None:
         self.predict = model.predict
 
+    def predict_many(self, matchups: Sequence[Matchup]) -> Predictions:
+        return Predictions.from_list([self.predict(m) for m in matchups])
+
 
 def test_encoded_matrix_equals_the_per_pair_loop() -> None:
     live = _live("blade_chest", context="stacked")
@@ -226,3 +230,26 @@ def test_large_lobby_uses_the_heuristic_and_reports_a_bound() -> None:
     assert rep["ok"] and rep["method"] == "heuristic"
     assert rep["surrogate_gap"] <= rep["gap_bound"] + 1e-9
     assert sorted(rep["split"]["first"] + rep["split"]["second"]) == ids
+
+
+@pytest.mark.parametrize("kind", ["recalibrated", "elo", "head_to_head"])
+def test_a_lobby_matrix_is_each_pairings_own_prediction(kind: str) -> None:
+    # The served default (a recalibrated mixture) and other models without an encoded
+    # path answer a lobby's pairings all at once: each cell is still that pairing's
+    # own prediction, under the lobby's context.
+    live = _live(kind)
+    ids = [*sorted({e for ev in WORLD for e in ev.entities()})[:9], "newcomer-q"]
+    ctx = {"map": "saltflats"}
+    _, rep = _ask(
+        Answerer(live, 4, 256),
+        {"kind": "lobby", "id": "L", "reply_to": R, "entities": ids, "team_sizes": [5, 5],
+         "context": ctx},
+    )  # fmt: skip
+    assert rep["ok"], rep
+    m = np.array(rep["matrix"])
+    for i, a in enumerate(ids):
+        for j, b in enumerate(ids):
+            if i != j:
+                q = Matchup(first=(a,), second=(b,), context=ctx)
+                want = live.model.predict(q).p_win
+                assert m[i, j] == pytest.approx(round(want, 6), abs=1e-12)

@@ -106,6 +106,11 @@ class Model(ABC):
     def learn(self, event: MatchEvent) -> Prediction:
         """Predict, then learn from the outcome; return the prediction made first."""
 
+    def predict_many(self, matchups: Sequence[Matchup]) -> Predictions:
+        """:meth:`predict` of each pairing (a lobby's matrix); changes nothing. Models
+        that can answer many pairings at once override it with the same numbers."""
+        return Predictions.from_list([self.predict(m) for m in matchups])
+
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
         """Sequential path over several events: identical to ``learn`` in a loop."""
         return Predictions.from_list([self.learn(e) for e in events])

@@ -256,6 +256,32 @@ class BayesStrength(DiagonalRows):
         shared = (float(adv[0]), float(adv[1]), float(newc[0]), float(newc[1]))
         return Prediction(self._forecast(matchup, shared))
 
+    def predict_many(self, matchups: Sequence[Matchup]) -> Predictions:
+        """:meth:`predict` of each pairing; one against one as arrays (the same sums in
+        the same order; the exponential and square root of numpy may differ from
+        ``math``'s in the last bit), teams one by one."""
+        if not matchups or any(len(m.first) != 1 or len(m.second) != 1 for m in matchups):
+            return super().predict_many(matchups)
+        get = self.entities_.get
+        r1 = np.array([get(m.first[0]) for m in matchups], dtype=np.int64)
+        r2 = np.array([get(m.second[0]) for m in matchups], dtype=np.int64)
+        k1, k2 = r1 >= 0, r2 >= 0
+        mu1 = np.where(k1, self.mu_[np.maximum(r1, 0)], 0.0)
+        mu2 = np.where(k2, self.mu_[np.maximum(r2, 0)], 0.0)
+        v1 = np.where(k1, self.var_[np.maximum(r1, 0)], self.prior_var)
+        v2 = np.where(k2, self.var_[np.maximum(r2, 0)], self.prior_var)
+        m = float(self.adv_[0]) + 1.0 * mu1 + -1.0 * mu2
+        big_v = float(self.adv_[1]) + 1.0 * v1 + 1.0 * v2
+        nm = self.newcomer_matches
+        if nm:
+            new1 = ~k1 | (self.age_[np.maximum(r1, 0)] < nm)
+            new2 = ~k2 | (self.age_[np.maximum(r2, 0)] < nm)
+            xb = new1.astype(np.float64) - new2.astype(np.float64)
+            m = m + xb * float(self.newcomer_[0])
+            big_v = big_v + xb * xb * float(self.newcomer_[1])
+        p = 1.0 / (1.0 + np.exp(-m / np.sqrt(1.0 + PROBIT * big_v)))
+        return Predictions(p, np.zeros_like(p))
+
     def learn_many(self, events: Sequence[MatchEvent]) -> Predictions:
         return self.learn_encoded(events, encode_events(events, self.entities_))
 

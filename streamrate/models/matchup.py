@@ -560,6 +560,12 @@ class MatchupModel(CopyOnWriteRows):
         p = self.predict_encoded(self.encode([matchup], add=False))
         return Prediction(float(p.p_win[0]), float(p.p_draw[0]))
 
+    def predict_many(self, matchups: Sequence[Matchup]) -> Predictions:
+        """:meth:`predict` of each pairing, as one encoded batch (the same kernel)."""
+        if not matchups:
+            return Predictions(np.zeros(0), np.zeros(0))
+        return self.predict_encoded(self.encode(matchups, add=False))
+
     def learn(self, event: MatchEvent) -> Prediction:
         p = self.learn_encoded(self.encode([event]))
         return Prediction(float(p.p_win[0]), float(p.p_draw[0]))

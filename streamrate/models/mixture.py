@@ -167,6 +167,18 @@ class Mixture(Model):
             p_draw += wi * pr.p_draw
         return Prediction(p_win, p_draw)
 
+    def predict_many(self, matchups: Sequence[Matchup]) -> Predictions:
+        """:meth:`predict` of each pairing: every member's at once, mixed with the same
+        arithmetic element by element."""
+        w = [float(x) for x in self.weights()]
+        p_win, p_draw = np.zeros(len(matchups)), np.zeros(len(matchups))
+        for wi, m in zip(w, self.models_, strict=True):
+            pr = m.predict_many(matchups)
+            e = np.minimum(np.maximum(pr.p_win + 0.5 * pr.p_draw, CLIP), 1.0 - CLIP)
+            p_win += wi * e - wi * 0.5 * pr.p_draw
+            p_draw += wi * pr.p_draw
+        return Predictions(p_win, p_draw)
+
     def _mix(
         self, preds: list[Predictions], events: Sequence[MatchEvent], batch: bool
     ) -> Predictions:

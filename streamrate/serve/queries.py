@@ -184,12 +184,12 @@ def fill_rows(
     if hasattr(model, "encode") and hasattr(model, "predict_encoded"):
         _fill_rows_encoded(model, ids, context, m, lo, hi)
         return
-    predict = model.predict
-    for i in range(lo, hi):
-        a = (ids[i],)
-        for j in range(n):
-            if i != j:
-                m[i, j] = predict(_matchup(a, (ids[j],), context)).p_win
+    # Every pairing of the rows in one call: a model made of models (the served
+    # default) answers them member by member as arrays, not pair by pair.
+    at = [(i, j) for i in range(lo, hi) for j in range(n) if i != j]
+    got = model.predict_many([_matchup((ids[i],), (ids[j],), context) for i, j in at])
+    iu, ju = zip(*at, strict=True)
+    m[list(iu), list(ju)] = got.p_win
 
 
 def _fill_rows_encoded(
