@@ -191,7 +191,10 @@ class SpaceSettings(BaseModel):
     dedupe_keep_ids: int = Field(200_000, ge=0)
     dedupe_window_s: float = Field(7 * 86400.0, ge=0)
     retention_s: float | None = Field(None, gt=0)
-    lock_chunk: int = Field(64, ge=1)
+    # Events applied per hold of the model lock. 256 rather than 64: with the served
+    # default, 19% more events/s and shorter query round trips in the same process
+    # (p50 1.5 -> 1.2 ms), the lock held about 1.3 ms at a time (README, Speed and size).
+    lock_chunk: int = Field(256, ge=1)
     # An event may finish at most this long after its entry reached the stream
     # (the stream id's clock); later, or before 2000, it is a dead letter.
     future_limit_s: float = Field(86_400.0, ge=0)
