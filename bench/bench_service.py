@@ -2,6 +2,7 @@
 
     python bench/bench_service.py                 # throughput, query latency, lobby
     python bench/bench_service.py --memory        # also: one million entities at d=16
+    python bench/bench_service.py --model default --lock-chunk 64   # the served default
 
 Starts its own ``redis-server`` on a free loopback port in a temporary directory
 (no persistence) and stops it by its PID. Every number is reported next to a
@@ -127,8 +128,11 @@ def _observers() -> list[Any]:
 
 
 WRITER_MODEL: tuple[str, dict[str, Any]] = ("blade_chest", MODEL_SETTINGS)
-"""The model of :func:`make_writer`: blade-chest d=16 (the aim's setting) unless a
-bench sets another (``bench_breakdown.py --model default``: the served default)."""
+"""The model of :func:`make_writer` and of the served queries: blade-chest d=16 (the
+aim's setting) unless ``--model default`` (the served default) is given."""
+
+LOCK_CHUNK: int | None = None
+"""``--lock-chunk``: events applied per hold of the model lock (None: the default)."""
 
 
 def make_writer(r: redis.Redis, group: str, batch: int, ckpt_dir: str) -> Consumer:
@@ -139,6 +143,7 @@ def make_writer(r: redis.Redis, group: str, batch: int, ckpt_dir: str) -> Consum
     space = SpaceSettings(
         name="duel", model=WRITER_MODEL[0], model_settings=WRITER_MODEL[1], group=group,
         batch_count=batch, block_ms=1, checkpoint_every_events=10_000, checkpoint_every_s=5.0,
+        **({"lock_chunk": LOCK_CHUNK} if LOCK_CHUNK else {}),
     )  # fmt: skip
     keys = Settings(spaces=(space,)).keys(space)
     # Renewed every second as in the service (here by the writer's own check before
@@ -182,9 +187,11 @@ def query_latency(
     cfg.write_text(
         f'[redis]\nurl = "redis://127.0.0.1:{port}/0"\n[metrics]\nenabled = false\n'
         f'[checkpoint]\ndir = "{tmp / "ck"}"\n'
-        '[[spaces]]\nname = "duel"\nmodel = "blade_chest"\ngroup = "served"\n'
+        f'[[spaces]]\nname = "duel"\nmodel = "{WRITER_MODEL[0]}"\ngroup = "served"\n'
         "batch_count = 200\ncheckpoint_every_events = 20000\n"
-        "[spaces.model_settings]\ndims = 16\n"
+        + (f"lock_chunk = {LOCK_CHUNK}\n" if LOCK_CHUNK else "")
+        + "[spaces.model_settings]\n"
+        + "".join(f"{k} = {v!r}\n" for k, v in WRITER_MODEL[1].items())
     )
     log = tmp / "serve.log"
     with open(log, "wb") as fh:
@@ -262,7 +269,7 @@ def query_latency(
 
 
 def lobby_in_process(entities: int) -> None:
-    model = build_model("blade_chest", **MODEL_SETTINGS)
+    model = build_model(WRITER_MODEL[0], **WRITER_MODEL[1])
     from streamrate.events import parse_event
 
     model.learn_many([parse_event(x) for x in event_lines(50_000, entities, 7)])
@@ -349,15 +356,28 @@ def main() -> None:
         "--gc", choices=("tuned", "default"), default="tuned",
         help="the garbage collector as the service sets it at start (tuned) or Python's default",
     )  # fmt: skip
+    ap.add_argument(
+        "--model", choices=("blade_chest", "default"), default="blade_chest",
+        help="the writer's and the served queries' model: blade-chest d=16 (the aim's "
+        "setting) or the served default (recalibrated mixture)",
+    )  # fmt: skip
+    ap.add_argument(
+        "--lock-chunk", type=int, help="events applied per hold of the model lock "
+        "(default: the service's)",
+    )  # fmt: skip
     args = ap.parse_args()
-    global BACKGROUND
+    global BACKGROUND, WRITER_MODEL, LOCK_CHUNK
     if args.checkpoint:
         BACKGROUND = args.checkpoint == "background"
+    if args.model == "default":
+        WRITER_MODEL = ("recalibrated", {})
+    LOCK_CHUNK = args.lock_chunk
     print(
         f"CPUs available to this process: {sorted(os.sched_getaffinity(0))} of {os.cpu_count()} "
         "(redis-server, service and bench share them; no pinning); checkpoints "
         + ("in the background" if BACKGROUND else "inline")
-        + f"; garbage collector {args.gc}"
+        + f"; garbage collector {args.gc}; model {args.model}"
+        + (f"; lock_chunk {LOCK_CHUNK}" if LOCK_CHUNK else "")
     )
     with tempfile.TemporaryDirectory() as d:
         tmp = Path(d)
