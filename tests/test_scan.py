@@ -25,9 +25,11 @@ from hypothesis import strategies as st
 from streamrate.errors import EventError
 from streamrate.events import (
     MAX_CATEGORY_CHARS,
+    MAX_CONTEXT_FIELDS,
     MAX_EVENT_BYTES,
     MAX_ID_CHARS,
     MAX_NAME_CHARS,
+    MAX_SIDE_SIZE,
     MatchEvent,
     _canonical_values,
     event_digest,
@@ -113,7 +115,8 @@ def common(draw: st.DrawFn) -> bytes:
 def mutated(draw: st.DrawFn) -> bytes:
     """A common payload with one byte changed, inserted or removed."""
     raw = draw(common())
-    at = draw(st.integers(0, len(raw)))
+    marks = [k for k, c in enumerate(raw) if c in b'"{}[],:.-+T']  # often at the structure
+    at = draw(st.one_of(st.integers(0, len(raw)), st.sampled_from(marks)))
     byte = draw(st.one_of(st.sampled_from(b'0159.-+:eE"\\,{}[] \t\x00\x1fZzTt\x7f\x80\xff'),
                           st.integers(0, 255)))  # fmt: skip
     how = draw(st.integers(0, 2))
@@ -249,6 +252,14 @@ def test_a_digest_ending_in_zero_bytes_keeps_them() -> None:
 
 
 # -- hand-written edges ------------------------------------------------------------------
+def _fields(n: int) -> bytes:
+    return ", ".join(f'"f{k}": "v{k}"' for k in range(n)).encode()
+
+
+def _side(n: int) -> bytes:
+    return json.dumps([f"p{k}" for k in range(n)]).encode()
+
+
 def _one(raw: bytes) -> bool:
     return bool(_check([raw]).sure[0])
 
@@ -295,6 +306,13 @@ def _one(raw: bytes) -> bool:
         (b'"duel"', b"2"),  # a number in the context
         (b'"duel"', b"null"),
         (b'"mode"', b'"1mode"'),
+        (b'"mode"', b'"' + b"m" * (MAX_NAME_CHARS + 1) + b'"'),  # too long
+        (b"saltflats", b"s" * (MAX_CATEGORY_CHARS + 1)),
+        (b"kelvash", b"k" * (MAX_ID_CHARS + 1)),
+        (b"m-1", b"m" * (MAX_ID_CHARS + 1)),
+        (b'"duel"', b'x"duel"'),  # a value that is not a string
+        (b'"map": "saltflats"', _fields(MAX_CONTEXT_FIELDS + 1)),
+        (b'["morvenn"]', _side(MAX_SIDE_SIZE + 1)),
         (b'"score": 1', b'"score": 1, "margin": 1'),
         (b'"score": 1', b'"score": 1, "features": {}'),
         (b'"score": 1', b'"score": 1, "extra": 1'),
@@ -330,6 +348,12 @@ def test_an_unusual_spelling_is_not_sure(old: bytes, new: bytes) -> None:
         (b"}}", b"}} \r\n\t"),
         (b'["morvenn"]', b'[ "tuvrenn" ,"morvenn","kelvash2"\n]'),
         (b"kelvash", b"<{[$kel|vash^]}>"),
+        (b'"mode"', b'"' + b"m" * MAX_NAME_CHARS + b'"'),  # as long as allowed
+        (b"saltflats", b"s" * MAX_CATEGORY_CHARS),
+        (b"kelvash", b"k" * MAX_ID_CHARS),
+        (b"m-1", b"m" * MAX_ID_CHARS),
+        (b'"map": "saltflats", "mode": "duel"', _fields(MAX_CONTEXT_FIELDS)),
+        (b'["morvenn"]', _side(MAX_SIDE_SIZE)),
     ],
 )
 def test_a_common_spelling_is_sure(old: bytes, new: bytes) -> None:
