@@ -46,7 +46,7 @@ from streamrate.events import (
     MAX_NAME_CHARS,
     MAX_SIDE_SIZE,
 )
-from streamrate.models._jit import kernel, leaf
+from streamrate.models._jit import leaf
 
 
 @dataclass(frozen=True)
@@ -181,9 +181,22 @@ def _blake2b(data, start, length, size, h, m, out, o):  # type: ignore[no-untype
 
 # -- the scan -----------------------------------------------------------------------
 _QUOTE, _COLON, _COMMA, _BACKSLASH = 34, 58, 44, 92
+_KIND = np.full(256, 2, dtype=np.uint8)
+"""Per byte in a string: 0 printable ASCII but space, 1 the closing quote, 2 refused."""
+_KIND[0x21:0x7F] = 0
+_KIND[_QUOTE] = 1
+_KIND[_BACKSLASH] = 2
 _LBRACE, _RBRACE, _LBRACKET, _RBRACKET = 123, 125, 91, 93
-_KEYS = np.frombuffer(b"match_idfinished_atfirstsecondscorecontext", dtype=np.uint8)
-_KEY_AT = np.array([0, 8, 19, 24, 30, 35, 42], dtype=np.int64)
+
+
+def _word(text: bytes) -> np.uint64:
+    """Up to 8 bytes as the kernel reads them: little-endian, zeros after."""
+    return np.uint64(int.from_bytes(text, "little"))
+
+
+_K_MATCH_ID, _K_FINISHED, _K_CONTEXT = _word(b"match_id"), _word(b"finished"), _word(b"context")
+_K_FIRST, _K_SECOND, _K_SCORE = _word(b"first"), _word(b"second"), _word(b"score")
+_LOW5, _LOW6, _LOW7 = np.uint64(2**40 - 1), np.uint64(2**48 - 1), np.uint64(2**56 - 1)
 _MATCH_ID, _FINISHED_AT, _FIRST, _SECOND, _SCORE, _CONTEXT = range(6)
 _REQUIRED = 0b11111
 _DAYS = np.array([31, 28, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31], dtype=np.int64)
@@ -221,26 +234,20 @@ def _string(buf, p, e):  # type: ignore[no-untyped-def]
     does not end or holds anything but printable ASCII other than space and backslash."""
     u, end = np.uint64(p), np.uint64(e)
     while u < end:
-        c = buf[u]
-        if c == _QUOTE:
-            return np.int64(u)
-        if c < 0x21 or c > 0x7E or c == _BACKSLASH:
-            return -1
+        kind = _KIND[buf[u]]
+        if kind:
+            return np.int64(u) if kind == 1 else -1
         u += _U1
     return -1
 
 
 @leaf
-def _number(buf, p, n):  # type: ignore[no-untyped-def]
-    """The ``n`` decimal digits at ``p`` as a number, or -1."""
-    v = 0
-    u = np.uint64(p)  # unsigned: no negative-index wraparound
-    for k in range(np.uint64(n)):
-        c = buf[u + k]
-        if c < 48 or c > 57:
-            return -1
-        v = 10 * v + (c - 48)
-    return v
+def _two(buf, p):  # type: ignore[no-untyped-def]
+    """The two decimal digits at ``p`` as a number, or -1."""
+    a, b = buf[p], buf[p + 1]
+    if a < 48 or a > 57 or b < 48 or b > 57:
+        return -1
+    return 10 * (a - 48) + (b - 48)
 
 
 @leaf
@@ -264,8 +271,11 @@ def _time(buf, s, q, w):  # type: ignore[no-untyped-def]
         return False
     if buf[s + 13] != _COLON or buf[s + 16] != _COLON:
         return False
-    y, mo, d = _number(buf, s, 4), _number(buf, s + 5, 2), _number(buf, s + 8, 2)
-    hh, mi, ss = _number(buf, s + 11, 2), _number(buf, s + 14, 2), _number(buf, s + 17, 2)
+    century, y, mo, d = _two(buf, s), _two(buf, s + 2), _two(buf, s + 5), _two(buf, s + 8)
+    hh, mi, ss = _two(buf, s + 11), _two(buf, s + 14), _two(buf, s + 17)
+    if century < 0 or y < 0:
+        return False
+    y += 100 * century
     if y < 2000 or y > 2200 or mo < 1 or mo > 12 or hh < 0 or hh > 23:
         return False
     if mi < 0 or mi > 59 or ss < 0 or ss > 59:
@@ -300,7 +310,7 @@ def _time(buf, s, q, w):  # type: ignore[no-untyped-def]
     elif c == 43 or c == 45:  # + -
         if q - p != 6 or buf[p + 3] != _COLON:
             return False
-        oh, om = _number(buf, p + 1, 2), _number(buf, p + 4, 2)
+        oh, om = _two(buf, p + 1), _two(buf, p + 4)
         if oh < 0 or oh > 23 or om < 0 or om > 59:
             return False
         offset = (oh * 60 + om) * (1 if c == 43 else -1)
@@ -335,18 +345,25 @@ def _event(buf, p, e, w):  # type: ignore[no-untyped-def]
         q = _string(buf, p + 1, e)
         if q < 0:
             return False
-        key = -1
+        if p + 9 > e:  # no event has fewer than 8 bytes after a key's opening quote
+            return False
         n = q - p - 1
-        for k in range(6):  # the one key of this length and first letter, if any
-            at = _KEY_AT[k]
-            if _KEY_AT[k + 1] - at == n and _KEYS[at] == buf[p + 1]:
-                key = k
-                u, v = np.uint64(p + 1), np.uint64(at)
-                for j in range(np.uint64(n)):
-                    if buf[u + j] != _KEYS[v + j]:
-                        key = -1
-                        break
-                break
+        u = np.uint64(p + 1)
+        word = np.uint64(0)  # the key's first 8 bytes, little-endian
+        for j in range(_U8):
+            word |= np.uint64(buf[u + j]) << (_U8 * j)
+        key = -1
+        if n == 5:
+            low = word & _LOW5
+            key = _FIRST if low == _K_FIRST else (_SCORE if low == _K_SCORE else -1)
+        elif n == 6:
+            key = _SECOND if word & _LOW6 == _K_SECOND else -1
+        elif n == 7:
+            key = _CONTEXT if word & _LOW7 == _K_CONTEXT else -1
+        elif n == 8:
+            key = _MATCH_ID if word == _K_MATCH_ID else -1
+        elif n == 11 and word == _K_FINISHED and buf[p + 9] == 95:  # _
+            key = _FINISHED_AT if buf[p + 10] == 97 and buf[p + 11] == 116 else -1  # a t
         if key < 0 or (seen >> key) & 1:
             return False
         seen |= 1 << key
@@ -505,32 +522,24 @@ def _put(out, o, buf, s, n):  # type: ignore[no-untyped-def]
     return o + n
 
 
-@kernel
-def _scan(buf, lengths):  # type: ignore[no-untyped-def]
-    """Scan the payloads laid end to end in ``buf``; the columns of the sure ones,
-    their texts each ended by a newline, and how many there are."""
-    n = lengths.shape[0]
-    sure = np.zeros(n, dtype=np.bool_)
-    times = np.empty(n, dtype=np.float64)
-    scores = np.empty(n, dtype=np.float64)
-    sizes = np.empty((n, 2), dtype=np.int64)
-    digests = np.empty(8 * n, dtype=np.uint8)
-    text = np.empty(buf.shape[0] + 8 * n + 8, dtype=np.uint8)
-    canon = np.empty(_CANON, dtype=np.uint8)
-    w = np.zeros(_W_SIZE, dtype=np.int64)
-    h = np.empty(8, dtype=np.uint64)
-    m = np.empty(16, dtype=np.uint64)
-    count = 0
-    o = 0
-    end = 0
-    for i in range(n):
+@leaf
+def _scan(buf, lengths, sure, numbers, sizes, digests, text, canon, w, h, m):  # type: ignore[no-untyped-def]
+    """Scan the payloads laid end to end in ``buf`` (``lengths`` bytes each): mark the
+    sure ones in ``sure``; in order, their times and scores in ``numbers``, side sizes
+    in ``sizes``, digests in ``digests``, texts (each ended by a newline) in ``text``.
+    How many are sure, and the length of their texts. The rest is scratch: allocated
+    by the caller, which keeps numba's runtime (and its compile time) out of it."""
+    # Typed int64 rather than literal 0: a literal argument would compile the helpers
+    # once more for it (numba specialises on literals).
+    count = o = end = zero = np.int64(0)
+    for i in range(lengths.shape[0]):
         start = end
         end += lengths[i]
         if not _event(buf, start, end, w):
             continue
         k1, k2, nctx = w[_W_K], w[_W_K + 1], w[_W_NCTX]
         # The canonical text of event_digests: match id, time, sides, score, context.
-        c = _put(canon, 0, buf, w[_W_MID], w[_W_MID + 1])
+        c = _put(canon, zero, buf, w[_W_MID], w[_W_MID + 1])
         canon[c] = 0x1E
         c += 1
         whole = w[_W_US] // 1_000_000  # t = whole.fraction; repr(t) spells the same digits
@@ -568,7 +577,7 @@ def _scan(buf, lengths):  # type: ignore[no-untyped-def]
             canon[c] = 0x1D
             canon[c + 1] = 115  # s
             c = _put(canon, c + 2, buf, w[at + 2], w[at + 3])
-        _blake2b(canon, 0, c, 8, h, m, digests, 8 * count)
+        _blake2b(canon, zero, c, zero + 8, h, m, digests, 8 * count)
         # The texts: match id, ids, finished_at, context key; each ends with a newline.
         o = _put(text, o, buf, w[_W_MID], w[_W_MID + 1])
         text[o] = 10
@@ -586,25 +595,36 @@ def _scan(buf, lengths):  # type: ignore[no-untyped-def]
         text[o] = 10
         o += 1
         sure[i] = True
-        times[count] = w[_W_US] / 1e6
-        scores[count] = 0.5 * w[_W_SCORE]
-        sizes[count, 0] = k1
-        sizes[count, 1] = k2
+        numbers[0, count] = w[_W_US] / 1e6
+        numbers[1, count] = 0.5 * w[_W_SCORE]
+        sizes[0, count] = k1
+        sizes[1, count] = k2
         count += 1
-    return sure, times, scores, sizes, digests, text[:o], count
+    return count, o
 
 
 def scan_payloads(raws: Sequence[bytes]) -> Scanned:
     """The events of the payloads the compiled pass is sure of (see the module doc);
     the others (``~sure``) are for :func:`streamrate.decode.decode_events`."""
-    lengths = np.fromiter(map(len, raws), dtype=np.int64, count=len(raws))
-    buf = np.frombuffer(b"".join(raws), dtype=np.uint8)
-    sure, times, scores, sizes, digests, text, count = _scan(buf, lengths)
+    n = len(raws)
+    lengths = np.fromiter(map(len, raws), dtype=np.int64, count=n)
+    joined = b"".join(raws)
+    sure = np.zeros(n, dtype=np.bool_)
+    numbers = np.empty((2, n))
+    sizes = np.empty((2, n), dtype=np.int64)
+    digests = np.empty(8 * n, dtype=np.uint8)
+    text = np.empty(len(joined) + 8 * n + 8, dtype=np.uint8)  # no sure text outgrows its payload
+    count, used = _scan(
+        np.frombuffer(joined, dtype=np.uint8), lengths, sure, numbers, sizes, digests, text,
+        np.empty(_CANON, dtype=np.uint8), np.zeros(_W_SIZE, dtype=np.int64),
+        np.empty(8, dtype=np.uint64), np.empty(16, dtype=np.uint64),
+    )  # fmt: skip
     at = np.flatnonzero(sure)
+    times, scores = numbers[0, :count], numbers[1, :count]
     if count == 0:
-        return Scanned(sure, at, [], [], [], scores[:0], times[:0], [], [], [])
-    texts = text[:-1].tobytes().decode("ascii").split("\n")
-    sizes = sizes[:count]
+        return Scanned(sure, at, [], [], [], scores, times, [], [], [])
+    texts = text[: used - 1].tobytes().decode("ascii").split("\n")
+    sizes = sizes[:, :count]
     if sizes.max() == 1:  # 1 against 1: five texts per event
         match_ids = texts[0::5]
         firsts: list[tuple[str, ...]] = list(zip(texts[1::5]))
@@ -612,12 +632,12 @@ def scan_payloads(raws: Sequence[bytes]) -> Scanned:
         finished = texts[3::5]
         keys = texts[4::5]
     else:
-        width = sizes[:, 0] + sizes[:, 1] + 3
+        width = sizes[0] + sizes[1] + 3
         begin = np.cumsum(width) - width
         get = texts.__getitem__
         a = begin + 1
-        b = a + sizes[:, 0]
-        c = b + sizes[:, 1]
+        b = a + sizes[0]
+        c = b + sizes[1]
         match_ids = list(map(get, begin.tolist()))
         firsts = list(map(tuple, map(get, map(slice, a.tolist(), b.tolist()))))
         seconds = list(map(tuple, map(get, map(slice, b.tolist(), c.tolist()))))
@@ -629,8 +649,8 @@ def scan_payloads(raws: Sequence[bytes]) -> Scanned:
         match_ids=match_ids,
         firsts=firsts,
         seconds=seconds,
-        scores=scores[:count],
-        times=times[:count],
+        scores=scores,
+        times=times,
         finished=finished,
         context_keys=keys,
         digests=digests[: 8 * count].view("V8").tolist(),
