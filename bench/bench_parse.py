@@ -69,6 +69,17 @@ def main() -> None:
                 f"event_digests {digs:5.2f} us ({digs / dig1:4.2f}x)"
             )
 
+    from streamrate.scan import scan_payloads  # the compiled scan of the common spellings
+
+    for size in (100, 1000):
+        raws = [SOLO.replace(b"m-0001", f"m-{k:06d}".encode()) for k in range(size)]
+        both = per_event_us(lambda raws=raws: event_digests(*decode_events(raws)), 50) / size
+        scan = per_event_us(lambda raws=raws: scan_payloads(raws), 50) / size
+        print(
+            f"{'solo':>20}, batch {size:4d}: decode_events + event_digests {both:5.2f} us | "
+            f"scan_payloads {scan:5.2f} us ({scan / both:4.2f}x)"
+        )
+
 
 if __name__ == "__main__":
     main()

@@ -100,6 +100,7 @@ _SIGMA = np.array(
 )[np.arange(12) % 10]
 _U8, _U16, _U24, _U32 = np.uint64(8), np.uint64(16), np.uint64(24), np.uint64(32)
 _U40, _U48, _U63, _U1 = np.uint64(40), np.uint64(48), np.uint64(63), np.uint64(1)
+_U10, _ZERO = np.uint64(10), np.uint64(48)
 _PARAM = np.uint64(0x01010000)  # fan-out 1, depth 1, no key
 _BYTE = np.uint64(0xFF)
 
@@ -544,14 +545,14 @@ def _scan(buf, lengths, sure, numbers, sizes, digests, text, canon, w, h, m):  #
         c += 1
         whole = w[_W_US] // 1_000_000  # t = whole.fraction; repr(t) spells the same digits
         digits = 1
-        x = whole // 10
-        while x:
+        power = 10
+        while power <= whole:
             digits += 1
-            x //= 10
-        x = whole
+            power *= 10
+        x = np.uint64(whole)  # unsigned division by 10 is cheaper
         for k in range(c + digits - 1, c - 1, -1):
-            canon[k] = 48 + x % 10
-            x //= 10
+            canon[k] = _ZERO + x % _U10
+            x //= _U10
         c += digits
         canon[c] = 46
         c += 1
@@ -623,7 +624,7 @@ def scan_payloads(raws: Sequence[bytes]) -> Scanned:
     times, scores = numbers[0, :count], numbers[1, :count]
     if count == 0:
         return Scanned(sure, at, [], [], [], scores, times, [], [], [])
-    texts = text[: used - 1].tobytes().decode("ascii").split("\n")
+    texts = str(memoryview(text)[: used - 1], "ascii").split("\n")
     sizes = sizes[:, :count]
     if sizes.max() == 1:  # 1 against 1: five texts per event
         match_ids = texts[0::5]
