@@ -624,7 +624,7 @@ def scan_payloads(raws: Sequence[bytes]) -> Scanned:
     times, scores = numbers[0, :count], numbers[1, :count]
     if count == 0:
         return Scanned(sure, at, [], [], [], scores, times, [], [], [])
-    texts = str(memoryview(text)[: used - 1], "ascii").split("\n")
+    texts = str(text.data[: used - 1], "ascii").split("\n")
     sizes = sizes[:, :count]
     if sizes.max() == 1:  # 1 against 1: five texts per event
         match_ids = texts[0::5]
