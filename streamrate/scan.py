@@ -27,7 +27,7 @@ of distinct ids, disjoint.
 ...     b'{"match_id": "m-2", "finished_at": "2026-03-01T18:00:00Z", "first": ["a\\\\b"],'
 ...     b' "second": ["morvenn"], "score": 1}'])
 >>> s.sure.tolist(), s.match_ids, s.firsts, s.times.tolist(), context_of(s.context_keys[0])
-([True, False], ['m-1'], [('kelvash',)], [1772388000.25], {'map': 'saltflats', 'mode': 'duel'})
+([True, False], ['m-1'], [('kelvash',)], [1772388000.25], {'mode': 'duel', 'map': 'saltflats'})
 """
 
 from __future__ import annotations
@@ -67,9 +67,13 @@ class Scanned:
     finished: list[str]
     """``finished_at`` as given, to build a datetime later (only when needed)."""
     context_keys: list[str]
-    """Canonical context text (see :func:`context_of`); "" for an absent or empty one."""
+    """The context as text, its fields in the payload's order (see :func:`context_of`):
+    ``name\x1dsvalue`` joined by ``\x1f``; "" for an absent or empty one. The order
+    is kept because a model adds a context's fields up in that order."""
     digests: list[bytes]
     """8 bytes each, equal to ``event_digest(parse_event(raw))``."""
+    has_context: list[bool]
+    """Whether the payload gave a ``context`` field (pydantic's ``model_fields_set``)."""
 
 
 # -- BLAKE2b (RFC 7693), unkeyed, any digest size ---------------------------------
@@ -212,7 +216,8 @@ _W_NCTX = 10  # context fields
 _W_IDS = 16  # 2 * MAX_SIDE_SIZE (start, length): first side, then second
 _W_CTX = _W_IDS + 4 * MAX_SIDE_SIZE  # MAX_CONTEXT_FIELDS (name start, length, value start, length)
 _W_ORDER = _W_CTX + 4 * MAX_CONTEXT_FIELDS  # context fields in name order
-_W_SIZE = _W_ORDER + MAX_CONTEXT_FIELDS
+_W_GIVEN = _W_ORDER + MAX_CONTEXT_FIELDS  # 1 when the payload has a context field
+_W_SIZE = _W_GIVEN + 1
 _CANON = MAX_EVENT_BYTES + 256
 """Room for an event's canonical text, which is never longer than its payload."""
 
@@ -489,6 +494,7 @@ def _event(buf, p, e, w):  # type: ignore[no-untyped-def]
             return False
     if _ws(buf, p + 1, e) != e or seen & _REQUIRED != _REQUIRED:
         return False
+    w[_W_GIVEN] = (seen >> _CONTEXT) & 1
     # No id twice in the match (on one side or on both).
     k1, k2 = w[_W_K], w[_W_K + 1]
     for a in range(k1 + k2):
@@ -570,7 +576,6 @@ def _scan(buf, lengths, sure, numbers, sizes, digests, text, canon, w, h, m):  #
         canon[c + 2] = 46
         canon[c + 3] = 53 if w[_W_SCORE] == 1 else 48
         c += 4
-        key = c + 1  # where the context key starts
         for j in range(nctx):
             canon[c] = 0x1E if j == 0 else 0x1F
             at = _W_CTX + 4 * w[_W_ORDER + j]
@@ -591,8 +596,15 @@ def _scan(buf, lengths, sure, numbers, sizes, digests, text, canon, w, h, m):  #
         o = _put(text, o, buf, w[_W_TIME], w[_W_TIME + 1])
         text[o] = 10
         o += 1
-        if nctx:
-            o = _put(text, o, canon, key, c - key)
+        for j in range(nctx):  # the context key: fields in the payload's order
+            if j:
+                text[o] = 0x1F
+                o += 1
+            at = _W_CTX + 4 * j
+            o = _put(text, o, buf, w[at], w[at + 1])
+            text[o] = 0x1D
+            text[o + 1] = 115  # s
+            o = _put(text, o + 2, buf, w[at + 2], w[at + 3])
         text[o] = 10
         o += 1
         sure[i] = True
@@ -600,6 +612,7 @@ def _scan(buf, lengths, sure, numbers, sizes, digests, text, canon, w, h, m):  #
         numbers[1, count] = 0.5 * w[_W_SCORE]
         sizes[0, count] = k1
         sizes[1, count] = k2
+        sizes[2, count] = w[_W_GIVEN]
         count += 1
     return count, o
 
@@ -612,7 +625,7 @@ def scan_payloads(raws: Sequence[bytes]) -> Scanned:
     joined = b"".join(raws)
     sure = np.zeros(n, dtype=np.bool_)
     numbers = np.empty((2, n))
-    sizes = np.empty((2, n), dtype=np.int64)
+    sizes = np.empty((3, n), dtype=np.int64)
     digests = np.empty(8 * n, dtype=np.uint8)
     text = np.empty(len(joined) + 8 * n + 8, dtype=np.uint8)  # no sure text outgrows its payload
     count, used = _scan(
@@ -623,10 +636,11 @@ def scan_payloads(raws: Sequence[bytes]) -> Scanned:
     at = np.flatnonzero(sure)
     times, scores = numbers[0, :count], numbers[1, :count]
     if count == 0:
-        return Scanned(sure, at, [], [], [], scores, times, [], [], [])
+        return Scanned(sure, at, [], [], [], scores, times, [], [], [], [])
     texts = str(text.data[: used - 1], "ascii").split("\n")
     sizes = sizes[:, :count]
-    if sizes.max() == 1:  # 1 against 1: five texts per event
+    given = sizes[2].astype(np.bool_).tolist()
+    if sizes[:2].max() == 1:  # 1 against 1: five texts per event
         match_ids = texts[0::5]
         firsts: list[tuple[str, ...]] = list(zip(texts[1::5]))
         seconds: list[tuple[str, ...]] = list(zip(texts[2::5]))
@@ -655,6 +669,7 @@ def scan_payloads(raws: Sequence[bytes]) -> Scanned:
         finished=finished,
         context_keys=keys,
         digests=digests[: 8 * count].view("V8").tolist(),
+        has_context=given,
     )
 
 
@@ -668,9 +683,14 @@ def _context_fields(key: str) -> tuple[tuple[str, str], ...]:
 
 
 def context_of(key: str) -> dict[str, str]:
-    """The context back from its canonical key (names in sorted order); a new dict
-    each call, the parse of a key cached (contexts repeat from match to match)."""
+    """The context back from its key (in the payload's order); a new dict each call,
+    the parse of a key cached (contexts repeat from match to match)."""
     return dict(_context_fields(key))
+
+
+def context_items(key: str) -> tuple[tuple[str, str], ...]:
+    """The ``(name, value)`` pairs of a context key, in the payload's order (cached)."""
+    return _context_fields(key)
 
 
 def _blake2b_of(data: bytes, size: int = 8) -> bytes:

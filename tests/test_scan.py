@@ -154,7 +154,9 @@ def _same(got: Scanned, j: int, ev: MatchEvent) -> None:
     assert repr(float(got.scores[j])) == repr(ev.score)
     assert not ev.features and ev.margin is None
     assert context_of(got.context_keys[j]) == ev.context
-    assert got.context_keys[j] == _canonical_values(ev.context)
+    assert list(context_of(got.context_keys[j]).items()) == list(ev.context.items())  # order
+    assert got.context_keys[j] == "\x1f".join(f"{k}\x1ds{v}" for k, v in ev.context.items())
+    assert got.has_context[j] == ("context" in ev.model_fields_set)
     assert float(got.times[j]) == ev.finished_at.timestamp()
     when = datetime.fromisoformat(got.finished[j])
     assert when == ev.finished_at and when.utcoffset() == ev.finished_at.utcoffset()
