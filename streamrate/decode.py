@@ -43,7 +43,7 @@ from __future__ import annotations
 import math
 import re
 from collections import deque
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from datetime import datetime
 from itertools import chain, repeat
 from operator import attrgetter, eq, itemgetter
@@ -255,8 +255,6 @@ def _fast(wires: list[_Wire]) -> tuple[list[MatchEvent], list[float]]:
         and max(map(len, contexts)) <= MAX_CONTEXT_FIELDS
     ):
         contexts = list(map(_context, contexts))
-    # Build the events as pydantic itself would leave them, without a Python call per
-    # event: one comprehension, then C-level maps (each dict and set is the event's own).
     if any(features):  # unset or empty is falsy
         feature_maps = [
             _features(f, a, b) if f else {}
@@ -264,6 +262,28 @@ def _fast(wires: list[_Wire]) -> tuple[list[MatchEvent], list[float]]:
         ]
     else:
         feature_maps = list(map(dict, repeat((), n)))
+    events = make_events(
+        firsts, seconds, contexts, feature_maps, mids, finished, scores, margins, fields
+    )
+    return events, times
+
+
+def make_events(
+    firsts: Sequence[tuple[str, ...]],
+    seconds: Sequence[tuple[str, ...]],
+    contexts: Sequence[dict[str, Any]],
+    feature_maps: Sequence[dict[str, dict[str, Any]]],
+    mids: Sequence[str],
+    finished: Sequence[datetime],
+    scores: Iterable[float],
+    margins: Sequence[float | None],
+    fields: Sequence[frozenset[str]],
+) -> list[MatchEvent]:
+    """Events built as pydantic itself would leave them from values already checked
+    against the model, without a Python call per event: one comprehension, then
+    C-level maps (each dict and set is the event's own). ``fields``: the names each
+    payload gave (pydantic's ``model_fields_set``)."""
+    n = len(mids)
     dicts = [  # the field order of pydantic's own ``__dict__``
         {
             "first": first,
@@ -284,7 +304,7 @@ def _fast(wires: list[_Wire]) -> tuple[list[MatchEvent], list[float]]:
     deque(map(_set, out, repeat("__pydantic_fields_set__"), map(set, fields)), 0)
     deque(map(_set, out, repeat("__pydantic_extra__"), repeat(None)), 0)
     deque(map(_set, out, repeat("__pydantic_private__"), repeat(None)), 0)
-    return out, times
+    return out
 
 
 def _model(raw: bytes) -> tuple[MatchEvent | EventError, float]:
