@@ -42,8 +42,10 @@ from operator import attrgetter, itemgetter
 
 import numpy as np
 
+from streamrate.columns import EventColumns
 from streamrate.encode import Encoded, EntityTable, FeatureHasher, RunningScale
 from streamrate.events import MatchEvent, Matchup
+from streamrate.scan import context_items, context_of
 
 _NAN = math.nan
 _FIRST, _SECOND = attrgetter("first"), attrgetter("second")
@@ -93,7 +95,10 @@ class EncodedBatch:
 
 
 def _members(
-    events: Sequence[Matchup], table: EntityTable, add: bool
+    firsts: Sequence[tuple[str, ...]],
+    seconds: Sequence[tuple[str, ...]],
+    table: EntityTable,
+    add: bool,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """(first rows, first sizes, second rows, second sizes) of a batch, in one pass.
 
@@ -104,9 +109,7 @@ def _members(
     encoding would hand them out, so row numbers (and anything seeded by them)
     do not depend on how a stream was cut into batches.
     """
-    n = len(events)
-    firsts = list(map(_FIRST, events))
-    seconds = list(map(_SECOND, events))
+    n = len(firsts)
     get = table.lookup
     if max(map(len, firsts), default=1) == 1 == max(map(len, seconds), default=1):
         # one against one: no sizes to read, no padding to lay out
@@ -242,8 +245,11 @@ def encode_events(
     from) first adds each number to its field's statistics, event by event in
     order, so a batch is encoded exactly as its events one at a time would be.
     """
+    if isinstance(events, EventColumns):
+        return _encode_columns(events, table, context, features, add)
     n = len(events)
-    first, first_size, second, second_size = _members(events, table, add)
+    firsts, seconds = list(map(_FIRST, events)), list(map(_SECOND, events))
+    first, first_size, second, second_size = _members(firsts, seconds, table, add)
     try:  # the common case, all finished matches; a query lacks both fields
         score = np.fromiter(map(_SCORE, events), dtype=np.float64, count=n)
         time_s = np.fromiter(
@@ -272,6 +278,39 @@ def encode_events(
     return EncodedBatch(
         first, second, score, ctx_idx, ctx_val, time_s, first_size, second_size, feat_idx, feat_val
     )
+
+
+def _encode_columns(
+    cols: EventColumns,
+    table: EntityTable,
+    context: FeatureHasher | None,
+    features: FeatureHasher | None,
+    add: bool,
+) -> EncodedBatch:
+    """:func:`encode_events` of events held as columns: the same arrays, read from
+    the columns (their contexts are categories only and they carry no features, so
+    there is nothing to scale)."""
+    n = len(cols)
+    first, first_size, second, second_size = _members(cols.firsts, cols.seconds, table, add)
+    if context is not None:
+        got = context.key_rows(cols.context_keys, context_items)
+        if got is None:  # the hasher's table is full: mapping by mapping
+            maps = list(map(context_of, cols.context_keys))
+            got = _sparse(maps, context, None, add)
+        ctx_idx, ctx_val = got
+    else:
+        ctx_idx = np.full((n, 0), -1, dtype=np.int32)
+        ctx_val = np.zeros((n, 0), dtype=np.float64)
+    if features is not None:  # no event of the columns gives features
+        k = first.shape[1] + second.shape[1]
+        feat_idx = np.full((n, k, 0), -1, dtype=np.int32)
+        feat_val = np.zeros((n, k, 0), dtype=np.float64)
+    else:
+        feat_idx, feat_val = _EMPTY_I, _EMPTY_F
+    return EncodedBatch(
+        first, second, np.array(cols.scores, dtype=np.float64), ctx_idx, ctx_val,
+        np.array(cols.times, dtype=np.float64), first_size, second_size, feat_idx, feat_val,
+    )  # fmt: skip
 
 
 def count_matches(batch: EncodedBatch, table: EntityTable) -> None:

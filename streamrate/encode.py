@@ -57,6 +57,8 @@ class FeatureHasher:
         # Mappings of categories only, as rows of two tables (slots, signed values),
         # padded with -1 / 0 to the widest: a batch of them is two fancy indexings.
         self._rows: dict[tuple[tuple[str, str | float], ...], int] = {}
+        self._key_row: dict[str, int] = {}  # the same rows by a mapping's text (columns)
+        self._key_width: dict[str, int] = {}
         self._table_idx = np.full((0, 0), -1, dtype=np.int32)
         self._table_val = np.zeros((0, 0), dtype=np.float64)
 
@@ -129,6 +131,36 @@ class FeatureHasher:
             rows = list(map(get, keys))
         if self._table_idx.shape[1] < width:
             return None
+        at = np.array(rows, dtype=np.intp)
+        return self._table_idx[at, :width], self._table_val[at, :width]
+
+    def key_rows(
+        self,
+        keys: Sequence[str],
+        items_of: Callable[[str], tuple[tuple[str, str], ...]],
+    ) -> tuple[IntArray, FloatArray] | None:
+        """:meth:`category_rows` of mappings of categories given by a text key each
+        (``items_of(key)``: the mapping's pairs in their order), padded to the
+        widest of the batch; None when the table is full."""
+        get = self._key_row.get
+        rows = list(map(get, keys))
+        if None in rows:
+            for key in set(keys):
+                if key in self._key_row:
+                    continue
+                items = items_of(key)
+                if items not in self._rows and not self._add_row(items):
+                    return None
+                if len(self._key_row) < 100_000:
+                    self._key_row[key] = self._rows[items]
+                    self._key_width[key] = len(items)
+                else:
+                    return None
+            rows = list(map(get, keys))
+        width = max(map(self._key_width.__getitem__, set(keys)), default=0)
+        n = len(keys)
+        if width == 0:
+            return np.full((n, 0), -1, dtype=np.int32), np.zeros((n, 0), dtype=np.float64)
         at = np.array(rows, dtype=np.intp)
         return self._table_idx[at, :width], self._table_val[at, :width]
 
