@@ -44,10 +44,11 @@ from typing import Any
 import redis
 
 from streamrate.checkpoint import Checkpoint, CheckpointStore, load_parts
+from streamrate.columns import EventColumns, events_of, pairs_of, sids_of
 from streamrate.config import ReplicaSettings, SpaceKeys, SpaceSettings
 from streamrate.dedupe import SeenIds
 from streamrate.errors import AppliedLogError, CheckpointRefusedError
-from streamrate.events import MatchEvent, event_digest, parse_event
+from streamrate.events import MatchEvent, event_digest
 from streamrate.metrics import CONSUMER_STATES, ReplicaMetrics, ServiceMetrics
 from streamrate.models.base import Model, warm_up
 from streamrate.serve.livefeed import WatchRegistry
@@ -249,9 +250,7 @@ class Follower:
             if entry.seq != n:
                 raise Reload("gap")
             self.epoch = max(self.epoch, entry.epoch)
-            part = [
-                (sid, parse_event(raw)) for sid, raw in zip(entry.ids, entry.events, strict=True)
-            ]
+            part = pairs_of(list(entry.ids), entry.events)
             for start, end in entry.pieces():  # as the writer applied them
                 self.applier.apply(part[start:end])
             if self.writer_state:
@@ -264,12 +263,17 @@ class Follower:
             self._notify()
         self.position = entry.id
 
-    def _follow_writer_state(self, entry: LogEntry, part: list[tuple[str, MatchEvent]]) -> None:
+    def _follow_writer_state(self, entry: LogEntry, part: Sequence[tuple[str, MatchEvent]]) -> None:
         """Add the applied events to the retry record as the writer did
         (:meth:`streamrate.stream.decide.Decider.remember`); take its counters."""
         if self.seen is not None:
-            for sid, ev in part:
-                self.seen.add(ev.match_id, id_key(sid)[0] / 1000, event_digest(ev))
+            sids, events = sids_of(part), events_of(part)
+            if isinstance(events, EventColumns):  # the digests are at hand
+                received_s = [id_key(sid)[0] / 1000 for sid in sids]
+                self.seen.add_many(events.match_ids, received_s, b"".join(events.digests))
+            else:
+                for sid, ev in zip(sids, events, strict=True):
+                    self.seen.add(ev.match_id, id_key(sid)[0] / 1000, event_digest(ev))
         if entry.dead < 0 or entry.dupes < 0 or self.counters is None:
             self.counters = None  # a writer of an older version: not known
         else:

@@ -346,7 +346,7 @@ class AppliedLogWriter:
         pending (a lost reply: they are written again, and a replica skips an
         entry it has applied by its ``seq``)."""
         self._close()
-        sent = self.pending
+        sent = list(self.pending)  # a copy: more may be added before the replies are taken
         if not sent:
             return 0, _nothing
         if self.fence is not None:

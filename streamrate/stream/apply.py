@@ -17,6 +17,7 @@ from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Literal, Protocol, runtime_checkable
 
+from streamrate.columns import entity_ids_of, events_of, sids_of
 from streamrate.events import MatchEvent
 from streamrate.models.base import Model, Prediction, Predictions
 from streamrate.pubsub import publish as publish_one
@@ -120,7 +121,7 @@ class Applier:
         if not self.observers:
             return
         kind = self.live.model.kind
-        events = [ev for _, ev in part]
+        events = events_of(part)
         scores: dict[str, list[float]] | None = None
         for obs in self.observers:
             # (an attribute lookup: a runtime protocol check costs more than the call)
@@ -141,10 +142,10 @@ class Applier:
         self, part: Sequence[tuple[str, MatchEvent]], messages: list[tuple[str, str]]
     ) -> tuple[list[tuple[float, float]], dict[str, Predictions], list[str]]:
         live = self.live
-        events = [ev for _, ev in part]
+        events = events_of(part)
         with live.lock:
             promoted, live.promoted = live.promoted, []
-            if not self.watch.touches(e for ev in events for e in ev.entities()):
+            if not self.watch.touches(entity_ids_of(events)):
                 got = live.model.learn_scored(events)
                 preds = list(
                     zip(got.served.p_win.tolist(), got.served.p_draw.tolist(), strict=True)
@@ -168,7 +169,7 @@ class Applier:
                     for label, got_rows in rows.items()
                 }
             live.applied += len(part)
-            live.version = part[-1][0]
+            live.version = sids_of(part)[-1]
         return preds, members, promoted
 
     def take_promotions(self) -> list[str]:

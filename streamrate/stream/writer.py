@@ -68,6 +68,7 @@ from dataclasses import dataclass
 import redis
 
 from streamrate.checkpoint import CheckpointStore, load_parts
+from streamrate.columns import sids_of
 from streamrate.config import SpaceKeys, SpaceSettings
 from streamrate.dedupe import SeenIds
 from streamrate.errors import LeaseLostError, StreamrateError
@@ -372,6 +373,7 @@ class Writer:
         """Apply in chunks through the shared :class:`Applier`; log each chunk."""
         valid, raws = decision.valid, decision.raws
         chunk = 1 if self.careful else self.space.lock_chunk
+        take_raw = raws.__getitem__
         for start in range(0, len(valid), chunk):
             part = valid[start : start + chunk]
             seq = self.live.applied  # only this thread changes it
@@ -384,7 +386,8 @@ class Writer:
             self.decider.remember(part, decision.digests)
             for model in got.promoted:  # made before this chunk, under the same lock
                 self.log.promote(seq, model)
-            self.log.chunk(seq, [sid for sid, _ in part], [raws[sid] for sid, _ in part], tally)
+            sids = sids_of(part)
+            self.log.chunk(seq, sids, list(map(take_raw, sids)), tally)
             if got.published:
                 self.metrics.live_published.labels(**self._lbl).inc(got.published)
             self.applier.notify(part, got)
