@@ -121,6 +121,7 @@ def _loop(fn: Callable[[], None], n: int) -> float:
 
 def hook(t: Timers, writer: Any) -> None:
     """Wrap the functions of each part (batch-level calls of the hot path)."""
+    t.wrap(decide_mod, "scan_payloads", "validation")
     t.wrap(decide_mod, "decode_events", "validation")
     t.wrap(decide_mod, "_refused_or_untrusted", "validation")
     t.wrap(decide_mod, "event_digests", "dedupe")
