@@ -185,3 +185,19 @@ def pairs_of(sids: list[str], raws: Sequence[bytes]) -> Sequence[tuple[str, Matc
     if got.sure.all():
         return Pairs(sids, EventColumns.from_scan(got))
     return [(sid, parse_event(raw)) for sid, raw in zip(sids, raws, strict=True)]
+
+
+def contexts_of(events: Sequence[MatchEvent]) -> list[dict[str, str | float]]:
+    """The context of each event (no event is made: from the columns' texts)."""
+    if isinstance(events, EventColumns):
+        from streamrate.scan import context_of
+
+        return list(map(context_of, events.context_keys))  # type: ignore[arg-type]
+    return [ev.context for ev in events]
+
+
+def scores_of(events: Sequence[MatchEvent]) -> list[float]:
+    """The first side's score of each event (no event is made)."""
+    if isinstance(events, EventColumns):
+        return events.scores.tolist()  # type: ignore[no-any-return]
+    return [ev.score for ev in events]

@@ -16,13 +16,14 @@ from prometheus_client import CollectorRegistry
 import streamrate.stream.decide as decide_mod
 from streamrate.checkpoint import FileCheckpointStore
 from streamrate.columns import EventColumns, Pairs, events_of, sids_of
-from streamrate.config import Settings, SpaceSettings
+from streamrate.config import QualitySettings, Settings, SpaceSettings
 from streamrate.consumer import Consumer
 from streamrate.events import parse_event
 from streamrate.metrics import ServiceMetrics
 from streamrate.models.base import Model
 from streamrate.models.registry import build_model
 from streamrate.scan import Scanned, scan_payloads
+from streamrate.watch.quality_metrics import QualityMetrics, quality_observers
 
 RECEIVED_MS = 1_790_000_000_000  # 2026-09: after every finish time below
 MAPS = ("saltflats", "ember-quarry", "glasswood")
@@ -60,7 +61,9 @@ def _lines(n: int, seed: int, teams: bool) -> list[str]:
     return out
 
 
-def _writer(r: Any, model: str, settings: dict[str, Any], ckpt_dir: str) -> Consumer:
+def _writer(
+    r: Any, model: str, settings: dict[str, Any], ckpt_dir: str, observers: list[Any]
+) -> Consumer:
     space = SpaceSettings(
         name="duel", model=model, model_settings=settings, batch_count=50, block_ms=1,
         checkpoint_every_events=120, checkpoint_every_s=10**6, claim_idle_ms=0,
@@ -70,13 +73,24 @@ def _writer(r: Any, model: str, settings: dict[str, Any], ckpt_dir: str) -> Cons
     return Consumer(
         r, space, keys, FileCheckpointStore(ckpt_dir, "g"),
         ServiceMetrics(CollectorRegistry(), ["duel"]), lambda: build_model(model, **settings),
+        observers=observers,
     )  # fmt: skip
 
 
-def _run(lines: list[str], model: str, settings: dict[str, Any]) -> tuple[Model, Any, list[Any]]:
+def _run(
+    lines: list[str], model: str, settings: dict[str, Any]
+) -> tuple[Model, Any, list[Any], list[Any]]:
+    """The model, retry record, applied log and quality state (windows, drift, change
+    detectors, as ``serve`` watches the writer) after the writer has taken ``lines``."""
     r = fakeredis.FakeRedis()
+    observers = quality_observers(
+        "duel",
+        QualitySettings(group_field="map", drift_fields=("map", "stage")),  # contexts read
+        QualityMetrics(CollectorRegistry()),
+        exporting=False,
+    )
     with tempfile.TemporaryDirectory() as d:
-        c = _writer(r, model, settings, d)
+        c = _writer(r, model, settings, d, observers)
         for i, line in enumerate(lines):  # ids of our own: both runs receive alike
             r.xadd(c.keys.events, {"event": line}, id=f"{RECEIVED_MS + 1000 * i}-0")
         c.recover()
@@ -87,7 +101,7 @@ def _run(lines: list[str], model: str, settings: dict[str, Any]) -> tuple[Model,
         c.close()
         assert c.live.applied > 0.8 * len(lines)
         log = [fields for _, fields in r.xrange(c.keys.applied)]
-        return c.live.model, c.decider.seen.to_arrays(), log
+        return c.live.model, c.decider.seen.to_arrays(), log, [o.state() for o in observers]
 
 
 def _nothing_sure(raws: list[bytes]) -> Scanned:
@@ -119,10 +133,10 @@ def test_the_fast_lane_learns_what_the_object_path_learns(
         return got
 
     monkeypatch.setattr(decide_mod.Decider, "_columns", counting)
-    fast, fast_seen, fast_log = _run(lines, model, settings)
+    fast, fast_seen, fast_log, fast_quality = _run(lines, model, settings)
     assert sum(taken) >= 100  # the lane was taken (batches of plain payloads)
     monkeypatch.setattr(decide_mod, "scan_payloads", _nothing_sure)
-    slow, slow_seen, slow_log = _run(lines, model, settings)
+    slow, slow_seen, slow_log, slow_quality = _run(lines, model, settings)
     a, b = fast.to_state().arrays, slow.to_state().arrays
     assert set(a) == set(b)
     for k in a:
@@ -130,6 +144,11 @@ def test_the_fast_lane_learns_what_the_object_path_learns(
     for k in slow_seen:
         np.testing.assert_array_equal(fast_seen[k], slow_seen[k], err_msg=k)
     assert fast_log == slow_log
+    assert len(fast_quality) == len(slow_quality) > 0
+    for q, p in zip(fast_quality, slow_quality, strict=True):
+        assert q.meta == p.meta and set(q.arrays) == set(p.arrays)
+        for k in p.arrays:
+            np.testing.assert_array_equal(q.arrays[k], p.arrays[k], err_msg=k)
 
 
 def test_events_made_from_columns_are_the_models_own() -> None:

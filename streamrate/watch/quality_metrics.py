@@ -42,6 +42,7 @@ from collections.abc import Callable, Mapping, Sequence
 from prometheus_client import CollectorRegistry, Counter, Gauge
 
 from streamrate.checkpoint import PartState
+from streamrate.columns import contexts_of, scores_of
 from streamrate.config import QualitySettings
 from streamrate.events import MatchEvent
 from streamrate.models.base import Prediction
@@ -297,9 +298,7 @@ class QualityObserver:
         scores (``scores``, model name -> one per event). The same as calling
         the observer event by event, each event for every model in that order
         (:meth:`QualityMonitor.add_chunk`), with the gauges published at most once."""
-        fired = self.monitor.add_chunk(
-            [ev.context for ev in events], [ev.score for ev in events], scores
-        )
+        fired = self.monitor.add_chunk(contexts_of(events), scores_of(events), scores)
         for _, model_name, direction in fired:
             if self.exporting:
                 self.metrics.change_fired(self.space, model_name, direction)
