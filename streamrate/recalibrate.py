@@ -34,6 +34,7 @@ from typing import Any, ClassVar, Literal
 
 import numpy as np
 
+from streamrate.columns import scores_of
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError, StateVersionError
 from streamrate.events import MatchEvent, Matchup
@@ -340,7 +341,7 @@ class Recalibrated(Model):
             self.recalibrator_.learn(pred.expected_score, events[0].score)
             return Learned(out, {f"{self.base}.raw": raw})
         raw = self.model_.learn_many(events)
-        y = np.array([ev.score for ev in events], dtype=np.float64)
+        y = np.array(scores_of(events), dtype=np.float64)
         p_win = self.recalibrator_.learn_arrays(raw.p_win, raw.p_draw, y)
         served = Predictions(p_win, np.array(raw.p_draw, dtype=np.float64))
         return Learned(served, {f"{self.base}.raw": raw})

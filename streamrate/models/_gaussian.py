@@ -16,18 +16,18 @@ import math
 from abc import abstractmethod
 from collections.abc import Callable, Sequence
 from itertools import groupby
-from operator import attrgetter, methodcaller
+from operator import methodcaller
 from typing import Any, ClassVar
 
 import numpy as np
 
+from streamrate.columns import contexts_of
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError
 from streamrate.events import MatchEvent, Matchup
 from streamrate.models._snapshot import CopyOnWriteRows
 from streamrate.models.base import Model, Prediction
 
-_CONTEXT = attrgetter("context")
 PROBIT = math.pi / 8.0
 """The probit approximation's factor: ``sigmoid(m / sqrt(1 + PROBIT V))``."""
 DAY_S = 86_400.0
@@ -175,7 +175,7 @@ class GaussianRows(Model):
         if self.period_field is None:
             periods = [None] * len(events)
         else:  # C-level passes; a value is never None, so None means the field is missing
-            raw = list(map(methodcaller("get", self.period_field), map(_CONTEXT, events)))
+            raw = list(map(methodcaller("get", self.period_field), contexts_of(events)))
             if None not in raw:
                 periods = list(map(str, raw))
             elif raw.count(None) == len(raw):  # no event names a period

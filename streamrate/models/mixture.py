@@ -37,6 +37,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from streamrate.batch import EncodedBatch, encode_events
+from streamrate.columns import scores_of
 from streamrate.encode import EntityTable
 from streamrate.errors import ConfigError, StateError
 from streamrate.events import MatchEvent, Matchup
@@ -182,7 +183,7 @@ class Mixture(Model):
     def _mix(
         self, preds: list[Predictions], events: Sequence[MatchEvent], batch: bool
     ) -> Predictions:
-        y = np.array([ev.score for ev in events], dtype=np.float64)
+        y = np.array(scores_of(events), dtype=np.float64)
         e = _clip(np.array([p.expected_score for p in preds]))  # (N, n)
         draw = np.array([p.p_draw for p in preds])
         losses = member_log_loss(e, y)
