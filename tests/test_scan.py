@@ -399,3 +399,10 @@ def test_teams_and_an_empty_batch() -> None:
     assert got.match_ids == ["m-1", "m-1", "m-2"]
     empty = scan_payloads([])
     assert empty.sure.shape == (0,) and empty.match_ids == [] and empty.digests == []
+
+
+def test_the_warm_up_payload_is_one_the_scan_takes() -> None:
+    from streamrate.scan import _WARM, warm_up
+
+    warm_up()
+    assert scan_payloads([_WARM]).sure.all()

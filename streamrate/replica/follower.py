@@ -51,6 +51,7 @@ from streamrate.errors import AppliedLogError, CheckpointRefusedError
 from streamrate.events import MatchEvent, event_digest
 from streamrate.metrics import CONSUMER_STATES, ReplicaMetrics, ServiceMetrics
 from streamrate.models.base import Model, warm_up
+from streamrate.scan import warm_up as warm_scan
 from streamrate.serve.livefeed import WatchRegistry
 from streamrate.stream.applied_log import LogEntry, id_key, parse_entry
 from streamrate.stream.apply import Applier, LiveModel, Observer, Status, now_ms
@@ -151,6 +152,7 @@ class Follower:
                 )
             self.epoch = max(self.epoch, start.epoch)
         warm_up(model)  # compile kernels before the lock, not under it
+        warm_scan()
         if self.writer_state:
             self._writer_state_of(ck)
         with self.live.lock:

@@ -74,6 +74,7 @@ from streamrate.dedupe import SeenIds
 from streamrate.errors import LeaseLostError, StreamrateError
 from streamrate.metrics import CONSUMER_STATES, ServiceMetrics
 from streamrate.models.base import Model, warm_up
+from streamrate.scan import warm_up as warm_scan
 from streamrate.serve.livefeed import WatchRegistry
 from streamrate.stream.applied_log import AppliedLogWriter, Tally
 from streamrate.stream.apply import Applier, LiveModel, Observer, Status, redis_publisher
@@ -204,6 +205,7 @@ class Writer:
 
     def _install(self, model: Model, version: str, applied: int) -> None:
         warm_up(model)  # compile kernels before the lock, not under it
+        warm_scan()
         # The query side holds this same LiveModel object: update it in place.
         with self.live.lock:
             self.live.model, self.live.applied = model, applied
@@ -278,6 +280,7 @@ class Writer:
         epoch = self._take_lease()
         self.checkpoints.settle()
         warm_up(state.model)
+        warm_scan()
         with self.live.lock:
             self.live.model, self.live.applied = state.model, state.applied
             self._at(state.version)
