@@ -11,7 +11,10 @@ digest of the retry record) as a ratio to parsing. Last, the writer's batch
 decoder (:func:`streamrate.decode.decode_events`, held to the model by
 ``tests/test_decode.py``) on batches of 100 and 1000 payloads, per event, against
 ``parse_event`` one payload at a time, with the digests of the batch
-(:func:`streamrate.events.event_digests`) against one :func:`event_digest` each.
+(:func:`streamrate.events.event_digests`) against one :func:`event_digest` each;
+and the compiled scan of the writer's fast lane (:func:`streamrate.scan.scan_payloads`,
+held to the model by ``tests/test_scan.py``: checks, columns and digests in one
+pass) against ``decode_events`` plus ``event_digests``, on the same batches.
 """
 
 from __future__ import annotations

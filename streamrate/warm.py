@@ -55,7 +55,10 @@ def compile_models(setups: Sequence[tuple[str, Mapping[str, object]]]) -> None:
 
 
 def _compile_all() -> None:
+    from streamrate.scan import warm_up as warm_scan
+
     compile_models(_SETUPS)
+    warm_scan()  # the writer's scan of payloads
 
 
 def warm_kernels(
