@@ -66,6 +66,19 @@ def _same(got: Decision, want: Decision) -> None:
     assert got.dupes == want.dupes
 
 
+def _decide_both(d: Decider, ref: SeenIds, batch: list[tuple[bytes, Any]]) -> None:
+    """Decide ``batch`` with the writer's decider and with the reference, remember
+    what each applied, and compare the decisions and the retry records."""
+    got = d.decide(batch)
+    want = reference_decide(ref, d.poison, "event", 86_400.0, batch)
+    _same(got, want)
+    d.remember(got.valid, got.digests)
+    reference_remember(ref, want.valid, want.digests)
+    assert d.seen.ids() == ref.ids()
+    for name, arr in ref.to_arrays().items():
+        np.testing.assert_array_equal(d.seen.to_arrays()[name], arr)
+
+
 @settings(max_examples=300, suppress_health_check=[HealthCheck.too_slow])
 @given(st.data(), st.integers(1, 4), st.booleans())
 def test_the_batch_decision_equals_the_entry_by_entry_decision(
@@ -77,14 +90,7 @@ def test_the_batch_decision_equals_the_entry_by_entry_decision(
         batch = data.draw(entries(b))
         if poisoned and batch:
             d.poison[batch[0][0].decode()] = "the model could not learn from this event"
-        got = d.decide(batch)
-        want = reference_decide(ref, d.poison, "event", 86_400.0, batch)
-        _same(got, want)
-        d.remember(got.valid, got.digests)
-        reference_remember(ref, want.valid, want.digests)
-        assert d.seen.ids() == ref.ids()
-        for name, arr in ref.to_arrays().items():
-            np.testing.assert_array_equal(d.seen.to_arrays()[name], arr)
+        _decide_both(d, ref, batch)
 
 
 @st.composite
@@ -142,14 +148,7 @@ def test_batches_of_the_common_shape_are_decided_as_entry_by_entry(
     ids: list[int] = []
     for b in range(batches):
         batch = data.draw(lane(b, ids))
-        got = d.decide(batch)
-        want = reference_decide(ref, d.poison, "event", 86_400.0, batch)
-        _same(got, want)
-        d.remember(got.valid, got.digests)
-        reference_remember(ref, want.valid, want.digests)
-        assert d.seen.ids() == ref.ids()
-        for name, arr in ref.to_arrays().items():
-            np.testing.assert_array_equal(d.seen.to_arrays()[name], arr)
+        _decide_both(d, ref, batch)
 
 
 def test_the_common_batch_takes_the_fast_lane() -> None:
