@@ -131,13 +131,20 @@ class EventColumns(Sequence[MatchEvent]):
 
 
 class Pairs(Sequence[tuple[str, MatchEvent]]):
-    """``(stream id, event)`` pairs held as two columns of equal length."""
+    """``(stream id, event)`` pairs held as two columns of equal length; with each
+    stream id's clock (``received_ms``) when the caller has it at hand."""
 
-    __slots__ = ("events", "sids")
+    __slots__ = ("events", "received_ms", "sids")
 
-    def __init__(self, sids: list[str], events: Sequence[MatchEvent]) -> None:
+    def __init__(
+        self,
+        sids: list[str],
+        events: Sequence[MatchEvent],
+        received_ms: list[int] | None = None,
+    ) -> None:
         self.sids = sids
         self.events = events
+        self.received_ms = received_ms
 
     def __len__(self) -> int:
         return len(self.sids)
@@ -148,7 +155,8 @@ class Pairs(Sequence[tuple[str, MatchEvent]]):
     def __getitem__(self, i: slice) -> Pairs: ...
     def __getitem__(self, i: int | slice) -> tuple[str, MatchEvent] | Pairs:
         if isinstance(i, slice):
-            return Pairs(self.sids[i], self.events[i])
+            ms = self.received_ms
+            return Pairs(self.sids[i], self.events[i], None if ms is None else ms[i])
         return self.sids[i], self.events[i]
 
 

@@ -174,3 +174,5 @@ def test_pairs_keep_ids_and_events_apart() -> None:
     assert p[3] == (sids[3], cols[3])
     plain = list(p)
     assert sids_of(plain) == sids and list(events_of(plain)) == cols.events()
+    clocked = Pairs(sids, cols, list(range(len(sids))))
+    assert clocked[4:7].received_ms == [4, 5, 6] and p[4:7].received_ms is None

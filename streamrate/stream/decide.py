@@ -195,7 +195,8 @@ class Decider:
         the batch is decided event by event as objects."""
         if not got.sure.all():
             return None
-        limit = np.asarray(millis(sids), dtype=np.float64) / 1000 + self.future_limit_s
+        received_ms = millis(sids)
+        limit = np.asarray(received_ms, dtype=np.float64) / 1000 + self.future_limit_s
         t = got.times
         if not ((t <= limit) & (t >= _EARLIEST_S)).all():
             return None
@@ -203,7 +204,7 @@ class Decider:
         if len(set(mids)) != len(mids) or self.seen.known(mids):
             return None
         out = Decision()
-        out.valid = Pairs(sids, EventColumns.from_scan(got))
+        out.valid = Pairs(sids, EventColumns.from_scan(got), received_ms)
         out.raws = dict(zip(sids, raws, strict=True))
         out.digests = dict(zip(sids, got.digests, strict=True))
         return out
@@ -251,7 +252,8 @@ class Decider:
         got = list(map(digests.get, sids))
         if None in got:
             got = [d or event_digest(ev) for d, ev in zip(got, events, strict=True)]
-        received_s = [ms / 1000 for ms in millis(sids)]
+        ms = part.received_ms if isinstance(part, Pairs) else None
+        received_s = [t / 1000 for t in (millis(sids) if ms is None else ms)]
         self.seen.add_many(match_ids_of(events), received_s, b"".join(got))  # type: ignore[arg-type]
 
     # -- poison -----------------------------------------------------------------
