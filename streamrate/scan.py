@@ -16,9 +16,9 @@ it); exactly the keys ``match_id``, ``finished_at``, ``first``, ``second``,
 and categories of printable ASCII without the space; context values strings;
 ``score`` spelled ``0``, ``1``, ``0.0``, ``1.0`` or ``0.5``; ``finished_at`` as
 ``YYYY-MM-DDTHH:MM:SS[.ffffff](Z|+HH:MM|-HH:MM)`` with a real calendar date in
-the years 2000 to 2200 and at most 5 significant digits of a second (so that
-the digest's ``repr`` of the time is provably the text's own digits); sides
-of distinct ids, disjoint.
+the years 2000 to 2200 and up to 6 digits of a second (so that the digest's
+``repr`` of the time is provably the text's own digits: see :func:`_time`);
+sides of distinct ids, disjoint.
 
 >>> s = scan_payloads([
 ...     b'{"match_id": "m-1", "finished_at": "2026-03-01T19:00:00.25+01:00",'
@@ -269,8 +269,18 @@ def _compare(buf, a, na, b, nb):  # type: ignore[no-untyped-def]
 @leaf
 def _time(buf, s, q, w):  # type: ignore[no-untyped-def]
     """Read ``YYYY-MM-DDTHH:MM:SS[.f{1,6}](Z|[+-]HH:MM)`` from ``buf[s:q]`` into ``w``;
-    False unless it is a real date and time of the years 2000 to 2200 whose fraction
-    has at most 5 digits once trailing zeros are dropped."""
+    False unless it is a real date and time of the years 2000 to 2200.
+
+    Why ``repr(t)`` of ``t = us / 1e6`` is then the text's own digits (the integer
+    part, ".", the fraction without trailing zeros, or "0"), the decimal D: in these
+    years 1e8 < t < 2**33, so doubles near t lie at most 2**-20 s (under 1e-6)
+    apart and ``t`` is within half that of D. With at most 15 significant digits
+    (5 fraction digits kept) D round-trips and nothing shorter does (15 decimal
+    digits always survive a double). With 16 (6 kept, the sixth not 0), every
+    other decimal of at most 16 digits lies on the 1e-6 grid away from D or on
+    the 1e-5 grid, at least 1e-6 from D, so more than half a spacing from ``t``:
+    D is the only shortest string that reads back as ``t``. ``tests/test_scan.py``
+    checks the rule against ``repr``."""
     if q - s < 20:
         return False
     if buf[s + 4] != 45 or buf[s + 7] != 45 or buf[s + 10] != 84:  # - - T
@@ -301,7 +311,7 @@ def _time(buf, s, q, w):  # type: ignore[no-untyped-def]
             if buf[p] != 48:
                 kept = digits
             p += 1
-        if digits < 1 or digits > 6 or kept > 5:
+        if digits < 1 or digits > 6:
             return False
         for _ in range(digits, 6):
             frac *= 10
