@@ -19,7 +19,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Iterator, Sequence
 from datetime import datetime
 from itertools import repeat
-from typing import TYPE_CHECKING, overload
+from typing import TYPE_CHECKING, Any, overload
 
 import numpy as np
 
@@ -103,6 +103,25 @@ class EventColumns(Sequence[MatchEvent]):
 
     def __iter__(self) -> Iterator[MatchEvent]:
         return iter(self.events())
+
+    def take(self, at: Sequence[int]) -> EventColumns:
+        """The events at positions ``at``, in that order, as columns."""
+        idx = np.asarray(at, dtype=np.intp)
+
+        def pick(column: list[Any]) -> list[Any]:
+            return [column[i] for i in at]
+
+        return EventColumns(
+            pick(self.match_ids), pick(self.firsts), pick(self.seconds), self.scores[idx],
+            self.times[idx], pick(self.finished), pick(self.context_keys),
+            pick(self.has_context), pick(self.digests),
+        )  # fmt: skip
+
+    def event(self, i: int) -> MatchEvent:
+        """Event ``i`` alone (the others are not made)."""
+        if self._events is not None:
+            return self._events[i]
+        return self.take([i]).events()[0]
 
     def events(self) -> list[MatchEvent]:
         """Every event as an object (made once, then kept)."""

@@ -146,10 +146,8 @@ class Decider:
         else:
             at, raws = _with_payload(entries, sids, fname, self, dead)
         scanned = scan_payloads(raws)
-        if not dead:
-            fast = self._columns(sids, raws, scanned)
-            if fast is not None:
-                return fast
+        if scanned.sure.all():  # the common batch: decided as columns
+            return self._columns(sids, fields, at, raws, scanned, dead)
         decoded, times, known = _decoded(raws, scanned)
         received_ms = millis([sids[k] for k in at])
         doubtful: set[int] = set()
@@ -188,26 +186,83 @@ class Decider:
             out.dead = [letter for _, letter in dead]
         return out
 
-    def _columns(self, sids: list[str], raws: list[bytes], got: Scanned) -> Decision | None:
-        """The decision on a batch the compiled scan is sure of, every payload, with
-        every time trusted and no match id seen before or twice (the common batch):
-        all of it valid, as columns (:class:`EventColumns`). None otherwise: then
-        the batch is decided event by event as objects."""
-        if not got.sure.all():
-            return None
-        received_ms = millis(sids)
+    def _columns(
+        self,
+        sids: list[str],
+        fields: list[dict[bytes, bytes] | None],
+        at: list[int],
+        raws: list[bytes],
+        got: Scanned,
+        dead: list[tuple[int, DeadEntry]],
+    ) -> Decision:
+        """The decision on a batch whose every payload the compiled scan is sure of
+        (``at``: their positions in the batch; ``dead``: the entries without one),
+        as :meth:`decide` words it, made on the columns: untrusted times and
+        conflicts become dead letters (an event is made only to word a time's
+        reason), retries are skipped, and the valid events stay columns."""
+        out = Decision()
+        psids = sids if len(at) == len(sids) else [sids[k] for k in at]
+        received_ms = millis(psids)
         limit = np.asarray(received_ms, dtype=np.float64) / 1000 + self.future_limit_s
         t = got.times
-        if not ((t <= limit) & (t >= _EARLIEST_S)).all():
-            return None
-        mids = got.match_ids
+        ok = (t <= limit) & (t >= _EARLIEST_S)
+        cols = EventColumns.from_scan(got)
+        keep: list[int] | None = None  # positions among the payloads; None: all of them
+        if not ok.all():
+            keep = []
+            for j in range(len(at)):
+                reason = (
+                    None
+                    if ok[j]
+                    else time_problem(cols.event(j), received_ms[j], self.future_limit_s)
+                )
+                if reason is None:  # the exact test decides, and words the reason
+                    keep.append(j)
+                else:
+                    k = at[j]
+                    dead.append((k, (sids[k], fields[k] or {}, reason)))
+        mids = got.match_ids if keep is None else [got.match_ids[j] for j in keep]
         if len(set(mids)) != len(mids) or self.seen.known(mids):
-            return None
-        out = Decision()
-        out.valid = Pairs(sids, EventColumns.from_scan(got), received_ms)
-        out.raws = dict(zip(sids, raws, strict=True))
-        out.digests = dict(zip(sids, got.digests, strict=True))
+            keep = self._column_retries(got, keep, at, sids, fields, dead, out.dupes)
+        if keep is not None:
+            cols = cols.take(keep)
+            psids = [psids[j] for j in keep]
+            received_ms = [received_ms[j] for j in keep]
+            raws = [raws[j] for j in keep]
+        out.valid = Pairs(psids, cols, received_ms)
+        out.raws = dict(zip(psids, raws, strict=True))
+        out.digests = dict(zip(psids, cols.digests, strict=True))
+        if dead:
+            dead.sort(key=_FIRST)
+            out.dead = [letter for _, letter in dead]
         return out
+
+    def _column_retries(
+        self,
+        got: Scanned,
+        keep: list[int] | None,
+        at: list[int],
+        sids: list[str],
+        fields: list[dict[bytes, bytes] | None],
+        dead: list[tuple[int, DeadEntry]],
+        dupes: list[str],
+    ) -> list[int]:
+        """The payloads kept once retries (skipped) and conflicts (dead letters) are
+        taken out, as :meth:`_retries` does for events as objects."""
+        batch: dict[str, bytes] = {}
+        kept: list[int] = []
+        for j in range(len(at)) if keep is None else keep:
+            mid, digest, k = got.match_ids[j], got.digests[j], at[j]
+            if mid in batch or mid in self.seen:
+                known = batch[mid] if mid in batch else self.seen.digest(mid)
+                if known is None or known == digest:  # None: content not recorded
+                    dupes.append(sids[k])
+                else:
+                    dead.append((k, (sids[k], fields[k] or {}, _conflict(mid))))
+                continue
+            batch[mid] = digest
+            kept.append(j)
+        return kept
 
     def _retries(
         self,
