@@ -172,19 +172,15 @@ class Decider:
             kept_known = [known[j] for j in keep]
         digests = _digests(events, kept_times, kept_known)
         mids = list(map(_MATCH_ID, events))
-        if len(set(mids)) == len(mids) and not self.seen.known(mids):
-            valid_sids = [sids[k] for k in kept_at]
-        else:
-            valid_sids, events, kept_raws, digests = self._retries(
-                sids, fields, kept_at, events, kept_raws, digests, dead, out.dupes
-            )
-        out.valid = list(zip(valid_sids, events, strict=True))
-        out.raws = dict(zip(valid_sids, kept_raws, strict=True))
-        out.digests = dict(zip(valid_sids, digests, strict=True))
-        if dead:
-            dead.sort(key=_FIRST)
-            out.dead = [letter for _, letter in dead]
-        return out
+        if len(set(mids)) != len(mids) or self.seen.known(mids):
+            kept = self._retries(mids, digests, kept_at, sids, fields, dead, out.dupes)
+            events = [events[j] for j in kept]
+            kept_at = [kept_at[j] for j in kept]
+            kept_raws = [kept_raws[j] for j in kept]
+            digests = [digests[j] for j in kept]
+        valid_sids = [sids[k] for k in kept_at]
+        valid = list(zip(valid_sids, events, strict=True))
+        return _filled(out, valid_sids, valid, kept_raws, digests, dead)
 
     def _columns(
         self,
@@ -223,67 +219,35 @@ class Decider:
                     dead.append((k, (sids[k], fields[k] or {}, reason)))
         mids = got.match_ids if keep is None else [got.match_ids[j] for j in keep]
         if len(set(mids)) != len(mids) or self.seen.known(mids):
-            keep = self._column_retries(got, keep, at, sids, fields, dead, out.dupes)
+            some = list(range(len(at))) if keep is None else keep
+            digests = [got.digests[j] for j in some]
+            kept = self._retries(
+                mids, digests, [at[j] for j in some], sids, fields, dead, out.dupes
+            )
+            keep = [some[j] for j in kept]
         if keep is not None:
             cols = cols.take(keep)
             psids = [psids[j] for j in keep]
             received_ms = [received_ms[j] for j in keep]
             raws = [raws[j] for j in keep]
-        out.valid = Pairs(psids, cols, received_ms)
-        out.raws = dict(zip(psids, raws, strict=True))
-        out.digests = dict(zip(psids, cols.digests, strict=True))
-        if dead:
-            dead.sort(key=_FIRST)
-            out.dead = [letter for _, letter in dead]
-        return out
+        return _filled(out, psids, Pairs(psids, cols, received_ms), raws, cols.digests, dead)
 
-    def _column_retries(
+    def _retries(
         self,
-        got: Scanned,
-        keep: list[int] | None,
+        mids: list[str],
+        digests: list[bytes],
         at: list[int],
         sids: list[str],
         fields: list[dict[bytes, bytes] | None],
         dead: list[tuple[int, DeadEntry]],
         dupes: list[str],
     ) -> list[int]:
-        """The payloads kept once retries (skipped) and conflicts (dead letters) are
-        taken out, as :meth:`_retries` does for events as objects."""
+        """For a batch in which some match id was applied before or comes twice: the
+        positions (into ``mids``) kept once retries (skipped, into ``dupes``) and
+        conflicts (dead letters) are taken out. ``at``: each one's place in the batch."""
         batch: dict[str, bytes] = {}
         kept: list[int] = []
-        for j in range(len(at)) if keep is None else keep:
-            mid, digest, k = got.match_ids[j], got.digests[j], at[j]
-            if mid in batch or mid in self.seen:
-                known = batch[mid] if mid in batch else self.seen.digest(mid)
-                if known is None or known == digest:  # None: content not recorded
-                    dupes.append(sids[k])
-                else:
-                    dead.append((k, (sids[k], fields[k] or {}, _conflict(mid))))
-                continue
-            batch[mid] = digest
-            kept.append(j)
-        return kept
-
-    def _retries(
-        self,
-        sids: list[str],
-        fields: list[dict[bytes, bytes] | None],
-        at: list[int],
-        events: list[MatchEvent],
-        raws: list[bytes],
-        digests: list[bytes],
-        dead: list[tuple[int, DeadEntry]],
-        dupes: list[str],
-    ) -> tuple[list[str], list[MatchEvent], list[bytes], list[bytes]]:
-        """The valid events of a batch in which some match id was applied before or
-        comes twice: retries (skipped) and conflicts (dead letters) taken out."""
-        batch: dict[str, bytes] = {}
-        keep_sids: list[str] = []
-        keep_events: list[MatchEvent] = []
-        keep_raws: list[bytes] = []
-        keep_digests: list[bytes] = []
-        for k, ev, raw, digest in zip(at, events, raws, digests, strict=True):
-            mid = ev.match_id
+        for j, (mid, digest, k) in enumerate(zip(mids, digests, at, strict=True)):
             if mid in batch or mid in self.seen:
                 known = batch[mid] if mid in batch else self.seen.digest(mid)
                 if known is None or known == digest:  # None: content not recorded (old record)
@@ -292,11 +256,8 @@ class Decider:
                     dead.append((k, (sids[k], fields[k] or {}, _conflict(mid))))
                 continue
             batch[mid] = digest
-            keep_sids.append(sids[k])
-            keep_events.append(ev)
-            keep_raws.append(raw)
-            keep_digests.append(digest)
-        return keep_sids, keep_events, keep_raws, keep_digests
+            kept.append(j)
+        return kept
 
     def remember(self, part: Sequence[tuple[str, MatchEvent]], digests: dict[str, bytes]) -> None:
         """Add applied events to the retry record: stream-id time and content digest."""
@@ -389,6 +350,25 @@ def _with_payload(
             at.append(k)
             raws.append(raw)
     return at, raws
+
+
+def _filled(
+    out: Decision,
+    sids: list[str],
+    valid: Sequence[tuple[str, MatchEvent]],
+    raws: list[bytes],
+    digests: list[bytes],
+    dead: list[tuple[int, DeadEntry]],
+) -> Decision:
+    """``out`` with its valid events (their stream ids ``sids``), their payloads and
+    digests, and the dead letters in stream order."""
+    out.valid = valid
+    out.raws = dict(zip(sids, raws, strict=True))
+    out.digests = dict(zip(sids, digests, strict=True))
+    if dead:
+        dead.sort(key=_FIRST)
+        out.dead = [letter for _, letter in dead]
+    return out
 
 
 def _decoded(
