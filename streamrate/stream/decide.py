@@ -127,9 +127,13 @@ class Decider:
         letter. A match id already applied (or earlier in this batch) is a retry
         when its content digest is the same, and a dead letter (conflict) when not.
 
-        The batch is handled as columns: one decoding call (:func:`decode_events`),
-        one time check, the digests in one pass, and one set operation against the
-        retry record when no match id repeats (the common case).
+        The batch is handled as columns: one compiled scan
+        (:func:`~streamrate.scan.scan_payloads`); when it is sure of every payload
+        (the common case) the decision is made on its columns and the events stay
+        columns (:meth:`_columns`). Otherwise the payloads it is not sure of are
+        decoded (:func:`decode_events`), then one time check, the missing digests
+        in one pass, and one set operation against the retry record when no match
+        id repeats.
         """
         out = Decision()
         if not entries:
